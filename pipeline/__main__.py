@@ -1,0 +1,7 @@
+"""Allow ``python -m pipeline``."""
+
+import sys
+
+from pipeline.cli import main
+
+sys.exit(main())
