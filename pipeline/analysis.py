@@ -1,0 +1,196 @@
+"""The per-file analysis chain: read -> steps -> fitters -> QC -> (figure), as plain rows.
+
+:func:`analyse_file` is the unit of work the batch sends to a process pool or a Dask cluster: a
+top-level function taking and returning plain data (paths, the frozen :class:`Config`, dicts of
+numbers and strings), so the same function serves every executor. One bad file becomes a result
+whose ``error`` says what went wrong; it never raises.
+"""
+
+from __future__ import annotations
+
+import math
+import time
+import traceback
+from pathlib import Path
+from typing import Any
+
+from pipeline.config import Config
+from pipeline.errors import RecordingError
+from pipeline.recording import Recording
+
+
+def analyse_file(path: str, config: Config, figure_dir: str | None = None) -> dict[str, Any]:
+    """Analyse every cell of one input file.
+
+    Parameters
+    ----------
+    path : str
+        Input file.
+    config : Config
+        Resolved configuration.
+    figure_dir : str, optional
+        Folder for the per-cell PNG figures; None writes no figures.
+
+    Returns
+    -------
+    dict
+        ``file``, ``cells`` (one dict per cell: ``cell`` row, ``sweeps`` rows, ``spikes`` rows,
+        ``figure`` file name or None), ``error`` (None, or ``{"stage", "message"}`` when the file
+        could not be read), ``seconds`` per stage.
+    """
+    from pipeline.readers import open_recordings
+
+    timings: dict[str, float] = {}
+    start = time.perf_counter()
+    try:
+        recordings = open_recordings(path)
+    except RecordingError as exc:
+        return _failed(path, "read", str(exc))
+    except Exception as exc:  # a reader bug must not stop the batch; keep the evidence
+        return _failed(path, "read", f"{path}: unexpected {type(exc).__name__}: {exc}", exc)
+    timings["read"] = time.perf_counter() - start
+    cells = [analyse_recording(rec, config, figure_dir, timings) for rec in recordings]
+    return {"file": str(path), "cells": cells, "error": None, "seconds": timings}
+
+
+def analyse_recording(
+    recording: Recording,
+    config: Config,
+    figure_dir: str | None = None,
+    timings: dict[str, float] | None = None,
+) -> dict[str, Any]:
+    """Run steps, fitters, QC and the figure on one cell; errors become the cell's status."""
+    timings = {} if timings is None else timings
+    try:
+        return _analyse(recording, config, figure_dir, timings)
+    except Exception as exc:  # keep the cell as a row with its error, never lose the batch
+        message = f"analysis failed: {type(exc).__name__}: {exc}"
+        row = {
+            "cell_id": recording.cell_id,
+            "source_file": recording.source_file,
+            "electrode": recording.electrode,
+            "n_sweeps": len(recording.sweeps),
+            "qc_pass": False,
+            "qc_reasons": message,
+            "status": message,
+        }
+        return {
+            "cell": row,
+            "sweeps": [],
+            "spikes": [],
+            "figure": None,
+            "traceback": traceback.format_exc(limit=8),
+        }
+
+
+def _analyse(
+    recording: Recording, config: Config, figure_dir: str | None, timings: dict[str, float]
+) -> dict[str, Any]:
+    from pipeline import qc
+    from pipeline.fitters.passive import fit_sweep, summarize_cell
+    from pipeline.fitters.spikes import fit_spiking
+    from pipeline.steps import find_steps
+
+    t0 = time.perf_counter()
+    epochs = find_steps(recording, config.steps)
+    by_number = {s.number: s for s in recording.sweeps}
+    fits = [
+        fit_sweep(by_number[e.sweep], e, config.passive) for e in epochs if e.usable
+    ]
+    spikes_all = fit_spiking(recording, epochs, config.spikes)
+    sweep_rows = _sweep_rows(recording, epochs, fits, spikes_all)
+    _add(timings, "fit", time.perf_counter() - t0)
+
+    t0 = time.perf_counter()
+    excluded = {e.sweep: f"not a usable step: {e.reason}" for e in epochs if not e.usable}
+    excluded.update(qc.sweep_exclusions(config.qc.for_scope("sweep"), sweep_rows))
+    cell_fit = summarize_cell(recording.cell_id, fits, config.passive, exclude=excluded)
+    spikes = fit_spiking(recording, epochs, config.spikes, exclude=excluded)
+    for row in sweep_rows:
+        reason = excluded.get(row["sweep"], "")
+        row["used"] = not reason
+        row["excluded_because"] = reason
+    cell_row = {
+        "cell_id": recording.cell_id,
+        "source_file": recording.source_file,
+        "electrode": recording.electrode,
+        **cell_fit.row(),
+        **spikes.cell_row(),
+        **_derived(sweep_rows),
+    }
+    cell_row["n_sweeps"] = len(recording.sweeps)
+    cell_row["n_sweeps_used"] = sum(1 for r in sweep_rows if r["used"])
+    verdict = qc.judge_cell(config.qc.for_scope("cell"), cell_row, excluded)
+    cell_row["qc_pass"] = verdict.qc_pass
+    cell_row["qc_reasons"] = "; ".join(verdict.reasons)
+    cell_row["qc_flags"] = "; ".join(verdict.flags)
+    _add(timings, "qc", time.perf_counter() - t0)
+
+    figure = None
+    if figure_dir is not None:
+        t0 = time.perf_counter()
+        figure = _figure(recording, epochs, cell_fit, verdict, spikes, figure_dir, config)
+        _add(timings, "figures", time.perf_counter() - t0)
+    spike_rows = [{"cell_id": recording.cell_id, **r} for r in spikes.spike_rows()]
+    return {"cell": cell_row, "sweeps": sweep_rows, "spikes": spike_rows, "figure": figure}
+
+
+def _sweep_rows(recording, epochs, fits, spikes) -> list[dict[str, Any]]:
+    """One row per sweep: step finder, passive and spiking columns side by side."""
+    fit_by = {f.sweep: f.row() for f in fits}
+    spike_by = {r["sweep"]: r for r in spikes.sweep_rows()}
+    rows = []
+    for sweep, epoch in zip(recording.sweeps, epochs, strict=True):
+        row: dict[str, Any] = {
+            "cell_id": recording.cell_id,
+            "sweep": sweep.number,
+            "protocol": sweep.protocol,
+            "rate_khz": sweep.rate / 1e3,
+            "step_kind": epoch.kind,
+            "step_pa": epoch.amplitude * 1e12 if epoch.usable else math.nan,
+            "holding_pa": epoch.holding * 1e12,
+            "step_onset_ms": epoch.onset * 1e3,
+            "step_duration_ms": epoch.duration * 1e3,
+        }
+        row.update(fit_by.get(sweep.number, {}))
+        row.update({k: v for k, v in spike_by.get(sweep.number, {}).items() if k != "sweep"})
+        rows.append(row)
+    return rows
+
+
+def _derived(sweep_rows: list[dict[str, Any]]) -> dict[str, Any]:
+    """Cell columns that QC rules read and that come from counting sweeps."""
+    hyper = [r for r in sweep_rows if r["used"] and _finite(r.get("step_pa")) and r["step_pa"] < 0]
+    return {"n_hyperpolarizing_used": len(hyper)}
+
+
+def _figure(recording, epochs, cell_fit, verdict, spikes, figure_dir, config) -> str:
+    from pipeline.report.figures import cell_figure, safe_name
+
+    name = f"{safe_name(recording.cell_id)}.png"
+    Path(figure_dir).mkdir(parents=True, exist_ok=True)
+    cell_figure(
+        recording,
+        epochs,
+        cell_fit,
+        verdict,
+        Path(figure_dir) / name,
+        spikes=spikes,
+        dpi=config.report.figure_dpi,
+    )
+    return name
+
+
+def _failed(path: str, stage: str, message: str, exc: Exception | None = None) -> dict[str, Any]:
+    error = {"stage": stage, "message": message}
+    if exc is not None:
+        error["traceback"] = traceback.format_exc(limit=8)
+    return {"file": str(path), "cells": [], "error": error, "seconds": {}}
+
+
+def _add(timings: dict[str, float], stage: str, seconds: float) -> None:
+    timings[stage] = timings.get(stage, 0.0) + seconds
+
+
+def _finite(value: Any) -> bool:
+    return isinstance(value, int | float) and math.isfinite(value)

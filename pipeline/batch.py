@@ -1,0 +1,424 @@
+"""The day's batch: find inputs, analyse each file in parallel, join the sheet, write the report.
+
+Executors: a local process pool (``workers`` processes), or a Dask distributed cluster
+(``scheduler="tcp://HOST:PORT"`` for an existing one, ``"local"`` to start a ``LocalCluster``).
+Every executor runs the same :func:`pipeline.analysis.analyse_file`, and results are assembled in
+input order, so the tables are identical whatever the executor and worker count.
+"""
+
+from __future__ import annotations
+
+import json
+import logging
+import os
+import sys
+import time
+from collections.abc import Iterator, Sequence
+from concurrent.futures import ProcessPoolExecutor, as_completed
+from dataclasses import dataclass, field
+from datetime import UTC, datetime
+from pathlib import Path
+from typing import Any
+
+from pipeline import __version__, cache
+from pipeline.analysis import analyse_file
+from pipeline.config import Config, load_config
+from pipeline.errors import PatchbatchError
+from pipeline.sheet import Sheet, read_sheet
+
+log = logging.getLogger("patchbatch")
+
+SHEET_NAME = "metadata.csv"
+OUTPUT_NAMES = ("cells.csv", "cells.parquet", "sweeps.csv", "spikes.csv", "index.html", "run.json")
+
+
+class OutputFolderError(PatchbatchError):
+    """The output folder cannot be used as asked (exit status 2)."""
+
+
+@dataclass
+class BatchResult:
+    """What a run produced: the tables as DataFrames and the run's record."""
+
+    cells: Any
+    sweeps: Any
+    spikes: Any
+    info: dict[str, Any]
+    errors: list[dict[str, Any]] = field(default_factory=list)
+
+    @property
+    def exit_status(self) -> int:
+        """0 when every input was analysed (cells failing QC included), else 1."""
+        return 1 if self.errors else 0
+
+
+def discover_inputs(inputs: Sequence[str | Path], exclude: Path | None = None) -> list[Path]:
+    """Files to analyse: the files given, and supported files found recursively in folders.
+
+    The metadata sheet (``metadata.csv``) and anything inside ``exclude`` (the output folder) are
+    left out. A path that does not exist is returned as is, so that it becomes an error row.
+    """
+    from pipeline.readers import supported_extensions
+
+    exts = {e.lower() for e in supported_extensions()}
+    found: list[Path] = []
+    for item in map(Path, inputs):
+        if item.is_dir():
+            for path in sorted(item.rglob("*")):
+                if path.is_file() and path.suffix.lower() in exts and _wanted(path, exclude):
+                    found.append(path)
+        else:
+            found.append(item)
+    unique = list(dict.fromkeys(p.resolve() for p in found))
+    return unique
+
+
+def _wanted(path: Path, exclude: Path | None) -> bool:
+    if path.name == SHEET_NAME or any(part.startswith(".") for part in path.parts[-2:]):
+        return False
+    return exclude is None or not path.resolve().is_relative_to(exclude.resolve())
+
+
+def find_sheet(inputs: Sequence[str | Path]) -> Path | None:
+    """A ``metadata.csv`` in the first input folder that has one."""
+    for item in map(Path, inputs):
+        if item.is_dir() and (item / SHEET_NAME).is_file():
+            return item / SHEET_NAME
+    return None
+
+
+def run_batch(
+    inputs: Sequence[str | Path],
+    config: Config | str | Path | None = None,
+    out: str | Path = "reports",
+    *,
+    sheet: str | Path | None = None,
+    workers: int | None = None,
+    scheduler: str | None = None,
+    figures: bool | None = None,
+    force: bool = False,
+    progress: bool | None = None,
+    quiet: bool = False,
+) -> BatchResult:
+    """Analyse a day's recordings and write the tables, figures, page and run record.
+
+    Parameters
+    ----------
+    inputs : sequence of path
+        Files and folders (searched recursively for supported extensions).
+    config : Config or path, optional
+        A loaded config, a TOML file, or None for the defaults.
+    out : path
+        Output folder (created).
+    sheet : path, optional
+        Metadata sheet; by default ``metadata.csv`` in an input folder, if any.
+    workers : int, optional
+        Local processes; default from the config (0 = all cores).
+    scheduler : str, optional
+        ``"tcp://HOST:PORT"`` (an existing Dask cluster) or ``"local"`` (a LocalCluster).
+    figures : bool, optional
+        Write per-cell figures; default from the config.
+    force : bool
+        Allow writing into a folder that holds another run's outputs.
+    progress : bool, optional
+        Show a progress bar; default: when stderr is a terminal.
+    quiet : bool
+        Log warnings and errors only.
+
+    Returns
+    -------
+    BatchResult
+    """
+    started = datetime.now(UTC)
+    config = config if isinstance(config, Config) else load_config(config)
+    outdir = Path(out)
+    figures = config.report.figures if figures is None else figures
+    inputs_given = [str(Path(p).resolve()) for p in inputs]
+    _prepare_outdir(outdir, inputs_given, config, force)
+    handler = _log_to_file(outdir, quiet)
+    try:
+        sheet_path = Path(sheet) if sheet is not None else find_sheet(inputs)
+        the_sheet = read_sheet(sheet_path) if sheet_path is not None else None
+        files = discover_inputs(inputs, exclude=outdir)
+        log.info("patchbatch %s: %d input file(s) -> %s", __version__, len(files), outdir)
+        results, hashes, stats = _analyse_all(
+            files, config, outdir, figures, workers, scheduler, progress
+        )
+        run = {"inputs_given": inputs_given, "started": started, "hashes": hashes, **stats}
+        return _assemble(files, results, run, config, outdir, the_sheet)
+    finally:
+        logging.getLogger("patchbatch").removeHandler(handler)
+        handler.close()
+
+
+def _prepare_outdir(outdir: Path, inputs: list[str], config: Config, force: bool) -> None:
+    if outdir.exists() and not outdir.is_dir():
+        raise OutputFolderError(f"{outdir}: exists and is not a folder")
+    try:
+        outdir.mkdir(parents=True, exist_ok=True)
+    except OSError as exc:
+        raise OutputFolderError(f"{outdir}: cannot create the output folder ({exc})") from None
+    if not os.access(outdir, os.W_OK):
+        raise OutputFolderError(f"{outdir}: the output folder is not writable")
+    previous = outdir / "run.json"
+    if force or not previous.exists():
+        if not previous.exists() and not force and any((outdir / n).exists() for n in OUTPUT_NAMES):
+            raise OutputFolderError(
+                f"{outdir}: holds outputs of an unknown run (no run.json); use --force to "
+                "overwrite them"
+            )
+        return
+    try:
+        info = json.loads(previous.read_text(encoding="utf-8"))
+    except (OSError, ValueError):
+        info = {}
+    same = info.get("inputs_given") == inputs and info.get("config_digest") == config.digest()
+    if not same:
+        raise OutputFolderError(
+            f"{outdir}: holds the outputs of a run with other inputs or another config; "
+            "choose another folder or use --force to replace them"
+        )
+
+
+def _analyse_all(files, config, outdir, figures, workers, scheduler, progress):
+    """Analyse every file not in the cache; returns results in input order and counts."""
+    digest = config.digest()
+    figure_dir = str(outdir / "figures") if figures else None
+    results: dict[int, dict[str, Any]] = {}
+    todo: list[tuple[int, Path, str | None]] = []
+    hashes = [_sha_or_none(path) for path in files]
+    for i, path in enumerate(files):
+        key = cache.entry_key(hashes[i], digest) if hashes[i] else None
+        hit = cache.load_entry(outdir, key) if key else None
+        if hit is not None and _figures_present(hit, figure_dir):
+            results[i] = hit
+        else:
+            todo.append((i, path, key))
+    stats = {"cached": len(results), "analysed": len(todo)}
+    log.info("%d file(s) from the cache, %d to analyse", len(results), len(todo))
+    keys = {i: key for i, _, key in todo}
+    bar = _progress(len(todo), progress)
+    for i, result in _execute(todo, config, figure_dir, workers, scheduler):
+        if result["error"] is None and keys[i]:
+            cache.store_entry(outdir, keys[i], result)
+        # Fresh results pass through the same JSON form as cached ones: identical tables.
+        results[i] = cache.normalise(result)
+        _report_one(result, bar)
+    if bar is not None:
+        bar.close()
+    return [results[i] for i in range(len(files))], hashes, stats
+
+
+def _figures_present(result: dict[str, Any], figure_dir: str | None) -> bool:
+    if figure_dir is None:
+        return True
+    return all(
+        c.get("figure") and (Path(figure_dir) / c["figure"]).is_file() for c in result["cells"]
+    )
+
+
+def _execute(todo, config, figure_dir, workers, scheduler) -> Iterator[tuple[int, dict]]:
+    """Yield (input index, result) as files finish, on the chosen executor."""
+    if not todo:
+        return
+    if scheduler:
+        yield from _execute_dask(todo, config, figure_dir, scheduler, workers)
+        return
+    n = workers if workers else (config.run.workers or os.cpu_count() or 1)
+    n = max(1, min(n, len(todo)))
+    if n == 1:
+        for i, path, _ in todo:
+            yield i, analyse_file(str(path), config, figure_dir)
+        return
+    with ProcessPoolExecutor(max_workers=n) as pool:
+        futures = {pool.submit(analyse_file, str(p), config, figure_dir): i for i, p, _ in todo}
+        for future in as_completed(futures):
+            yield futures[future], _result_or_error(future, todo, futures[future])
+
+
+def _execute_dask(todo, config, figure_dir, scheduler, workers) -> Iterator[tuple[int, dict]]:
+    from distributed import Client, LocalCluster, as_completed as dask_completed
+
+    cluster = None
+    if scheduler == "local":
+        n = workers or config.run.workers or os.cpu_count() or 1
+        cluster = LocalCluster(
+            n_workers=n, threads_per_worker=1, processes=True, host="127.0.0.1",
+            dashboard_address=None,
+        )
+        address = cluster
+    else:
+        address = scheduler
+    try:
+        with Client(address) as client:
+            futures = {
+                client.submit(analyse_file, str(p), config, figure_dir, pure=False): i
+                for i, p, _ in todo
+            }
+            for future in dask_completed(list(futures)):
+                yield futures[future], _result_or_error(future, todo, futures[future])
+    finally:
+        if cluster is not None:
+            cluster.close()
+
+
+def _result_or_error(future, todo, index) -> dict[str, Any]:
+    """A worker that died (out of memory, killed) still gives a row for its file."""
+    try:
+        return future.result()
+    except Exception as exc:
+        path = next(str(p) for j, p, _ in todo if j == index)
+        return {
+            "file": path,
+            "cells": [],
+            "error": {"stage": "worker", "message": f"{path}: worker failed: {exc}"},
+            "seconds": {},
+        }
+
+
+def _progress(total: int, progress: bool | None):
+    show = sys.stderr.isatty() if progress is None else progress
+    if not show or total == 0:
+        return None
+    from tqdm import tqdm
+
+    return tqdm(total=total, unit="file", desc="patchbatch", file=sys.stderr)
+
+
+def _report_one(result: dict[str, Any], bar) -> None:
+    name = Path(result["file"]).name
+    if result["error"]:
+        log.error("%s", result["error"]["message"])
+    else:
+        for c in result["cells"]:
+            row = c["cell"]
+            state = "pass" if row.get("qc_pass") else f"fail ({row.get('qc_reasons')})"
+            log.info("%s: cell %s %s", name, row.get("cell_id"), state)
+    if bar is not None:
+        bar.update(1)
+
+
+def _assemble(files, results, run, config, outdir, sheet):
+    from pipeline.report import page, tables
+
+    cell_rows, sweep_rows, spike_rows, errors, fig_map = [], [], [], [], {}
+    seconds: dict[str, float] = {}
+    for result in results:
+        for stage, s in (result.get("seconds") or {}).items():
+            seconds[stage] = seconds.get(stage, 0.0) + s
+        if result["error"]:
+            errors.append({"file": result["file"], **result["error"]})
+            cell_rows.append(_error_row(result))
+            continue
+        for cell in result["cells"]:
+            cell_rows.append(dict(cell["cell"]))
+            sweep_rows.extend(cell["sweeps"])
+            spike_rows.extend(cell["spikes"])
+            if cell.get("figure"):
+                fig_map[cell["cell"]["cell_id"]] = f"figures/{cell['figure']}"
+            if cell.get("traceback"):
+                errors.append(
+                    {"file": cell["cell"]["source_file"], "stage": "analysis",
+                     "message": cell["cell"]["status"], "traceback": cell["traceback"]}
+                )
+    warnings = _join_sheet(cell_rows, sheet)
+    t0 = time.perf_counter()
+    sheet_columns = sheet.columns if sheet else ()
+    cells = tables.cells_frame(cell_rows, sheet_columns)
+    sweeps = tables.sweeps_frame(sweep_rows)
+    spikes = tables.spikes_frame(spike_rows)
+    tables.write_tables(outdir, cells, sweeps, spikes)
+    seconds["tables"] = time.perf_counter() - t0
+    info = _run_info(files, results, run, config, errors, warnings, sheet, seconds)
+    t0 = time.perf_counter()
+    page.write_page(outdir, cells, run_info=info, figures=fig_map,
+                    group_column=config.report.group_column)
+    seconds["page"] = time.perf_counter() - t0
+    info["finished"] = datetime.now(UTC).isoformat()
+    tables.write_run_json(outdir, info)
+    for w in warnings:
+        log.warning("%s", w)
+    n_pass = int(cells["qc_pass"].sum()) if "qc_pass" in cells else 0
+    log.info(
+        "%d cell(s), %d pass QC, %d input error(s); wrote %s",
+        len(cells), n_pass, len(errors), outdir,
+    )
+    return BatchResult(cells, sweeps, spikes, info, errors)
+
+
+def _error_row(result: dict[str, Any]) -> dict[str, Any]:
+    path = Path(result["file"])
+    return {
+        "cell_id": path.stem,
+        "source_file": str(path),
+        "n_sweeps": 0,
+        "n_sweeps_used": 0,
+        "qc_pass": False,
+        "qc_reasons": result["error"]["message"],
+        "status": result["error"]["message"],
+    }
+
+
+def _join_sheet(cell_rows: list[dict[str, Any]], sheet: Sheet | None) -> list[str]:
+    """Add the sheet's columns to each cell row; report cells and rows that found no partner."""
+    if sheet is None:
+        return []
+    warnings, matched = [], set()
+    for row in cell_rows:
+        hit = sheet.lookup(str(row["cell_id"]), str(row["source_file"]))
+        if hit is None:
+            warnings.append(f"{sheet.path}: no row for cell {row['cell_id']} ({row['source_file']})")
+            row.update({c: "" for c in sheet.columns if c not in row})
+            continue
+        matched.add(hit[0])
+        for column, value in hit[1].items():
+            if column in row and column not in ("cell_id", "source_file"):
+                warnings.append(f"{sheet.path}: column {column!r} clashes with a result column")
+                continue
+            row[column] = value
+    for index in range(len(sheet.rows)):
+        if index not in matched:
+            warnings.append(f"{sheet.path}: {sheet.describe_row(index)} matches no input file")
+    return list(dict.fromkeys(warnings))
+
+
+def _run_info(files, results, run, config, errors, warnings, sheet, secs):
+    return {
+        "version": __version__,
+        "started": run["started"].isoformat(),
+        "inputs_given": run["inputs_given"],
+        "inputs": [{"file": str(p), "sha256": h} for p, h in zip(files, run["hashes"], strict=True)],
+        "sheet": sheet.path if sheet else None,
+        "config": config.to_dict(),
+        "config_digest": config.digest(),
+        "counts": {
+            "files": len(files),
+            "files_failed": sum(1 for r in results if r["error"]),
+            "cells": sum(len(r["cells"]) for r in results),
+            "cells_pass": sum(
+                1 for r in results for c in r["cells"] if c["cell"].get("qc_pass")
+            ),
+            "cached": run["cached"],
+            "analysed": run["analysed"],
+        },
+        "seconds": {k: round(v, 4) for k, v in secs.items()},
+        "errors": errors,
+        "warnings": warnings,
+    }
+
+
+def _sha_or_none(path: Path) -> str | None:
+    try:
+        return cache.file_sha256(path)
+    except OSError:
+        return None
+
+
+def _log_to_file(outdir: Path, quiet: bool) -> logging.Handler:
+    logger = logging.getLogger("patchbatch")
+    logger.setLevel(logging.INFO)
+    handler = logging.FileHandler(outdir / "patchbatch.log", encoding="utf-8")
+    handler.setFormatter(logging.Formatter("%(asctime)s %(levelname)s %(message)s"))
+    logger.addHandler(handler)
+    return handler
+

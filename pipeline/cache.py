@@ -1,0 +1,71 @@
+"""The incremental cache: one JSON file per analysed input, in the output folder.
+
+An entry is keyed by the input's sha256, the config digest and the package version, so a re-run
+over unchanged inputs re-analyses nothing, and a run killed midway resumes from the entries
+already written. JSON only (never pickle): nothing from a cache is ever executed.
+"""
+
+from __future__ import annotations
+
+import hashlib
+import json
+import math
+from pathlib import Path
+from typing import Any
+
+from pipeline import __version__
+
+CACHE_DIR = ".patchbatch-cache"
+
+
+def file_sha256(path: str | Path, chunk: int = 1 << 20) -> str:
+    """Hex sha256 of a file's bytes."""
+    digest = hashlib.sha256()
+    with open(path, "rb") as fh:
+        while block := fh.read(chunk):
+            digest.update(block)
+    return digest.hexdigest()
+
+
+def entry_key(file_hash: str, config_digest: str) -> str:
+    """The cache key of one input under one config and version."""
+    text = f"{file_hash}:{config_digest}:{__version__}"
+    return hashlib.sha256(text.encode()).hexdigest()[:32]
+
+
+def load_entry(outdir: str | Path, key: str) -> dict[str, Any] | None:
+    """The cached result for ``key``, or None (missing or unreadable entries are ignored)."""
+    path = Path(outdir) / CACHE_DIR / f"{key}.json"
+    try:
+        with open(path, encoding="utf-8") as fh:
+            data = json.load(fh)
+    except (OSError, ValueError):
+        return None
+    return data if isinstance(data, dict) and data.get("key") == key else None
+
+
+def store_entry(outdir: str | Path, key: str, result: dict[str, Any]) -> None:
+    """Write one result atomically (NaN stored as null and read back as NaN by the tables)."""
+    from pipeline.report.atomic import atomic_write_text
+
+    folder = Path(outdir) / CACHE_DIR
+    folder.mkdir(parents=True, exist_ok=True)
+    text = json.dumps({"key": key, **_nan_to_none(result)}, allow_nan=False)
+    atomic_write_text(folder / f"{key}.json", text)
+
+
+def normalise(result: dict[str, Any]) -> dict[str, Any]:
+    """A result as it reads back from the cache (non-finite floats -> NaN, tuples -> lists)."""
+    return json.loads(json.dumps(_nan_to_none(result), allow_nan=False), parse_constant=float)
+
+
+def _nan_to_none(value: Any) -> Any:
+    if isinstance(value, dict):
+        return {k: _nan_to_none(v) for k, v in value.items()}
+    if isinstance(value, list | tuple):
+        return [_nan_to_none(v) for v in value]
+    if isinstance(value, float) and not math.isfinite(value):
+        return None
+    if hasattr(value, "item") and not isinstance(value, str):  # numpy scalars
+        return _nan_to_none(value.item())
+    return value

@@ -1,0 +1,136 @@
+"""The metadata sheet: a CSV that adds experimental columns (condition, animal, slice...) to cells.
+
+The sheet is keyed by a ``cell_id`` column or a ``file`` column (file name, with or without its
+extension, or a path relative to the sheet). A ``cell_id`` match wins over a ``file`` match, so a
+file holding several cells can have one row per cell.
+"""
+
+from __future__ import annotations
+
+from dataclasses import dataclass, field
+from pathlib import Path
+
+import pandas as pd
+
+from pipeline.errors import PatchbatchError
+
+KEY_COLUMNS = ("cell_id", "file")
+
+
+class SheetError(PatchbatchError):
+    """The metadata sheet cannot be used (exit status 2)."""
+
+
+@dataclass(frozen=True)
+class Sheet:
+    """A validated metadata sheet.
+
+    Parameters
+    ----------
+    path : str
+        Where it was read from.
+    rows : tuple of dict
+        One dict per sheet row, values as text.
+    columns : tuple of str
+        Experimental columns to join (every column but the keys).
+    """
+
+    path: str
+    rows: tuple[dict[str, str], ...]
+    columns: tuple[str, ...]
+    _by_cell: dict[str, int] = field(default_factory=dict, repr=False)
+    _by_file: dict[str, int] = field(default_factory=dict, repr=False)
+
+    def lookup(self, cell_id: str, source_file: str) -> tuple[int, dict[str, str]] | None:
+        """The sheet row (index, values) for a cell, or None when the sheet does not name it."""
+        index = self._by_cell.get(cell_id)
+        if index is None:
+            p = Path(source_file)
+            for key in (p.name, p.stem, str(p)):
+                if key in self._by_file:
+                    index = self._by_file[key]
+                    break
+        if index is None:
+            return None
+        return index, {c: self.rows[index].get(c, "") for c in self.columns}
+
+    def describe_row(self, index: int) -> str:
+        """How to name a row in a message (its key values)."""
+        row = self.rows[index]
+        keys = [f"{k}={row[k]!r}" for k in KEY_COLUMNS if row.get(k)]
+        return f"row {index + 2} ({', '.join(keys)})"
+
+
+def read_sheet(path: str | Path) -> Sheet:
+    """Read and validate a metadata sheet.
+
+    Raises
+    ------
+    SheetError
+        Missing file, not UTF-8, no key column, empty keys, duplicate keys; the message names
+        the sheet, the row and the problem.
+    """
+    where = str(path)
+    try:
+        raw = Path(path).read_bytes()
+    except FileNotFoundError:
+        raise SheetError(f"{where}: metadata sheet not found") from None
+    except IsADirectoryError:
+        raise SheetError(f"{where}: is a folder, not a metadata sheet") from None
+    try:
+        text = raw.decode("utf-8-sig")
+    except UnicodeDecodeError as exc:
+        raise SheetError(
+            f"{where}: not UTF-8 text (byte {exc.start}: {raw[exc.start:exc.start + 1]!r}); "
+            "save the sheet as UTF-8 CSV"
+        ) from None
+    frame = _parse(text, where)
+    frame.columns = [str(c).strip() for c in frame.columns]
+    keys = [k for k in KEY_COLUMNS if k in frame.columns]
+    if not keys:
+        raise SheetError(
+            f"{where}: needs a 'file' or 'cell_id' column to match cells; found columns: "
+            f"{', '.join(frame.columns) or 'none'}"
+        )
+    frame = frame.fillna("").astype(str).map(str.strip)
+    rows = tuple(frame.to_dict("records"))
+    by_key = {k: _index(rows, k, where) for k in keys}
+    columns = tuple(c for c in frame.columns if c not in KEY_COLUMNS)
+    return Sheet(
+        where, rows, columns, by_key.get("cell_id", {}), _with_stems(by_key.get("file", {}))
+    )
+
+
+def _parse(text: str, where: str) -> pd.DataFrame:
+    from io import StringIO
+
+    try:
+        return pd.read_csv(StringIO(text), dtype=str, keep_default_na=False, sep=None, engine="python")
+    except (pd.errors.ParserError, pd.errors.EmptyDataError, ValueError) as exc:
+        raise SheetError(f"{where}: not a readable CSV table ({exc})") from None
+
+
+def _index(rows: tuple[dict[str, str], ...], key: str, where: str) -> dict[str, int]:
+    seen: dict[str, int] = {}
+    for i, row in enumerate(rows):
+        value = row.get(key, "")
+        if not value:
+            continue
+        if value in seen:
+            raise SheetError(
+                f"{where}: {key} {value!r} appears twice (rows {seen[value] + 2} and {i + 2})"
+            )
+        seen[value] = i
+    if not seen and key == "cell_id":
+        return {}
+    return seen
+
+
+def _with_stems(by_file: dict[str, int]) -> dict[str, int]:
+    """Let ``file`` match with or without its extension and folder."""
+    out = dict(by_file)
+    for name, index in by_file.items():
+        p = Path(name)
+        out.setdefault(p.name, index)
+        out.setdefault(p.stem, index)
+    return out
