@@ -94,9 +94,7 @@ def _analyse(
     t0 = time.perf_counter()
     epochs = find_steps(recording, config.steps)
     by_number = {s.number: s for s in recording.sweeps}
-    fits = [
-        fit_sweep(by_number[e.sweep], e, config.passive) for e in epochs if e.usable
-    ]
+    fits = [fit_sweep(by_number[e.sweep], e, config.passive) for e in epochs if e.usable]
     spikes_all = fit_spiking(recording, epochs, config.spikes)
     sweep_rows = _sweep_rows(recording, epochs, fits, spikes_all)
     _add(timings, "fit", time.perf_counter() - t0)

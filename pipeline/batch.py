@@ -237,13 +237,17 @@ def _execute(todo, config, figure_dir, workers, scheduler) -> Iterator[tuple[int
 
 
 def _execute_dask(todo, config, figure_dir, scheduler, workers) -> Iterator[tuple[int, dict]]:
-    from distributed import Client, LocalCluster, as_completed as dask_completed
+    from distributed import Client, LocalCluster
+    from distributed import as_completed as dask_completed
 
     cluster = None
     if scheduler == "local":
         n = workers or config.run.workers or os.cpu_count() or 1
         cluster = LocalCluster(
-            n_workers=n, threads_per_worker=1, processes=True, host="127.0.0.1",
+            n_workers=n,
+            threads_per_worker=1,
+            processes=True,
+            host="127.0.0.1",
             dashboard_address=None,
         )
         address = cluster
@@ -318,8 +322,12 @@ def _assemble(files, results, run, config, outdir, sheet):
                 fig_map[cell["cell"]["cell_id"]] = f"figures/{cell['figure']}"
             if cell.get("traceback"):
                 errors.append(
-                    {"file": cell["cell"]["source_file"], "stage": "analysis",
-                     "message": cell["cell"]["status"], "traceback": cell["traceback"]}
+                    {
+                        "file": cell["cell"]["source_file"],
+                        "stage": "analysis",
+                        "message": cell["cell"]["status"],
+                        "traceback": cell["traceback"],
+                    }
                 )
     warnings = _join_sheet(cell_rows, sheet)
     t0 = time.perf_counter()
@@ -331,8 +339,9 @@ def _assemble(files, results, run, config, outdir, sheet):
     seconds["tables"] = time.perf_counter() - t0
     info = _run_info(files, results, run, config, errors, warnings, sheet, seconds)
     t0 = time.perf_counter()
-    page.write_page(outdir, cells, run_info=info, figures=fig_map,
-                    group_column=config.report.group_column)
+    page.write_page(
+        outdir, cells, run_info=info, figures=fig_map, group_column=config.report.group_column
+    )
     seconds["page"] = time.perf_counter() - t0
     info["finished"] = datetime.now(UTC).isoformat()
     tables.write_run_json(outdir, info)
@@ -341,7 +350,10 @@ def _assemble(files, results, run, config, outdir, sheet):
     n_pass = int(cells["qc_pass"].sum()) if "qc_pass" in cells else 0
     log.info(
         "%d cell(s), %d pass QC, %d input error(s); wrote %s",
-        len(cells), n_pass, len(errors), outdir,
+        len(cells),
+        n_pass,
+        len(errors),
+        outdir,
     )
     return BatchResult(cells, sweeps, spikes, info, errors)
 
@@ -367,7 +379,9 @@ def _join_sheet(cell_rows: list[dict[str, Any]], sheet: Sheet | None) -> list[st
     for row in cell_rows:
         hit = sheet.lookup(str(row["cell_id"]), str(row["source_file"]))
         if hit is None:
-            warnings.append(f"{sheet.path}: no row for cell {row['cell_id']} ({row['source_file']})")
+            warnings.append(
+                f"{sheet.path}: no row for cell {row['cell_id']} ({row['source_file']})"
+            )
             row.update({c: "" for c in sheet.columns if c not in row})
             continue
         matched.add(hit[0])
@@ -387,7 +401,9 @@ def _run_info(files, results, run, config, errors, warnings, sheet, secs):
         "version": __version__,
         "started": run["started"].isoformat(),
         "inputs_given": run["inputs_given"],
-        "inputs": [{"file": str(p), "sha256": h} for p, h in zip(files, run["hashes"], strict=True)],
+        "inputs": [
+            {"file": str(p), "sha256": h} for p, h in zip(files, run["hashes"], strict=True)
+        ],
         "sheet": sheet.path if sheet else None,
         "config": config.to_dict(),
         "config_digest": config.digest(),
@@ -395,9 +411,7 @@ def _run_info(files, results, run, config, errors, warnings, sheet, secs):
             "files": len(files),
             "files_failed": sum(1 for r in results if r["error"]),
             "cells": sum(len(r["cells"]) for r in results),
-            "cells_pass": sum(
-                1 for r in results for c in r["cells"] if c["cell"].get("qc_pass")
-            ),
+            "cells_pass": sum(1 for r in results for c in r["cells"] if c["cell"].get("qc_pass")),
             "cached": run["cached"],
             "analysed": run["analysed"],
         },
@@ -421,4 +435,3 @@ def _log_to_file(outdir: Path, quiet: bool) -> logging.Handler:
     handler.setFormatter(logging.Formatter("%(asctime)s %(levelname)s %(message)s"))
     logger.addHandler(handler)
     return handler
-

@@ -28,20 +28,26 @@ def build_parser() -> argparse.ArgumentParser:
     run.add_argument("inputs", nargs="+", metavar="INPUT", help="files or folders")
     run.add_argument("-c", "--config", help="TOML config (overrides the defaults it sets)")
     run.add_argument("-o", "--out", default="reports", help="output folder (default: reports)")
-    run.add_argument("-j", "--workers", type=int, help="local worker processes (default: all cores)")
+    run.add_argument(
+        "-j", "--workers", type=int, help="local worker processes (default: all cores)"
+    )
     run.add_argument(
         "--scheduler",
         metavar="ADDRESS|local",
         help="run on a Dask cluster: tcp://HOST:PORT, or 'local' to start one here",
     )
-    run.add_argument("--sheet", help="metadata sheet (CSV); default: metadata.csv in an input folder")
+    run.add_argument(
+        "--sheet", help="metadata sheet (CSV); default: metadata.csv in an input folder"
+    )
     run.add_argument("--no-figures", action="store_true", help="write tables and page only")
     run.add_argument("--force", action="store_true", help="replace another run's outputs")
     run.add_argument("-q", "--quiet", action="store_true", help="warnings and errors only")
 
     inspect = sub.add_parser("inspect", help="show what the readers and step finder see")
     inspect.add_argument("file")
-    inspect.add_argument("-c", "--config", help="TOML config (step schedule for files without current)")
+    inspect.add_argument(
+        "-c", "--config", help="TOML config (step schedule for files without current)"
+    )
 
     sample = sub.add_parser("sample", help="write the invented demo day into a folder")
     sample.add_argument("dir")

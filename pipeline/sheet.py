@@ -81,7 +81,7 @@ def read_sheet(path: str | Path) -> Sheet:
         text = raw.decode("utf-8-sig")
     except UnicodeDecodeError as exc:
         raise SheetError(
-            f"{where}: not UTF-8 text (byte {exc.start}: {raw[exc.start:exc.start + 1]!r}); "
+            f"{where}: not UTF-8 text (byte {exc.start}: {raw[exc.start : exc.start + 1]!r}); "
             "save the sheet as UTF-8 CSV"
         ) from None
     frame = _parse(text, where)
@@ -105,7 +105,9 @@ def _parse(text: str, where: str) -> pd.DataFrame:
     from io import StringIO
 
     try:
-        return pd.read_csv(StringIO(text), dtype=str, keep_default_na=False, sep=None, engine="python")
+        return pd.read_csv(
+            StringIO(text), dtype=str, keep_default_na=False, sep=None, engine="python"
+        )
     except (pd.errors.ParserError, pd.errors.EmptyDataError, ValueError) as exc:
         raise SheetError(f"{where}: not a readable CSV table ({exc})") from None
 
