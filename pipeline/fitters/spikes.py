@@ -1,0 +1,666 @@
+"""Spiking properties from current steps: spikes, firing per sweep, rheobase and the f-I slope.
+
+A spike starts where the smoothed dV/dt rises through a threshold (20 V/s = 20 mV/ms by default;
+10-20 mV/ms is *common practice*). It counts only when a peak follows within ``max_rise_s`` at
+least ``min_amplitude_v`` above that threshold and the voltage falls back below half the
+amplitude within ``max_fall_s``; crossings right after a step edge are the bridge artefact and
+never count. Injected current positive = depolarizing; rheobase and the f-I curve use
+depolarizing steps only, rebound spikes after any step are counted apart.
+
+SI units inside (V, A, s, Hz); ``*_row(s)`` methods give report units (mV, pA, ms, Hz/nA).
+"""
+
+from __future__ import annotations
+
+import math
+from collections.abc import Mapping, Sequence
+from dataclasses import dataclass, field, fields
+
+import numpy as np
+from scipy.ndimage import maximum_filter1d
+from scipy.signal import savgol_filter
+from scipy.stats import linregress
+
+from pipeline.errors import ConfigError
+from pipeline.recording import Recording, Sweep
+from pipeline.steps import StepEpoch
+
+NAN = math.nan
+
+
+def _is_real(value: object) -> bool:
+    """True for a finite int or float (not bool)."""
+    return isinstance(value, int | float) and not isinstance(value, bool) and math.isfinite(value)
+
+
+@dataclass(frozen=True)
+class SpikeSettings:
+    """How spikes are found and summarised; the ``[spikes]`` table of the config."""
+
+    # spike threshold: where the smoothed dV/dt rises through this, V/s (20 V/s = 20 mV/ms)
+    dvdt_threshold_v_per_s: float = 20.0
+    # Savitzky-Golay window (quadratic) of the dV/dt used for the threshold, s
+    dvdt_window_s: float = 2e-4
+    # a spike's threshold must come at least this long after the previous one, s
+    refractory_s: float = 1e-3
+    # peak minus threshold must reach this, V
+    min_amplitude_v: float = 0.02
+    # the peak itself must reach this, V
+    min_peak_v: float = -0.02
+    # the peak must follow the threshold crossing within this time, s
+    max_rise_s: float = 0.005
+    # after the peak the voltage must fall below half amplitude within this time, s
+    max_fall_s: float = 0.01
+    # dV/dt crossings this soon after a step onset or offset are the bridge artefact, s
+    edge_guard_s: float = 5e-4
+    # spikes up to this long after the step offset are counted as rebound spikes, s
+    rebound_window_s: float = 0.1
+    # the after-hyperpolarization trough is searched this long after a spike (or to the next), s
+    ahp_window_s: float = 0.05
+    # pre-step window in which the dV/dt noise is measured, s
+    noise_window_s: float = 0.02
+    # sweeps whose baseline dV/dt noise (robust SD) exceeds this get NaN spike values, V/s
+    max_dvdt_noise_v_per_s: float = 10.0
+    # no spikes for this long at the step end while above the first threshold = block, s
+    block_min_s: float = 0.05
+    # sweeps sampled slower than this cannot resolve spikes, Hz
+    min_sampling_rate_hz: float = 5000.0
+    # in-step spikes needed for the adaptation index (3 give one ISI pair)
+    adaptation_min_spikes: int = 4
+    # suprathreshold sweeps needed for the f-I slope
+    fi_min_sweeps: int = 3
+    # depolarizing steps closer than this count as the same amplitude, A
+    step_tolerance_a: float = 1e-12
+
+    def __post_init__(self) -> None:
+        minimum_count = {"adaptation_min_spikes": 3, "fi_min_sweeps": 2}
+        for f in fields(self):
+            value = getattr(self, f.name)
+            if f.name in minimum_count:
+                need = f"an integer >= {minimum_count[f.name]}"
+                ok = isinstance(value, int) and value >= minimum_count[f.name]
+            elif f.name == "min_peak_v":
+                need, ok = "a finite number", _is_real(value)
+            elif f.name == "dvdt_threshold_v_per_s":
+                need, ok = "a number > 0", _is_real(value) and value > 0
+            else:
+                need, ok = "a number >= 0", _is_real(value) and value >= 0
+            if not ok:
+                raise ConfigError(f"[spikes] {f.name} must be {need}, got {value!r}")
+
+
+@dataclass(frozen=True)
+class Spike:
+    """One action potential. Times in s from the sweep start, voltages in V.
+
+    Parameters
+    ----------
+    time_s : float
+        Threshold crossing: where the smoothed dV/dt rises through the threshold (interpolated).
+    threshold_v : float
+        Membrane potential at that time, V.
+    peak_v, peak_time_s : float
+        Maximum of the spike, V, and its time, s.
+    amplitude_v : float
+        ``peak_v - threshold_v``, V.
+    width_s : float
+        Width at half amplitude (``threshold_v + amplitude_v / 2``), linearly interpolated, s.
+    ahp_v : float
+        After-hyperpolarization depth: ``threshold_v`` minus the trough after the spike, V
+        (positive when the trough lies below threshold).
+    ahp_time_s : float
+        Delay from ``time_s`` to that trough, s.
+    max_rise_v_per_s, max_fall_v_per_s : float
+        Largest and most negative dV/dt of the spike (unsmoothed), V/s; the fall is negative.
+    in_step : bool
+        True when the threshold crossing lies within the step, False for a rebound spike.
+    """
+
+    time_s: float
+    threshold_v: float
+    peak_v: float
+    peak_time_s: float
+    amplitude_v: float
+    width_s: float
+    ahp_v: float
+    ahp_time_s: float
+    max_rise_v_per_s: float
+    max_fall_v_per_s: float
+    in_step: bool
+
+
+@dataclass(frozen=True)
+class SweepSpiking:
+    """Firing of one sweep. NaN where a value could not be measured; ``reason`` says why.
+
+    ``spike_count`` counts in-step spikes only (NaN when the sweep could not be analysed);
+    ``rate_hz`` is that count over the step duration (NaN in depolarization block);
+    ``adaptation_index`` is the mean over consecutive in-step ISI pairs of
+    ``(isi[n+1] - isi[n]) / (isi[n+1] + isi[n])`` (0 = regular, > 0 = slowing down).
+    """
+
+    sweep: int
+    step_a: float = NAN  # step current relative to holding, A (positive = depolarizing)
+    duration_s: float = NAN  # step duration, s
+    analysed: bool = False  # False when spikes could not be looked for (see reason)
+    spikes: tuple[Spike, ...] = ()  # in-step and rebound spikes, in time order
+    spike_count: int | float = NAN
+    rebound_spike_count: int | float = NAN
+    rate_hz: float = NAN
+    latency_s: float = NAN  # first in-step spike time from step onset
+    isis_s: tuple[float, ...] = ()  # in-step inter-spike intervals
+    adaptation_index: float = NAN
+    block: bool = False  # depolarization block: silent above threshold at the step end
+    reason: str = ""  # why values are NaN, '; '-separated
+
+
+@dataclass(frozen=True)
+class SpikeFit:
+    """Spiking properties of one cell (SI units).
+
+    Rheobase is the smallest depolarizing step that evoked at least one in-step spike; it is
+    known only to the step resolution (``subthreshold_max_a`` < true rheobase <= ``rheobase_a``).
+    The f-I slope is a least-squares line through the suprathreshold steps from rheobase up to,
+    not including, the first step in block or whose rate falls below a smaller step's rate.
+    """
+
+    cell_id: str
+    sweeps: tuple[SweepSpiking, ...] = ()
+    excluded: dict[int, str] = field(default_factory=dict)  # sweep number -> reason left out
+    rheobase_a: float = NAN
+    rheobase_sweep: int | None = None
+    subthreshold_max_a: float = NAN  # largest depolarizing step below rheobase without spikes
+    step_resolution_a: float = NAN  # smallest increment between distinct depolarizing steps
+    fi: tuple[tuple[float, float], ...] = ()  # (step_a, rate_hz) of depolarizing sweeps
+    fi_slope_hz_per_a: float = NAN
+    fi_intercept_hz: float = NAN
+    fi_sweeps: tuple[int, ...] = ()  # sweep numbers the slope was fitted on
+    max_rate_hz: float = NAN
+    first_spike: Spike | None = None  # first spike at rheobase
+    first_spike_latency_s: float = NAN
+    block_step_a: float = NAN  # smallest step in depolarization block
+    status: str = "ok"  # 'ok' or why the cell has no spiking values
+    reason: str = ""  # why some values are NaN, '; '-separated
+
+    def cell_row(self) -> dict[str, object]:
+        """Cell values in report units (mV, pA, ms, Hz/nA)."""
+        s = self.first_spike
+        return {
+            "rheobase_pa": self.rheobase_a * 1e12,
+            "rheobase_sweep": self.rheobase_sweep,
+            "subthreshold_max_pa": self.subthreshold_max_a * 1e12,
+            "step_resolution_pa": self.step_resolution_a * 1e12,
+            "fi_slope_hz_per_na": self.fi_slope_hz_per_a * 1e-9,
+            "fi_n_sweeps": len(self.fi_sweeps),
+            "max_rate_hz": self.max_rate_hz,
+            "first_spike_threshold_mv": s.threshold_v * 1e3 if s else NAN,
+            "first_spike_amplitude_mv": s.amplitude_v * 1e3 if s else NAN,
+            "first_spike_width_ms": s.width_s * 1e3 if s else NAN,
+            "first_spike_peak_mv": s.peak_v * 1e3 if s else NAN,
+            "first_spike_ahp_mv": s.ahp_v * 1e3 if s else NAN,
+            "first_spike_latency_ms": self.first_spike_latency_s * 1e3,
+            "block_step_pa": self.block_step_a * 1e12,
+            "spiking_status": self.status,
+            "spiking_reason": self.reason,
+        }
+
+    def sweep_rows(self) -> list[dict[str, object]]:
+        """One dict per analysed (or excluded) sweep, report units."""
+        return [
+            {
+                "sweep": r.sweep,
+                "spike_count": r.spike_count,
+                "rebound_spike_count": r.rebound_spike_count,
+                "spike_rate_hz": r.rate_hz,
+                "first_spike_latency_ms": r.latency_s * 1e3,
+                "mean_isi_ms": float(np.mean(r.isis_s)) * 1e3 if r.isis_s else NAN,
+                "adaptation_index": r.adaptation_index,
+                "depolarization_block": r.block,
+                "spiking_reason": r.reason,
+            }
+            for r in self.sweeps
+        ]
+
+    def spike_rows(self) -> list[dict[str, object]]:
+        """One dict per spike (``spike`` counts from 1 within its sweep), report units."""
+        return [
+            {
+                "sweep": r.sweep,
+                "spike": i,
+                "time_ms": s.time_s * 1e3,
+                "threshold_mv": s.threshold_v * 1e3,
+                "peak_mv": s.peak_v * 1e3,
+                "amplitude_mv": s.amplitude_v * 1e3,
+                "width_ms": s.width_s * 1e3,
+                "ahp_mv": s.ahp_v * 1e3,
+                "ahp_time_ms": s.ahp_time_s * 1e3,
+                "max_rise_v_per_s": s.max_rise_v_per_s,
+                "max_fall_v_per_s": s.max_fall_v_per_s,
+                "in_step": s.in_step,
+            }
+            for r in self.sweeps
+            for i, s in enumerate(r.spikes, start=1)
+        ]
+
+
+# ---------------------------------------------------------------- detection
+
+
+def _window_samples(settings: SpikeSettings, rate: float) -> int:
+    """Odd Savitzky-Golay window length (>= 3 samples) for the threshold dV/dt."""
+    n = max(3, int(round(settings.dvdt_window_s * rate)))
+    return n if n % 2 else n + 1
+
+
+def _analysis_span(n: int, rate: float, epoch: StepEpoch, settings: SpikeSettings) -> tuple:
+    """Sample span analysed: the noise window before onset to the end of the rebound window."""
+    start = max(0, epoch.onset_index - int(round(settings.noise_window_s * rate)))
+    stop = min(n, epoch.offset_index + int(round(settings.rebound_window_s * rate)))
+    return start, stop
+
+
+def _precheck(sweep: Sweep, epoch: StepEpoch, settings: SpikeSettings) -> str:
+    """Why the sweep cannot be searched for spikes, or '' when it can."""
+    if not epoch.usable:
+        return epoch.reason or f"step not usable ({epoch.kind})"
+    if sweep.rate < settings.min_sampling_rate_hz:
+        return (
+            f"sampling rate {sweep.rate / 1e3:g} kHz is below "
+            f"{settings.min_sampling_rate_hz / 1e3:g} kHz, too slow to resolve spikes"
+        )
+    n = sweep.n_samples
+    if not 0 <= epoch.onset_index < epoch.offset_index <= n:
+        return f"step samples {epoch.onset_index}-{epoch.offset_index} outside the sweep (0-{n})"
+    start, stop = _analysis_span(n, sweep.rate, epoch, settings)
+    if stop - start < _window_samples(settings, sweep.rate) + 2:
+        return "step too short to look for spikes"
+    bad = int(np.count_nonzero(~np.isfinite(sweep.voltage[start:stop])))
+    if bad:
+        return f"{bad} NaN or infinite voltage samples in the step window"
+    return ""
+
+
+def _robust_sd(x: np.ndarray) -> float:
+    """Standard deviation from the median absolute deviation (insensitive to a few spikes)."""
+    return float(1.4826 * np.median(np.abs(x - np.median(x)))) if x.size else NAN
+
+
+def _crossings(dvdt: np.ndarray, threshold: float) -> np.ndarray:
+    """Indices i where dvdt[i - 1] < threshold <= dvdt[i]."""
+    above = dvdt >= threshold
+    return np.flatnonzero(~above[:-1] & above[1:]) + 1
+
+
+def _interp_cross(y: np.ndarray, i: int, level: float) -> float:
+    """Fractional index between i - 1 and i where y crosses level."""
+    y0, y1 = y[i - 1], y[i]
+    return i - 1 + (level - y0) / (y1 - y0) if y1 != y0 else float(i)
+
+
+def _detect(
+    v: np.ndarray, rate: float, onset: int, offset: int, settings: SpikeSettings
+) -> tuple[list[Spike], float]:
+    """Find spikes in ``v`` (already cut to the analysis span; onset/offset relative to it).
+
+    Returns the spikes and the baseline dV/dt noise (robust SD, V/s; NaN without a baseline).
+    """
+    dt = 1.0 / rate
+    w = _window_samples(settings, rate)
+    dvdt = savgol_filter(v, w, 2, deriv=1, delta=dt)  # exact for quadratic onsets
+    raw = np.gradient(v, dt)
+    thr = settings.dvdt_threshold_v_per_s
+    n = v.size
+    guard_pre = w // 2 + 2  # the smoothing spreads an edge jump this far back
+    guard = int(round(settings.edge_guard_s * rate))
+    noise = _robust_sd(dvdt[: max(0, onset - guard_pre)])
+
+    cand = _crossings(dvdt, thr)
+    keep = cand >= onset
+    for edge in (onset, offset):
+        keep &= (cand < edge - guard_pre) | (cand > edge + guard)
+    cand = cand[keep]
+    rise_n = max(2, int(round(settings.max_rise_s * rate)))
+    fall_n = max(2, int(round(settings.max_fall_s * rate)))
+    refr_n = int(round(settings.refractory_s * rate))
+    # vectorised pre-filter: the largest voltage within max_rise_s ahead of each candidate
+    ahead = maximum_filter1d(v, size=rise_n, origin=-(rise_n // 2), mode="nearest")
+    ok = (ahead[cand] - v[cand] >= settings.min_amplitude_v) & (ahead[cand] >= settings.min_peak_v)
+    found: list[tuple[float, int, int, int]] = []  # (threshold index, peak, half-down, crossing)
+    resume = 0
+    for c in cand[ok]:
+        if c < resume:
+            continue
+        p = c + int(np.argmax(v[c : min(c + rise_n, n)]))
+        m = c + int(np.argmax(dvdt[c : p + 1]))
+        c = cand[np.searchsorted(cand, m, side="right") - 1]  # last crossing before max rise
+        x = _interp_cross(dvdt, c, thr)
+        v_thr = float(np.interp(x, (c - 1, c), v[c - 1 : c + 1]))
+        amp = v[p] - v_thr
+        if amp < settings.min_amplitude_v or v[p] < settings.min_peak_v:
+            continue
+        below = np.flatnonzero(v[p : min(p + fall_n, n)] < v_thr + amp / 2)
+        if below.size == 0:  # no repolarization: a plateau, not a spike
+            resume = p
+            continue
+        found.append((x, p, p + int(below[0]), c))
+        resume = max(p + int(below[0]), c + refr_n)
+
+    spikes = []
+    ahp_n = max(1, int(round(settings.ahp_window_s * rate)))
+    for k, (x, p, down, c) in enumerate(found):
+        in_step = bool(onset <= x < offset)
+        end = min(down + ahp_n, offset if in_step else n)
+        if k + 1 < len(found):
+            end = min(end, found[k + 1][3])
+        end = max(end, down + 1)
+        trough = down + int(np.argmin(v[down:end]))
+        v_thr = float(np.interp(x, (c - 1, c), v[c - 1 : c + 1]))
+        amp = float(v[p] - v_thr)
+        half = v_thr + amp / 2
+        up = p - int(np.flatnonzero(v[c - 1 : p + 1][::-1] < half)[0])
+        t_up = _interp_cross(v, up + 1, half)
+        t_down = _interp_cross(v, down, half)
+        spikes.append(
+            Spike(
+                time_s=x * dt,
+                threshold_v=v_thr,
+                peak_v=float(v[p]),
+                peak_time_s=p * dt,
+                amplitude_v=amp,
+                width_s=(t_down - t_up) * dt,
+                ahp_v=float(v_thr - v[trough]),
+                ahp_time_s=trough * dt - x * dt,
+                max_rise_v_per_s=float(raw[c - 1 : p + 1].max()),
+                max_fall_v_per_s=float(raw[p : trough + 1].min()),
+                in_step=in_step,
+            )
+        )
+    return spikes, noise
+
+
+def _shift(spike: Spike, t0: float) -> Spike:
+    """The same spike with its times moved from the span start to the sweep start."""
+    return Spike(
+        **{
+            **spike.__dict__,
+            "time_s": spike.time_s + t0,
+            "peak_time_s": spike.peak_time_s + t0,
+        }
+    )
+
+
+def detect_spikes(
+    sweep: Sweep, epoch: StepEpoch, settings: SpikeSettings | None = None
+) -> list[Spike]:
+    """Spikes from step onset to ``rebound_window_s`` after its offset.
+
+    Parameters
+    ----------
+    sweep : Sweep
+        Voltage in V, rate in Hz.
+    epoch : StepEpoch
+        The sweep's step (onset and offset sample indices are used).
+    settings : SpikeSettings, optional
+        Detection criteria; defaults when omitted.
+
+    Returns
+    -------
+    list of Spike
+        In time order, times in s from the sweep start. Empty when the sweep cannot be searched
+        (NaN samples, unusable step, sampling too slow): :func:`measure_spiking` gives the reason.
+    """
+    settings = settings or SpikeSettings()
+    if _precheck(sweep, epoch, settings):
+        return []
+    start, stop = _analysis_span(sweep.n_samples, sweep.rate, epoch, settings)
+    spikes, _ = _detect(
+        sweep.voltage[start:stop],
+        sweep.rate,
+        epoch.onset_index - start,
+        epoch.offset_index - start,
+        settings,
+    )
+    return [_shift(s, start / sweep.rate) for s in spikes]
+
+
+# ---------------------------------------------------------------- per sweep
+
+
+def adaptation_index(isis: Sequence[float]) -> float:
+    """Mean over consecutive ISI pairs of ``(isi[n+1] - isi[n]) / (isi[n+1] + isi[n])``.
+
+    Parameters
+    ----------
+    isis : sequence of float
+        Inter-spike intervals, s, in order.
+
+    Returns
+    -------
+    float
+        0 for regular firing, positive when firing slows, negative when it speeds up; NaN with
+        fewer than two intervals.
+    """
+    isi = np.asarray(isis, dtype=float)
+    if isi.size < 2:
+        return NAN
+    return float(np.mean(np.diff(isi) / (isi[1:] + isi[:-1])))
+
+
+def _in_block(
+    v: np.ndarray, rate: float, epoch: StepEpoch, first: Spike, last: Spike, s: SpikeSettings
+) -> bool:
+    """Silent for at least ``block_min_s`` before the offset while above the first threshold."""
+    t_end = last.time_s + last.ahp_time_s
+    if epoch.offset - t_end < s.block_min_s:
+        return False
+    i0 = int(round((epoch.offset - s.block_min_s / 2) * rate))
+    tail = v[i0 : epoch.offset_index]
+    return tail.size > 0 and float(np.median(tail)) >= first.threshold_v
+
+
+def measure_spiking(
+    sweep: Sweep, epoch: StepEpoch, settings: SpikeSettings | None = None
+) -> SweepSpiking:
+    """Detect spikes in one sweep and summarise its firing.
+
+    Parameters
+    ----------
+    sweep : Sweep
+        Voltage in V, rate in Hz.
+    epoch : StepEpoch
+        The sweep's step; ``amplitude`` in A, positive = depolarizing.
+    settings : SpikeSettings, optional
+        Detection criteria; defaults when omitted.
+
+    Returns
+    -------
+    SweepSpiking
+        NaN values carry a reason: NaN samples, too much noise, no spikes, block...
+    """
+    settings = settings or SpikeSettings()
+    base = dict(sweep=sweep.number, step_a=epoch.amplitude, duration_s=epoch.duration)
+    problem = _precheck(sweep, epoch, settings)
+    if problem:
+        return SweepSpiking(**base, reason=problem)
+    start, stop = _analysis_span(sweep.n_samples, sweep.rate, epoch, settings)
+    spikes, noise = _detect(
+        sweep.voltage[start:stop],
+        sweep.rate,
+        epoch.onset_index - start,
+        epoch.offset_index - start,
+        settings,
+    )
+    if noise > settings.max_dvdt_noise_v_per_s:
+        return SweepSpiking(
+            **base,
+            reason=f"baseline dV/dt noise {noise:.3g} V/s exceeds "
+            f"{settings.max_dvdt_noise_v_per_s:g} V/s: spike threshold unreliable",
+        )
+    spikes = [_shift(s, start / sweep.rate) for s in spikes]
+    step = [s for s in spikes if s.in_step]
+    times = np.array([s.time_s for s in step])
+    isis = tuple(float(d) for d in np.diff(times))
+    reasons = []
+    if not step:
+        reasons.append("no spikes during the step")
+    if len(step) < settings.adaptation_min_spikes:
+        reasons.append(
+            f"adaptation index needs {settings.adaptation_min_spikes} spikes, got {len(step)}"
+        )
+    block = bool(step) and _in_block(sweep.voltage, sweep.rate, epoch, step[0], step[-1], settings)
+    rate = len(step) / epoch.duration
+    if block:
+        rate = NAN
+        reasons.append(
+            f"depolarization block: no spikes after {(step[-1].time_s - epoch.onset) * 1e3:.0f} ms"
+            " while the membrane stays above the first spike's threshold"
+        )
+    return SweepSpiking(
+        **base,
+        analysed=True,
+        spikes=tuple(spikes),
+        spike_count=len(step),
+        rebound_spike_count=len(spikes) - len(step),
+        rate_hz=rate,
+        latency_s=step[0].time_s - epoch.onset if step else NAN,
+        isis_s=isis,
+        adaptation_index=(
+            adaptation_index(isis) if len(step) >= settings.adaptation_min_spikes else NAN
+        ),
+        block=block,
+        reason="; ".join(reasons),
+    )
+
+
+# ---------------------------------------------------------------- per cell
+
+
+def _distinct(values: Sequence[float], tol: float) -> np.ndarray:
+    """Sorted values with near-duplicates (closer than tol) merged."""
+    v = np.sort(np.asarray(values, dtype=float))
+    if v.size == 0:
+        return v
+    return v[np.concatenate(([True], np.diff(v) > tol))]
+
+
+def _fi_slope(depol: list[SweepSpiking], rheobase: float, settings: SpikeSettings):
+    """Slope (Hz/A), intercept (Hz) and sweeps of the f-I line below saturation or block."""
+    used, best = [], -math.inf
+    for r in sorted(depol, key=lambda r: r.step_a):
+        if r.step_a < rheobase - settings.step_tolerance_a:
+            continue
+        if r.block or r.rate_hz < best:
+            break  # block or falling rate: the linear part is over
+        used.append(r)
+        best = r.rate_hz
+    amps = _distinct([r.step_a for r in used], settings.step_tolerance_a)
+    if len(used) < settings.fi_min_sweeps or amps.size < 2:
+        return (
+            NAN,
+            NAN,
+            tuple(r.sweep for r in used),
+            (
+                f"f-I slope needs {settings.fi_min_sweeps} suprathreshold sweeps at 2 or more "
+                f"amplitudes before saturation or block, got {len(used)}"
+            ),
+        )
+    fit = linregress([r.step_a for r in used], [r.rate_hz for r in used])
+    return float(fit.slope), float(fit.intercept), tuple(r.sweep for r in used), ""
+
+
+def fit_spiking(
+    recording: Recording,
+    epochs: Sequence[StepEpoch],
+    settings: SpikeSettings | None = None,
+    exclude: Mapping[int, str] | None = None,
+) -> SpikeFit:
+    """Spiking properties of one cell from its step sweeps.
+
+    Parameters
+    ----------
+    recording : Recording
+        The cell's sweeps (V, A, Hz).
+    epochs : sequence of StepEpoch
+        One per sweep, matched by sweep number; unusable ones are skipped.
+    settings : SpikeSettings, optional
+        Detection criteria; defaults when omitted.
+    exclude : mapping of int to str, optional
+        Sweep number -> reason; those sweeps get NaN rows and are left out of the cell values.
+
+    Returns
+    -------
+    SpikeFit
+        Rheobase (to the step resolution), f-I slope, max rate, first spike at rheobase.
+    """
+    settings = settings or SpikeSettings()
+    exclude = {int(k): str(v) for k, v in (exclude or {}).items()}
+    by_number = {s.number: s for s in recording.sweeps}
+    rows = []
+    for ep in epochs:
+        if not ep.usable or ep.sweep not in by_number:
+            continue
+        if ep.sweep in exclude:
+            rows.append(
+                SweepSpiking(
+                    ep.sweep, ep.amplitude, ep.duration, reason=f"excluded: {exclude[ep.sweep]}"
+                )
+            )
+        else:
+            rows.append(measure_spiking(by_number[ep.sweep], ep, settings))
+    return _summarise(recording.cell_id, tuple(rows), exclude, settings)
+
+
+def _summarise(
+    cell_id: str, rows: tuple[SweepSpiking, ...], exclude: dict[int, str], s: SpikeSettings
+) -> SpikeFit:
+    """Cell values from the per-sweep results."""
+    base = dict(cell_id=cell_id, sweeps=rows, excluded=exclude)
+    if not any(r.step_a > 0 for r in rows):
+        return SpikeFit(**base, status="no usable depolarizing sweeps")
+    depol = [r for r in rows if r.analysed and r.step_a > 0]
+    if not depol:
+        return SpikeFit(**base, status="no depolarizing sweep could be analysed")
+    amps = _distinct([r.step_a for r in depol], s.step_tolerance_a)
+    resolution = float(np.diff(amps).min()) if amps.size > 1 else NAN
+    fi = tuple(sorted((r.step_a, r.rate_hz) for r in depol if math.isfinite(r.rate_hz)))
+    rates = [r.rate_hz for r in depol if math.isfinite(r.rate_hz)]
+    blocked = [r.step_a for r in depol if r.block]
+    base.update(
+        step_resolution_a=resolution,
+        fi=fi,
+        max_rate_hz=max(rates) if rates else NAN,
+        block_step_a=min(blocked) if blocked else NAN,
+    )
+    reasons = [] if amps.size > 1 else ["step resolution needs 2 depolarizing amplitudes"]
+    spiking = [r for r in depol if r.spike_count >= 1]
+    if not spiking:
+        largest = max(r.step_a for r in depol) * 1e12
+        return SpikeFit(
+            **base,
+            status=f"no spikes in {len(depol)} depolarizing sweeps (largest step {largest:.4g} pA)",
+            reason="; ".join(reasons),
+        )
+    rheo = min(spiking, key=lambda r: r.step_a)  # min() keeps the first of equal steps
+    below = [
+        r.step_a
+        for r in depol
+        if r.spike_count == 0 and r.step_a < rheo.step_a - s.step_tolerance_a
+    ]
+    if not below:
+        reasons.append("rheobase is at or below the smallest analysed depolarizing step")
+    slope, intercept, fi_sweeps, why = _fi_slope(depol, rheo.step_a, s)
+    if why:
+        reasons.append(why)
+    first = next(sp for sp in rheo.spikes if sp.in_step)
+    return SpikeFit(
+        **base,
+        rheobase_a=rheo.step_a,
+        rheobase_sweep=rheo.sweep,
+        subthreshold_max_a=max(below) if below else NAN,
+        fi_slope_hz_per_a=slope,
+        fi_intercept_hz=intercept,
+        fi_sweeps=fi_sweeps,
+        first_spike=first,
+        first_spike_latency_s=rheo.latency_s,
+        reason="; ".join(reasons),
+    )

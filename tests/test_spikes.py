@@ -1,0 +1,420 @@
+"""Spike detection and spiking summaries on analytic waveforms with known answers.
+
+Threshold as the dV/dt crossing of 20 mV/ms and width at half the threshold-to-peak amplitude
+are *common practice* (see REFERENCES.md, "Spiking"); the expected values below follow from the
+waveforms' formulas, not from the code under test.
+"""
+
+from __future__ import annotations
+
+import math
+
+import numpy as np
+import pytest
+from scipy.optimize import brentq
+
+from pipeline.errors import ConfigError
+from pipeline.fitters.spikes import (
+    SpikeSettings,
+    adaptation_index,
+    detect_spikes,
+    fit_spiking,
+    measure_spiking,
+)
+from pipeline.recording import Recording, Sweep
+from pipeline.steps import StepEpoch
+
+RATE = 50_000.0  # Hz
+DT = 1 / RATE
+V0 = -0.065  # V, resting level of the synthetic traces
+ONSET, OFFSET, END = 0.1, 0.6, 0.8  # s
+
+
+def epoch(number: int = 0, amp: float = 100e-12, onset=ONSET, offset=OFFSET) -> StepEpoch:
+    """A usable step epoch built by hand (the step finder is another module)."""
+    return StepEpoch(
+        sweep=number,
+        usable=True,
+        kind="step",
+        reason="",
+        holding=0.0,
+        amplitude=amp,
+        onset=onset,
+        offset=offset,
+        onset_index=int(round(onset * RATE)),
+        offset_index=int(round(offset * RATE)),
+    )
+
+
+def sweep(v: np.ndarray, number: int = 0, amp: float = 100e-12) -> Sweep:
+    """A sweep with its step current."""
+    t = np.arange(v.size) * DT
+    i = np.where((t >= ONSET - DT / 2) & (t < OFFSET - DT / 2), amp, 0.0)
+    return Sweep(voltage=v, current=i, rate=RATE, number=number)
+
+
+def flat(level: float = V0) -> np.ndarray:
+    """A flat trace of the whole sweep length."""
+    return np.full(int(round(END * RATE)), level)
+
+
+# Piecewise spike (knots on the sample grid): quadratic foot V0 + a*(t-t0)^2/2 for 0.4 ms, linear
+# rise at RISE to the peak in 0.4 ms, linear fall at -FALL for 0.9 ms, linear recovery to V0 in 5 ms.
+A_FOOT, RISE, FALL = 1e5, 200.0, 100.0  # V/s^2, V/s, V/s
+
+
+def add_piecewise_spike(v: np.ndarray, t0: float) -> None:
+    """Overwrite ``v`` with the piecewise spike starting at ``t0`` (s, on the sample grid)."""
+    t = np.arange(v.size) * DT - t0
+    knots_t = [0.4e-3, 0.8e-3, 1.7e-3, 6.7e-3]
+    top = V0 + A_FOOT * (0.4e-3) ** 2 / 2
+    knots_v = [top, top + RISE * 0.4e-3, top + RISE * 0.4e-3 - FALL * 0.9e-3, V0]
+    foot = (t >= 0) & (t < knots_t[0])
+    v[foot] = V0 + A_FOOT * t[foot] ** 2 / 2
+    rest = (t >= knots_t[0]) & (t <= knots_t[-1])
+    v[rest] = np.interp(t[rest], knots_t, knots_v)
+
+
+def piecewise_truth(t0: float, thr: float = 20.0) -> dict[str, float]:
+    """Threshold, peak, width... of the piecewise spike, from its formulas."""
+    t_thr = thr / A_FOOT  # dV/dt = a*t reaches thr
+    v_thr = V0 + A_FOOT * t_thr**2 / 2
+    top = V0 + A_FOOT * (0.4e-3) ** 2 / 2
+    peak = top + RISE * 0.4e-3
+    half = (v_thr + peak) / 2
+    t_up = 0.4e-3 + (half - top) / RISE
+    t_down = 0.8e-3 + (peak - half) / FALL
+    trough = peak - FALL * 0.9e-3
+    return {
+        "time_s": t0 + t_thr,
+        "threshold_v": v_thr,
+        "peak_v": peak,
+        "width_s": t_down - t_up,
+        "ahp_v": v_thr - trough,
+        "ahp_time_s": 1.7e-3 - t_thr,
+        "max_rise_v_per_s": RISE,
+        "max_fall_v_per_s": -FALL,
+    }
+
+
+def test_piecewise_spike_exact_threshold_width_and_ahp():
+    # the quadratic foot makes the Savitzky-Golay dV/dt exact there, so the interpolated
+    # crossing is exact; the linear flanks make the half-amplitude crossings exact
+    v = flat()
+    t0 = 0.2
+    add_piecewise_spike(v, t0)
+    spikes = detect_spikes(sweep(v), epoch())
+    assert len(spikes) == 1
+    s = spikes[0]
+    for key, expected in piecewise_truth(t0).items():
+        assert getattr(s, key) == pytest.approx(expected, rel=1e-6, abs=1e-9), key
+    assert s.amplitude_v == pytest.approx(s.peak_v - s.threshold_v)
+    assert s.in_step
+
+
+def test_threshold_follows_the_setting():
+    v = flat()
+    add_piecewise_spike(v, 0.2)
+    settings = SpikeSettings(dvdt_threshold_v_per_s=30.0)
+    s = detect_spikes(sweep(v), epoch(), settings)[0]
+    expected = piecewise_truth(0.2, thr=30.0)
+    assert s.time_s == pytest.approx(expected["time_s"], abs=1e-9)
+    assert s.threshold_v == pytest.approx(expected["threshold_v"], abs=1e-9)
+
+
+def gaussian_spike(t: np.ndarray, tc: float, amp: float, sigma: float) -> np.ndarray:
+    return V0 + amp * np.exp(-((t - tc) ** 2) / (2 * sigma**2))
+
+
+def test_gaussian_spike_threshold_and_half_width():
+    # truth from the analytic derivative: solve dV/dt = 20 V/s on the rising flank (brentq), then
+    # the half-amplitude level of a Gaussian is crossed at tc +- sigma*sqrt(2 ln(amp / h))
+    tc, amp, sigma = 0.3, 0.09, 3e-4
+    t = np.arange(int(round(END * RATE))) * DT
+    v = gaussian_spike(t, tc, amp, sigma)
+
+    def slope(x: float) -> float:
+        return -amp * (x - tc) / sigma**2 * math.exp(-((x - tc) ** 2) / (2 * sigma**2)) - 20.0
+
+    t_thr = brentq(slope, tc - 10 * sigma, tc - sigma)
+    v_thr = float(gaussian_spike(np.array([t_thr]), tc, amp, sigma)[0])
+    half = (v_thr + V0 + amp) / 2
+    width = 2 * sigma * math.sqrt(2 * math.log(amp / (half - V0)))
+    s = detect_spikes(sweep(v), epoch())
+    assert len(s) == 1
+    assert s[0].time_s == pytest.approx(t_thr, abs=1e-5)  # half a sample
+    # the 0.2 ms smoothing window moves the crossing on this steep foot by < half a sample
+    assert s[0].threshold_v == pytest.approx(v_thr, abs=2e-4)
+    assert s[0].width_s == pytest.approx(width, rel=0.01)
+    assert s[0].max_rise_v_per_s == pytest.approx(amp / sigma * math.exp(-0.5), rel=0.01)
+
+
+def test_notched_upstroke_is_one_spike():
+    v = flat()
+    add_piecewise_spike(v, 0.2)
+    # hold the voltage for 0.3 ms halfway up the upstroke: dV/dt drops below threshold and
+    # rises through it again, still one spike
+    i = int(round((0.2 + 0.6e-3) / DT))
+    v = np.concatenate([v[:i], np.full(15, v[i]), v[i:-15]])
+    s = detect_spikes(sweep(v), epoch())
+    assert len(s) == 1
+    assert s[0].time_s == pytest.approx(piecewise_truth(0.2)["time_s"], abs=1e-9)
+
+
+def test_refractory_guard():
+    v = flat()
+    add_piecewise_spike(v, 0.2)
+    add_piecewise_spike(v, 0.203)  # thresholds 3 ms apart
+    assert len(detect_spikes(sweep(v), epoch(), SpikeSettings(refractory_s=1e-3))) == 2
+    assert len(detect_spikes(sweep(v), epoch(), SpikeSettings(refractory_s=4e-3))) == 1
+
+
+def bridge_artefact(v: np.ndarray, jump: float, spike: float, lag: float = 3e-4) -> None:
+    """Bridge jump while the step is on plus a fast capacitive overshoot (tau 30 us) at each
+    edge, ``lag`` s after the edges (a slow electrode and the amplifier filter)."""
+    t = np.arange(v.size) * DT - lag
+    v[(t >= ONSET) & (t < OFFSET)] += jump
+    for edge, sign in ((ONSET, 1.0), (OFFSET, -1.0)):
+        after = t >= edge
+        v[after] += sign * spike * np.exp(-(t[after] - edge) / 30e-6)
+
+
+def test_onset_and_offset_artefacts_are_not_spikes():
+    v = flat()
+    bridge_artefact(v, jump=0.015, spike=0.04)
+    assert detect_spikes(sweep(v), epoch()) == []
+    # a hyperpolarizing step puts the upward overshoot at the offset
+    v_neg = flat()
+    bridge_artefact(v_neg, jump=-0.015, spike=-0.06)
+    assert detect_spikes(sweep(v_neg, amp=-100e-12), epoch(amp=-100e-12)) == []
+    # without the guard the overshoot would pass as a spike: the guard is what rejects it
+    assert len(detect_spikes(sweep(v), epoch(), SpikeSettings(edge_guard_s=0.0))) == 1
+    no_guard = detect_spikes(
+        sweep(v_neg, amp=-100e-12), epoch(amp=-100e-12), SpikeSettings(edge_guard_s=0.0)
+    )
+    assert len(no_guard) == 1 and not no_guard[0].in_step
+
+
+def test_spike_right_after_the_artefact_still_counts():
+    v = flat()
+    bridge_artefact(v, jump=0.01, spike=0.04)
+    spike = flat()
+    add_piecewise_spike(spike, ONSET + 2e-3)
+    v += spike - V0  # the spike rides on the bridge jump
+    s = detect_spikes(sweep(v), epoch())
+    assert len(s) == 1
+    truth = piecewise_truth(ONSET + 2e-3)
+    assert s[0].time_s == pytest.approx(truth["time_s"], abs=1e-7)
+    assert s[0].threshold_v == pytest.approx(truth["threshold_v"] + 0.01, abs=1e-6)
+
+
+def test_noise_without_spikes_gives_none():
+    rng = np.random.default_rng(7)
+    v = flat() + rng.normal(0, 0.3e-3, int(round(END * RATE)))
+    t = np.arange(v.size) * DT
+    v += np.where((t >= ONSET) & (t < OFFSET), 0.01 * (1 - np.exp(-(t - ONSET) / 0.02)), 0)
+    r = measure_spiking(sweep(v), epoch())
+    assert r.analysed and r.spike_count == 0 and r.spikes == ()
+    assert math.isnan(r.latency_s) and "no spikes" in r.reason
+
+
+def test_spikes_found_through_moderate_noise():
+    rng = np.random.default_rng(11)
+    v = flat()
+    for k in range(5):
+        add_piecewise_spike(v, 0.15 + 0.05 * k)
+    v += rng.normal(0, 0.2e-3, v.size)
+    r = measure_spiking(sweep(v), epoch())
+    assert r.spike_count == 5
+    expected = [piecewise_truth(0.15 + 0.05 * k)["time_s"] for k in range(5)]
+    np.testing.assert_allclose([s.time_s for s in r.spikes], expected, atol=1e-4)
+
+
+def test_large_noise_gives_nan_with_reason():
+    rng = np.random.default_rng(3)
+    v = flat() + rng.normal(0, 3e-3, int(round(END * RATE)))
+    r = measure_spiking(sweep(v), epoch())
+    assert not r.analysed and math.isnan(r.spike_count) and math.isnan(r.rate_hz)
+    assert "noise" in r.reason
+
+
+def test_depolarization_block_spike_then_plateau():
+    v = flat()
+    add_piecewise_spike(v, 0.11)
+    t = np.arange(v.size) * DT
+    # after the spike the membrane settles on a plateau above threshold with small ringing
+    late = (t > 0.1117) & (t < OFFSET)
+    v[late] = -0.035 + 0.004 * np.exp(-(t[late] - 0.1117) / 0.01) * np.sin(
+        2 * np.pi * 80 * (t[late] - 0.1117)
+    )
+    r = measure_spiking(sweep(v), epoch())
+    assert r.spike_count == 1
+    assert r.block and math.isnan(r.rate_hz) and "block" in r.reason
+    # the same single spike followed by a return below threshold is not block
+    v2 = flat()
+    add_piecewise_spike(v2, 0.11)
+    r2 = measure_spiking(sweep(v2), epoch())
+    assert not r2.block and r2.rate_hz == pytest.approx(1 / (OFFSET - ONSET))
+
+
+def test_plateau_without_repolarization_is_not_a_spike():
+    v = flat()
+    t = np.arange(v.size) * DT
+    rise = (t >= 0.2) & (t < OFFSET)
+    v[rise] = V0 + np.minimum((t[rise] - 0.2) * 200.0, 0.09)  # fast rise to +25 mV, stays
+    assert detect_spikes(sweep(v), epoch()) == []
+
+
+def test_nan_run_gives_nan_with_reason():
+    v = flat()
+    add_piecewise_spike(v, 0.2)
+    v[int(0.3 * RATE) : int(0.3 * RATE) + 50] = np.nan
+    r = measure_spiking(sweep(v), epoch())
+    assert not r.analysed and math.isnan(r.spike_count) and "NaN" in r.reason
+    assert detect_spikes(sweep(v), epoch()) == []
+    v_late = flat()
+    add_piecewise_spike(v_late, 0.2)
+    v_late[-10:] = np.nan  # beyond the rebound window: harmless
+    assert measure_spiking(sweep(v_late), epoch()).spike_count == 1
+
+
+def test_rebound_spike_counted_apart():
+    v = flat()
+    add_piecewise_spike(v, OFFSET + 0.02)
+    r = measure_spiking(sweep(v, amp=-100e-12), epoch(amp=-100e-12))
+    assert r.spike_count == 0 and r.rebound_spike_count == 1
+    assert not r.spikes[0].in_step
+
+
+def test_latency_isis_and_adaptation():
+    starts = [0.12, 0.14, 0.17, 0.21, 0.26]  # ISIs 20, 30, 40, 50 ms
+    v = flat()
+    for t0 in starts:
+        add_piecewise_spike(v, t0)
+    r = measure_spiking(sweep(v), epoch())
+    assert r.spike_count == 5
+    assert r.latency_s == pytest.approx(0.02 + 2e-4, abs=1e-8)
+    np.testing.assert_allclose(r.isis_s, np.diff(starts), atol=1e-8)
+    expected = np.mean([10 / 50, 10 / 70, 10 / 90])  # (isi[n+1]-isi[n])/(isi[n+1]+isi[n])
+    assert r.adaptation_index == pytest.approx(expected, rel=1e-6)
+    assert adaptation_index([0.01, 0.01, 0.01]) == 0.0
+    assert math.isnan(adaptation_index([0.01]))
+
+
+def cell(amps_pa, counts, block_at=None) -> tuple[Recording, list[StepEpoch]]:
+    """Synthetic cell: sweep k gets ``counts[k]`` evenly spread spikes in its 0.5 s step."""
+    sweeps, epochs = [], []
+    for k, (amp_pa, n) in enumerate(zip(amps_pa, counts, strict=True)):
+        v = flat()
+        for j in range(n):
+            add_piecewise_spike(v, round((ONSET + 0.01 + j * 0.45 / max(n, 1)) / DT) * DT)
+        if k == block_at:
+            v = flat()
+            add_piecewise_spike(v, 0.11)
+            v[int(0.1117 * RATE) : int(OFFSET * RATE)] = -0.03
+        sweeps.append(sweep(v, number=k + 1, amp=amp_pa * 1e-12))
+        epochs.append(epoch(k + 1, amp_pa * 1e-12))
+    return Recording("c1", "c1.nwb", "e0", tuple(sweeps)), epochs
+
+
+def test_cell_rheobase_fi_slope_and_block():
+    amps = [-40, -20, 20, 40, 60, 80, 100, 120, 140]
+    counts = [0, 0, 0, 0, 2, 4, 6, 8, 0]  # 4 Hz more per 20 pA: 0.2 Hz/pA = 200 Hz/nA
+    rec, eps = cell(amps, counts, block_at=8)
+    fit = fit_spiking(rec, eps)
+    assert fit.status == "ok"
+    assert fit.rheobase_a == pytest.approx(60e-12) and fit.rheobase_sweep == 5
+    assert fit.subthreshold_max_a == pytest.approx(40e-12)
+    assert fit.step_resolution_a == pytest.approx(20e-12)
+    assert fit.fi_slope_hz_per_a == pytest.approx(0.2e12, rel=1e-9)
+    assert fit.fi_sweeps == (5, 6, 7, 8)
+    assert fit.block_step_a == pytest.approx(140e-12)
+    assert fit.max_rate_hz == pytest.approx(16.0)
+    row = fit.cell_row()
+    assert row["rheobase_pa"] == pytest.approx(60) and row["fi_slope_hz_per_na"] == pytest.approx(
+        200
+    )
+    assert row["first_spike_threshold_mv"] == pytest.approx(piecewise_truth(0)["threshold_v"] * 1e3)
+    assert row["spiking_status"] == "ok"
+    sweeps = fit.sweep_rows()
+    assert [r["sweep"] for r in sweeps] == list(range(1, 10))
+    assert sweeps[8]["depolarization_block"] and math.isnan(sweeps[8]["spike_rate_hz"])
+    spikes = fit.spike_rows()
+    assert len(spikes) == sum(counts) + 1
+    assert set(spikes[0]) == {
+        "sweep",
+        "spike",
+        "time_ms",
+        "threshold_mv",
+        "peak_mv",
+        "amplitude_mv",
+        "width_ms",
+        "ahp_mv",
+        "ahp_time_ms",
+        "max_rise_v_per_s",
+        "max_fall_v_per_s",
+        "in_step",
+    }
+
+
+def test_fi_stops_at_saturation_and_excluded_sweeps_are_left_out():
+    amps = [20, 40, 60, 80, 100, 120]
+    counts = [0, 2, 4, 6, 4, 8]  # the rate falls at 100 pA: the linear part ends there
+    rec, eps = cell(amps, counts)
+    fit = fit_spiking(rec, eps)
+    assert fit.fi_sweeps == (2, 3, 4)
+    assert fit.fi_slope_hz_per_a == pytest.approx(0.2e12)
+    fit_ex = fit_spiking(rec, eps, exclude={2: "baseline drift"})
+    assert fit_ex.rheobase_a == pytest.approx(60e-12)
+    assert fit_ex.subthreshold_max_a == pytest.approx(20e-12)  # the 20 pA step is silent
+    row = next(r for r in fit_ex.sweep_rows() if r["sweep"] == 2)
+    assert math.isnan(row["spike_count"]) and "baseline drift" in row["spiking_reason"]
+    assert fit_ex.excluded == {2: "baseline drift"}
+
+
+def test_cell_without_spikes_or_depolarizing_steps():
+    rec, eps = cell([20, 40, 60], [0, 0, 0])
+    fit = fit_spiking(rec, eps)
+    assert math.isnan(fit.rheobase_a) and fit.rheobase_sweep is None
+    assert fit.status.startswith("no spikes in 3 depolarizing sweeps")
+    assert fit.cell_row()["max_rate_hz"] == 0.0
+    rec, eps = cell([-60, -40, -20], [0, 0, 0])
+    fit = fit_spiking(rec, eps)
+    assert fit.status == "no usable depolarizing sweeps"
+    assert math.isnan(fit.cell_row()["first_spike_width_ms"])
+    assert fit_spiking(Recording("c0", "c0.nwb", "e0", ()), []).status == (
+        "no usable depolarizing sweeps"
+    )
+
+
+def test_rheobase_at_smallest_step_is_only_an_upper_bound():
+    rec, eps = cell([20, 40, 60], [2, 4, 6])
+    fit = fit_spiking(rec, eps)
+    assert fit.rheobase_a == pytest.approx(20e-12)
+    assert math.isnan(fit.subthreshold_max_a) and "smallest" in fit.reason
+
+
+def test_bad_epochs_and_slow_sampling_give_reasons():
+    v = flat()
+    bad = StepEpoch(0, False, "ramp", "current is a ramp", 0.0, 1e-10, 0.1, 0.6, 5000, 30000)
+    assert measure_spiking(sweep(v), bad).reason == "current is a ramp"
+    slow = Sweep(voltage=v[::25], current=None, rate=RATE / 25, number=0)
+    r = measure_spiking(slow, epoch())
+    assert not r.analysed and "sampling rate" in r.reason
+    outside = epoch(onset=0.1, offset=2.0)
+    assert "outside the sweep" in measure_spiking(sweep(v), outside).reason
+
+
+@pytest.mark.parametrize(
+    ("field", "value"),
+    [
+        ("dvdt_threshold_v_per_s", 0.0),
+        ("refractory_s", -1e-3),
+        ("min_peak_v", math.nan),
+        ("fi_min_sweeps", 1),
+        ("adaptation_min_spikes", 2.5),
+    ],
+)
+def test_settings_validation_names_the_field(field, value):
+    with pytest.raises(ConfigError, match=rf"\[spikes\] {field} must be"):
+        SpikeSettings(**{field: value})
