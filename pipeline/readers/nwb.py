@@ -14,6 +14,7 @@ from __future__ import annotations
 import math
 import re
 import warnings
+from collections import Counter
 from collections.abc import Iterable
 from dataclasses import dataclass
 from pathlib import Path
@@ -119,6 +120,11 @@ def _recordings(path: Path, nwbfile: Any) -> list[Recording]:
             (_load(name, r, "V", ref_r), None if s is None else _load(name, s, "A", ref_s))
             for (r, ref_r), (s, ref_s) in pairs
         ]
+        # Rows cutting one series into several sweeps: number those sweeps by row order.
+        counts = Counter(r.name for r, _ in pairs)
+        for r, _ in pairs:
+            if counts[r.name] > 1:
+                r.sweep_number = None
     return build_recordings(path, pairs, metadata(nwbfile), skipped)
 
 
@@ -147,7 +153,7 @@ def _load(path: str, series: Any, base: str, ref: Any = None) -> SeriesData:
     """Load one pynwb series into memory, in SI, honouring a table row's (idx_start, count)."""
     kind = type(series).__name__
     what = f"{series.name} ({kind})"
-    factor = check_volts_or_amps(path, what, series.unit, base)
+    factor = check_volts_or_amps(path, what, stored_unit(series), base)
     conversion = float(series.conversion) if series.conversion is not None else 1.0
     offset = float(getattr(series, "offset", 0.0) or 0.0)
     start, stop = 0, None
@@ -180,6 +186,20 @@ def _load(path: str, series: Any, base: str, ref: Any = None) -> SeriesData:
         protocol="" if protocol == NO_DESCRIPTION else protocol,
         settings=settings,
     )
+
+
+def stored_unit(series: Any) -> str:
+    """The unit as written in the file.
+
+    pynwb replaces a CurrentClampSeries' unit by 'volts' (and a stimulus' by 'amperes') when it
+    reads one, so a file storing millivolts would be read 1000 times too large; the unit
+    attribute of the HDF5 dataset is what the file says.
+    """
+    attrs = getattr(series.data, "attrs", None)
+    unit = attrs.get("unit") if attrs is not None else None
+    if unit is None:
+        return series.unit or ""
+    return unit.decode() if isinstance(unit, bytes) else str(unit)
 
 
 def _natural_key(name: str) -> list:

@@ -1,0 +1,656 @@
+"""Readers and writers: round trips through NWB, NIX, CSV and every bad input's error.
+
+Every expected value comes from the arrays the test wrote (seeded), stored as float32 where the
+format stores float32, so equality checks are exact.
+"""
+
+from __future__ import annotations
+
+import datetime as dt
+import re
+import warnings
+from pathlib import Path
+
+import h5py
+import neo
+import numpy as np
+import pytest
+import quantities as pq
+from pynwb import NWBHDF5IO, NWBFile
+from pynwb.file import Subject
+from pynwb.icephys import (
+    CurrentClampSeries,
+    CurrentClampStimulusSeries,
+    IZeroClampSeries,
+    VoltageClampSeries,
+    VoltageClampStimulusSeries,
+)
+
+from pipeline.errors import (
+    BadSamplesError,
+    CorruptFileError,
+    NoCurrentClampError,
+    RecordingError,
+    ShapeError,
+    UnitError,
+    UnsupportedFormatError,
+)
+from pipeline.readers import open_recordings, supported_extensions
+from pipeline.recording import Recording, Sweep
+from pipeline.writers import write_csv, write_nix, write_nwb
+
+RATE = 10_000.0
+N = 60  # samples per sweep: tiny files, fast tests
+START = dt.datetime(2026, 3, 4, 9, 30, tzinfo=dt.UTC)
+
+
+def _voltage(seed: int, n: int = N) -> np.ndarray:
+    rng = np.random.default_rng(seed)
+    return (-0.07 + 1e-3 * rng.standard_normal(n)).astype(np.float32)
+
+
+def _current(amp: float, n: int = N) -> np.ndarray:
+    i = np.zeros(n, dtype=np.float32)
+    i[n // 4 : 3 * n // 4] = amp
+    return i
+
+
+def _as64(a: np.ndarray) -> np.ndarray:
+    return np.asarray(a, dtype=np.float32).astype(np.float64)
+
+
+def _nwbfile() -> NWBFile:
+    return NWBFile(
+        session_description="invented test day",
+        identifier="test-0001",
+        session_start_time=START,
+        subject=Subject(subject_id="animal-7", species="Mus musculus"),
+    )
+
+
+def _write(nwbfile: NWBFile, path: Path) -> Path:
+    with warnings.catch_warnings():
+        warnings.simplefilter("ignore")
+        with NWBHDF5IO(str(path), mode="w") as io:
+            io.write(nwbfile)
+    return path
+
+
+def _pair(nwbfile, electrode, k, *, number=True, name=None, **extra):
+    """A stimulus/response pair for sweep k with known arrays (amplitude -10 pA * (k + 1))."""
+    sn = {"sweep_number": np.uint64(k)} if number else {}
+    tag = name or f"{electrode.name}_{k}"
+    stim = CurrentClampStimulusSeries(
+        name=f"stim_{tag}",
+        data=_current(-10e-12 * (k + 1)),
+        electrode=electrode,
+        rate=RATE,
+        starting_time=float(k),
+        gain=1.0,
+        **sn,
+    )
+    resp = CurrentClampSeries(
+        name=f"resp_{tag}",
+        data=_voltage(k),
+        electrode=electrode,
+        rate=RATE,
+        starting_time=float(k),
+        gain=1.0,
+        stimulus_description="hyperpolarizing steps",
+        **sn,
+        **extra,
+    )
+    return stim, resp
+
+
+def _electrode(nwbfile, name):
+    dev = nwbfile.devices.get("amp") or nwbfile.create_device(name="amp")
+    return nwbfile.create_icephys_electrode(name=name, device=dev, description="whole cell")
+
+
+def _standard_file(path: Path, electrodes=("e1",), n_sweeps=3) -> Path:
+    nwbfile = _nwbfile()
+    for el_name in electrodes:
+        el = _electrode(nwbfile, el_name)
+        for k in range(n_sweeps):
+            stim, resp = _pair(
+                nwbfile,
+                el,
+                k,
+                bias_current=-5e-12,
+                bridge_balance=1.5e7,
+                capacitance_compensation=3e-12,
+            )
+            nwbfile.add_intracellular_recording(electrode=el, stimulus=stim, response=resp)
+    return _write(nwbfile, path)
+
+
+def _set_attr(path: Path, obj: str, attr: str, value) -> None:
+    with h5py.File(path, "r+") as f:
+        f[obj].attrs[attr] = value
+
+
+# ---- NWB --------------------------------------------------------------------------------------
+
+
+def test_nwb_standard_layout_round_trips(tmp_path):
+    path = _standard_file(tmp_path / "day1_slice2.nwb", electrodes=("e1", "e2"))
+    recs = open_recordings(path)
+    assert [r.cell_id for r in recs] == ["day1_slice2-e1", "day1_slice2-e2"]
+    assert [r.electrode for r in recs] == ["e1", "e2"]
+    rec = recs[1]
+    assert rec.source_file == str(path)
+    assert [s.number for s in rec.sweeps] == [0, 1, 2]
+    for k, s in enumerate(rec.sweeps):
+        np.testing.assert_array_equal(s.voltage, _as64(_voltage(k)))
+        np.testing.assert_array_equal(s.current, _as64(_current(-10e-12 * (k + 1))))
+        assert s.rate == RATE
+        assert s.start_time == float(k)
+        assert s.protocol == "hyperpolarizing steps"
+        assert s.settings == {
+            "bias_current_a": -5e-12,
+            "bridge_balance_ohm": 1.5e7,
+            "capacitance_compensation_f": 3e-12,
+        }
+    assert rec.metadata == {
+        "session_description": "invented test day",
+        "identifier": "test-0001",
+        "session_start_time": START.isoformat(),
+        "subject_id": "animal-7",
+        "species": "Mus musculus",
+    }
+    assert rec.skipped == ()
+
+
+def test_nwb_one_electrode_gives_stem_as_cell_id(tmp_path):
+    recs = open_recordings(_standard_file(tmp_path / "cellA.nwb"))
+    assert [r.cell_id for r in recs] == ["cellA"]
+
+
+def test_nwb_pairs_by_sweep_number_without_table(tmp_path):
+    nwbfile = _nwbfile()
+    el = _electrode(nwbfile, "e1")
+    pairs = [_pair(nwbfile, el, k) for k in range(3)]
+    # Stimuli added in the reverse order, so pairing by order would mismatch them.
+    for stim, _ in reversed(pairs):
+        nwbfile.add_stimulus(stim, use_sweep_table=False)
+    for _, resp in pairs:
+        nwbfile.add_acquisition(resp, use_sweep_table=False)
+    path = _write(nwbfile, tmp_path / "nosheet.nwb")
+    (rec,) = open_recordings(path)
+    assert [s.number for s in rec.sweeps] == [0, 1, 2]
+    for k, s in enumerate(rec.sweeps):
+        np.testing.assert_array_equal(s.current, _as64(_current(-10e-12 * (k + 1))))
+        np.testing.assert_array_equal(s.voltage, _as64(_voltage(k)))
+
+
+def test_nwb_pairs_by_order_without_sweep_numbers(tmp_path):
+    nwbfile = _nwbfile()
+    el = _electrode(nwbfile, "e1")
+    # Names sort as 10 < 2 < 3 alphabetically; starting_time gives the real order.
+    for k, tag in enumerate(["2", "3", "10"]):
+        stim, resp = _pair(nwbfile, el, k, number=False, name=tag)
+        nwbfile.add_stimulus(stim, use_sweep_table=False)
+        nwbfile.add_acquisition(resp, use_sweep_table=False)
+    (rec,) = open_recordings(_write(nwbfile, tmp_path / "byorder.nwb"))
+    assert [s.number for s in rec.sweeps] == [0, 1, 2]
+    for k, s in enumerate(rec.sweeps):
+        assert s.start_time == float(k)
+        np.testing.assert_array_equal(s.current, _as64(_current(-10e-12 * (k + 1))))
+
+
+def _vc_pair(nwbfile, el, k):
+    stim = VoltageClampStimulusSeries(
+        name=f"vc_stim_{k}", data=np.zeros(N), electrode=el, rate=RATE, gain=1.0
+    )
+    resp = VoltageClampSeries(
+        name=f"vc_resp_{k}", data=np.zeros(N), electrode=el, rate=RATE, gain=1.0
+    )
+    return stim, resp
+
+
+def test_nwb_voltage_clamp_only_is_refused_naming_the_series(tmp_path):
+    nwbfile = _nwbfile()
+    el = _electrode(nwbfile, "e1")
+    stim, resp = _vc_pair(nwbfile, el, 0)
+    nwbfile.add_intracellular_recording(electrode=el, stimulus=stim, response=resp)
+    path = _write(nwbfile, tmp_path / "vconly.nwb")
+    with pytest.raises(NoCurrentClampError, match=r"vconly\.nwb: no current-clamp.*vc_resp_0"):
+        open_recordings(path)
+
+
+def test_nwb_voltage_clamp_series_are_skipped_and_listed(tmp_path):
+    nwbfile = _nwbfile()
+    el = _electrode(nwbfile, "e1")
+    stim, resp = _pair(nwbfile, el, 0)
+    nwbfile.add_intracellular_recording(electrode=el, stimulus=stim, response=resp)
+    vstim, vresp = _vc_pair(nwbfile, el, 1)
+    nwbfile.add_intracellular_recording(electrode=el, stimulus=vstim, response=vresp)
+    (rec,) = open_recordings(_write(nwbfile, tmp_path / "mixed.nwb"))
+    assert len(rec.sweeps) == 1
+    assert set(rec.skipped) == {
+        "vc_resp_1 (VoltageClampSeries)",
+        "vc_stim_1 (VoltageClampStimulusSeries)",
+    }
+
+
+def test_nwb_izero_series_has_zero_current(tmp_path):
+    nwbfile = _nwbfile()
+    el = _electrode(nwbfile, "e1")
+    resp = IZeroClampSeries(
+        name="izero", data=_voltage(5), electrode=el, rate=RATE, sweep_number=np.uint64(4)
+    )
+    nwbfile.add_acquisition(resp, use_sweep_table=False)
+    (rec,) = open_recordings(_write(nwbfile, tmp_path / "izero.nwb"))
+    (s,) = rec.sweeps
+    assert s.number == 4
+    np.testing.assert_array_equal(s.current, np.zeros(N))
+
+
+def test_nwb_timestamps_give_the_rate_and_start(tmp_path):
+    nwbfile = _nwbfile()
+    el = _electrode(nwbfile, "e1")
+    times = 2.5 + np.arange(N) / 20_000.0
+    resp = CurrentClampSeries(name="r", data=_voltage(1), electrode=el, timestamps=times)
+    nwbfile.add_acquisition(resp, use_sweep_table=False)
+    (rec,) = open_recordings(_write(nwbfile, tmp_path / "stamped.nwb"))
+    (s,) = rec.sweeps
+    assert s.rate == pytest.approx(20_000.0, rel=1e-12)
+    assert s.start_time == 2.5
+    assert s.current is None
+
+
+def test_nwb_irregular_timestamps_are_refused(tmp_path):
+    nwbfile = _nwbfile()
+    el = _electrode(nwbfile, "e1")
+    times = np.arange(N) / RATE
+    times[30:] += 0.5  # a gap
+    resp = CurrentClampSeries(name="r", data=_voltage(1), electrode=el, timestamps=times)
+    nwbfile.add_acquisition(resp, use_sweep_table=False)
+    path = _write(nwbfile, tmp_path / "gappy.nwb")
+    with pytest.raises(ShapeError, match=r"gappy\.nwb: r \(CurrentClampSeries\).*irregular"):
+        open_recordings(path)
+
+
+def test_nwb_table_rows_cutting_one_series(tmp_path):
+    nwbfile = _nwbfile()
+    el = _electrode(nwbfile, "e1")
+    v = np.concatenate([_voltage(0), _voltage(1)])
+    i = np.concatenate([_current(-1e-11), _current(-2e-11)])
+    stim = CurrentClampStimulusSeries(name="s", data=i, electrode=el, rate=RATE, gain=1.0)
+    resp = CurrentClampSeries(name="r", data=v, electrode=el, rate=RATE, gain=1.0)
+    for k in range(2):
+        nwbfile.add_intracellular_recording(
+            electrode=el,
+            stimulus=stim,
+            stimulus_start_index=k * N,
+            stimulus_index_count=N,
+            response=resp,
+            response_start_index=k * N,
+            response_index_count=N,
+        )
+    (rec,) = open_recordings(_write(nwbfile, tmp_path / "cut.nwb"))
+    assert [s.number for s in rec.sweeps] == [0, 1]
+    assert rec.sweeps[1].start_time == pytest.approx(N / RATE)
+    np.testing.assert_array_equal(rec.sweeps[1].voltage, _as64(_voltage(1)))
+    np.testing.assert_array_equal(rec.sweeps[1].current, _as64(_current(-2e-11)))
+
+
+def test_write_nwb_round_trips(tmp_path):
+    recs = [_recording("a", 3), _recording("b", 2, with_current=False)]
+    path = write_nwb(recs, tmp_path / "w.nwb", subject_id="animal-9", session_start_time=START)
+    out = open_recordings(path)
+    assert [r.cell_id for r in out] == ["w-a", "w-b"]
+    assert out[0].metadata["subject_id"] == "animal-9"
+    assert out[0].metadata["session_start_time"] == START.isoformat()
+    _assert_same_sweeps(out[0], recs[0])
+    _assert_same_sweeps(out[1], recs[1])
+    assert not list(tmp_path.glob(".*"))  # no temporary file left behind
+
+
+# ---- neo / NIX --------------------------------------------------------------------------------
+
+
+def _recording(electrode: str, n: int, *, with_current: bool = True) -> Recording:
+    sweeps = [
+        Sweep(
+            voltage=_as64(_voltage(10 + k)),
+            current=_as64(_current(2e-11 * (k + 1))) if with_current else None,
+            rate=RATE if k != 1 else 2 * RATE,  # different rates in one cell are allowed
+            number=k + 1,
+            start_time=3.0 * k,
+            protocol="depolarizing steps",
+            settings={"bias_current_a": 1e-12, "bridge_balance_ohm": 8e6},
+        )
+        for k in range(n)
+    ]
+    return Recording("x", "", electrode, tuple(sweeps))
+
+
+def _assert_same_sweeps(got: Recording, want: Recording, *, settings: bool = True) -> None:
+    assert len(got.sweeps) == len(want.sweeps)
+    for a, b in zip(got.sweeps, want.sweeps, strict=True):
+        assert (a.number, a.rate, a.start_time) == (b.number, b.rate, b.start_time)
+        np.testing.assert_array_equal(a.voltage, b.voltage)
+        if b.current is None:
+            assert a.current is None
+        else:
+            np.testing.assert_array_equal(a.current, b.current)
+        if settings:
+            assert a.protocol == b.protocol
+            assert a.settings == b.settings
+
+
+def test_write_nix_round_trips(tmp_path):
+    recs = [_recording("a", 3), _recording("b", 2, with_current=False)]
+    out = open_recordings(write_nix(recs, tmp_path / "w.nix"))
+    assert [r.cell_id for r in out] == ["w-a", "w-b"]
+    _assert_same_sweeps(out[0], recs[0])
+    _assert_same_sweeps(out[1], recs[1])
+
+
+def _neo_block(units_v="mV", units_i="pA", n_seg=2, channels=2, with_current=True):
+    """Segments with one multi-channel voltage signal and one current signal, no annotations."""
+    block = neo.Block()
+    for k in range(n_seg):
+        seg = neo.Segment(index=k + 5)
+        v = np.stack([_voltage(20 + k + c) * 1e3 for c in range(channels)], axis=1)
+        seg.analogsignals.append(
+            neo.AnalogSignal(
+                v,
+                units=units_v,
+                sampling_rate=RATE * pq.Hz,
+                name="Vm",
+                array_annotations={"channel_names": np.array([f"ch{c}" for c in range(channels)])},
+            )
+        )
+        if with_current:
+            i = np.stack([_current(-3.0 * (k + 1 + c)) for c in range(channels)], axis=1)
+            seg.analogsignals.append(
+                neo.AnalogSignal(i, units=units_i, sampling_rate=RATE * pq.Hz, name="Im")
+            )
+        block.segments.append(seg)
+    return block
+
+
+def _write_neo_nix(block, path: Path) -> Path:
+    io = neo.io.NixIO(str(path), mode="ow")
+    try:
+        io.write_block(block)
+    finally:
+        io.close()
+    return path
+
+
+def test_nix_written_by_neo_pairs_channels_by_order(tmp_path):
+    path = _write_neo_nix(_neo_block(), tmp_path / "rig.nix")
+    recs = open_recordings(path)
+    assert [r.cell_id for r in recs] == ["rig-ch0", "rig-ch1"]
+    for c, rec in enumerate(recs):
+        # NixIO does not store Segment.index (it reads back the order), and these segments
+        # carry no sweep_number annotation: numbers are the order.
+        assert [s.number for s in rec.sweeps] == [0, 1]
+        for k, s in enumerate(rec.sweeps):
+            # mV -> V and pA -> A: values from the arrays written, within float rounding
+            np.testing.assert_allclose(s.voltage, _as64(_voltage(20 + k + c)), rtol=1e-6)
+            np.testing.assert_allclose(s.current, _current(-3.0 * (k + 1 + c)) * 1e-12, rtol=1e-6)
+            assert s.rate == RATE
+
+
+def test_nix_without_current_channel_is_allowed(tmp_path):
+    path = _write_neo_nix(_neo_block(channels=1, with_current=False), tmp_path / "vonly.nix")
+    (rec,) = open_recordings(path)
+    assert rec.cell_id == "vonly"
+    assert all(s.current is None for s in rec.sweeps)
+
+
+def test_neo_dimensionless_channel_is_a_unit_error(tmp_path):
+    block = _neo_block(channels=1, units_i="dimensionless")
+    path = _write_neo_nix(block, tmp_path / "nounit.nix")
+    with pytest.raises(UnitError, match=r"nounit\.nix: channel 'Im'.*neither volts nor amperes"):
+        open_recordings(path)
+
+
+def test_neo_unequal_channel_counts_cannot_be_paired(tmp_path):
+    block = _neo_block(channels=2)
+    for seg in block.segments:
+        seg.analogsignals[1] = seg.analogsignals[1][:, :1]
+    path = _write_neo_nix(block, tmp_path / "odd.nix")
+    with pytest.raises(ShapeError, match=r"odd\.nix: sweep 0: 2 voltage channels but 1 current"):
+        open_recordings(path)
+
+
+def test_other_neo_format_through_io_detection(tmp_path):
+    path = tmp_path / "legacy.mat"
+    neo.io.NeoMatlabIO(str(path)).write_block(_neo_block(channels=1))
+    (rec,) = open_recordings(path)
+    assert rec.cell_id == "legacy"
+    assert len(rec.sweeps) == 2
+    np.testing.assert_allclose(rec.sweeps[1].voltage, _as64(_voltage(21)), rtol=1e-6)
+    np.testing.assert_allclose(rec.sweeps[1].current, _current(-6.0) * 1e-12, rtol=1e-6)
+
+
+# ---- text -------------------------------------------------------------------------------------
+
+
+def test_csv_round_trips(tmp_path):
+    rec = _recording("", 3)
+    (out,) = open_recordings(write_csv(rec, tmp_path / "cell7.csv"))
+    assert out.cell_id == "cell7"
+    assert [s.number for s in out.sweeps] == [1, 2, 3]
+    for a, b in zip(out.sweeps, rec.sweeps, strict=True):
+        assert a.rate == b.rate
+        assert a.start_time == b.start_time
+        # mV and pA as text and back: exact but for the last bit of the unit scaling
+        np.testing.assert_allclose(a.voltage, b.voltage, rtol=1e-15, atol=0)
+        np.testing.assert_allclose(a.current, b.current, rtol=1e-15, atol=0)
+    header = (tmp_path / "cell7.csv").read_text().splitlines()[0]
+    assert header == "sweep,time_s,voltage_mv,current_pa"
+
+
+def test_tsv_with_ms_uv_na_comments_and_partial_nan(tmp_path):
+    t_ms = np.arange(20) * 0.1
+    lines = ["# invented demo cell", "Sweep\tTime_ms\tVoltage_uV\tCurrent_nA"]
+    for k in (3, 4):
+        for j, t in enumerate(t_ms):
+            v = "nan" if (k, j) == (4, 7) else f"{-70000 + j}"
+            lines.append(f"{k}\t{t:.1f}\t{v}\t{0.05 * k}")
+    path = tmp_path / "tabbed.tsv"
+    path.write_text("\n".join(lines) + "\n")
+    (rec,) = open_recordings(path)
+    assert [s.number for s in rec.sweeps] == [3, 4]
+    s = rec.sweeps[1]
+    assert s.rate == pytest.approx(10_000.0, rel=1e-12)
+    assert np.isnan(s.voltage[7])  # partial NaN runs are kept for the fitters to report
+    assert s.voltage[8] == pytest.approx((-70000 + 8) * 1e-6, rel=1e-12)
+    assert s.current[0] == pytest.approx(0.2e-9, rel=1e-12)
+
+
+def test_csv_without_current_column(tmp_path):
+    rows = "\n".join(f"1,{j / 1000:.3f},{-65 + 0.01 * j:.2f}" for j in range(12))
+    path = tmp_path / "nocurrent.csv"
+    path.write_text("sweep,time_s,voltage_mv\n" + rows + "\n")
+    (rec,) = open_recordings(path)
+    assert rec.sweeps[0].current is None
+    assert rec.sweeps[0].rate == pytest.approx(1000.0)
+
+
+# ---- bad inputs -------------------------------------------------------------------------------
+
+
+def _csv(path: Path, header: str, rows: list[str]) -> Path:
+    path.write_text(header + "\n" + "\n".join(rows) + "\n")
+    return path
+
+
+def _rows(n=12, sweep=1, v="-70", i="0", dt_s=1e-4):
+    return [f"{sweep},{j * dt_s!r},{v},{i}" for j in range(n)]
+
+
+def test_unknown_extension_lists_supported(tmp_path):
+    path = tmp_path / "cell.xyz"
+    path.write_text("data")
+    with pytest.raises(UnsupportedFormatError, match=r"cell\.xyz: unknown extension.*\.nwb"):
+        open_recordings(path)
+
+
+def test_folder_is_refused(tmp_path):
+    folder = tmp_path / "run.nwb"
+    folder.mkdir()
+    with pytest.raises(UnsupportedFormatError, match=r"run\.nwb: is a folder"):
+        open_recordings(folder)
+
+
+def test_missing_file(tmp_path):
+    with pytest.raises(RecordingError, match=r"ghost\.nwb: no such file"):
+        open_recordings(tmp_path / "ghost.nwb")
+
+
+@pytest.mark.parametrize("name", ["empty.nwb", "empty.nix", "empty.csv", "empty.abf"])
+def test_zero_length_file(tmp_path, name):
+    path = tmp_path / name
+    path.touch()
+    with pytest.raises(CorruptFileError, match=rf"{re.escape(name)}: file is empty"):
+        open_recordings(path)
+
+
+def test_truncated_nwb(tmp_path):
+    path = _standard_file(tmp_path / "cut_short.nwb")
+    data = path.read_bytes()
+    path.write_bytes(data[: len(data) // 2])
+    with pytest.raises(CorruptFileError, match=r"cut_short\.nwb: cannot be read as NWB"):
+        open_recordings(path)
+
+
+@pytest.mark.parametrize("name", ["junk.nwb", "junk.nix", "junk.abf"])
+def test_garbage_binary(tmp_path, name):
+    path = tmp_path / name
+    path.write_bytes(np.random.default_rng(3).bytes(2048))
+    with pytest.raises(CorruptFileError, match=rf"{re.escape(name)}: cannot be read"):
+        open_recordings(path)
+
+
+def test_garbage_text(tmp_path):
+    path = tmp_path / "junk.csv"
+    path.write_bytes(b"\xff\xfe\x00\x01" * 50)
+    with pytest.raises(CorruptFileError, match=r"junk\.csv: not a text file"):
+        open_recordings(path)
+
+
+def test_nwb_response_in_amperes_is_a_unit_error(tmp_path):
+    path = _standard_file(tmp_path / "amps.nwb", n_sweeps=1)
+    _set_attr(path, "acquisition/resp_e1_0/data", "unit", "amperes")
+    with pytest.raises(UnitError, match=r"amps\.nwb: resp_e1_0 .*'amperes' is not volts-like"):
+        open_recordings(path)
+
+
+def test_nwb_unknown_unit_is_a_unit_error(tmp_path):
+    path = _standard_file(tmp_path / "furlong.nwb", n_sweeps=1)
+    _set_attr(path, "stimulus/presentation/stim_e1_0/data", "unit", "furlongs")
+    with pytest.raises(UnitError, match=r"furlong\.nwb: stim_e1_0 .*unknown unit 'furlongs'"):
+        open_recordings(path)
+
+
+@pytest.mark.parametrize("rate", [0.0, -1.0, np.nan, np.inf])
+def test_nwb_bad_rate(tmp_path, rate):
+    path = _standard_file(tmp_path / "norate.nwb", n_sweeps=1)
+    _set_attr(path, "acquisition/resp_e1_0/starting_time", "rate", rate)
+    with pytest.raises(ShapeError, match=r"norate\.nwb: resp_e1_0.*sampling rate"):
+        open_recordings(path)
+
+
+def test_nwb_length_mismatch(tmp_path):
+    nwbfile = _nwbfile()
+    el = _electrode(nwbfile, "e1")
+    stim, resp = _pair(nwbfile, el, 0)
+    stim.fields["data"] = _current(1e-11, N - 5)
+    nwbfile.add_intracellular_recording(electrode=el, stimulus=stim, response=resp)
+    path = _write(nwbfile, tmp_path / "ragged.nwb")
+    with pytest.raises(ShapeError, match=rf"ragged\.nwb: .*{N} samples but current has {N - 5}"):
+        open_recordings(path)
+
+
+def test_nwb_rate_mismatch(tmp_path):
+    path = _standard_file(tmp_path / "tworates.nwb", n_sweeps=1)
+    _set_attr(path, "stimulus/presentation/stim_e1_0/starting_time", "rate", 2 * RATE)
+    with pytest.raises(ShapeError, match=r"tworates\.nwb: .*10000 Hz but current at 20000 Hz"):
+        open_recordings(path)
+
+
+def test_nwb_duplicate_sweep_numbers(tmp_path):
+    nwbfile = _nwbfile()
+    el = _electrode(nwbfile, "e1")
+    for tag in ("a", "b"):
+        stim, resp = _pair(nwbfile, el, 2, name=tag)
+        nwbfile.add_intracellular_recording(electrode=el, stimulus=stim, response=resp)
+    path = _write(nwbfile, tmp_path / "twice.nwb")
+    with pytest.raises(ShapeError, match=r"twice\.nwb: e1: duplicate sweep numbers \[2\]"):
+        open_recordings(path)
+
+
+def test_nwb_nan_current_and_all_nan_voltage(tmp_path):
+    nwbfile = _nwbfile()
+    el = _electrode(nwbfile, "e1")
+    stim, resp = _pair(nwbfile, el, 0)
+    i = _current(1e-11)
+    i[3] = np.nan
+    stim.fields["data"] = i
+    nwbfile.add_intracellular_recording(electrode=el, stimulus=stim, response=resp)
+    path = _write(nwbfile, tmp_path / "nancur.nwb")
+    with pytest.raises(BadSamplesError, match=r"nancur\.nwb: .*current has 1 NaN/Inf"):
+        open_recordings(path)
+    nwbfile = _nwbfile()
+    el = _electrode(nwbfile, "e1")
+    stim, resp = _pair(nwbfile, el, 0)
+    resp.fields["data"] = np.full(N, np.inf, dtype=np.float32)
+    nwbfile.add_intracellular_recording(electrode=el, stimulus=stim, response=resp)
+    path = _write(nwbfile, tmp_path / "nanvolt.nwb")
+    with pytest.raises(BadSamplesError, match=r"nanvolt\.nwb: .*voltage has no finite sample"):
+        open_recordings(path)
+
+
+def test_nwb_partial_nan_voltage_is_kept(tmp_path):
+    nwbfile = _nwbfile()
+    el = _electrode(nwbfile, "e1")
+    stim, resp = _pair(nwbfile, el, 0)
+    v = _voltage(0)
+    v[10:14] = np.nan
+    resp.fields["data"] = v
+    nwbfile.add_intracellular_recording(electrode=el, stimulus=stim, response=resp)
+    (rec,) = open_recordings(_write(nwbfile, tmp_path / "gap.nwb"))
+    assert np.isnan(rec.sweeps[0].voltage[10:14]).all()
+    assert np.isfinite(rec.sweeps[0].voltage[14:]).all()
+
+
+@pytest.mark.parametrize(
+    ("header", "rows", "error", "problem"),
+    [
+        ("sweep,time,voltage_mv", _rows(), UnitError, "column 'time' has no unit"),
+        ("sweep,time_s,voltage_kv", _rows(), UnitError, "unknown unit 'kv'"),
+        ("sweep,time_s,voltage_mv,current_ma", _rows(), UnitError, "unknown unit 'ma'"),
+        ("sweep,time_s,current_pa", _rows(), CorruptFileError, "missing column.*voltage"),
+        ("sweep,time_s,voltage_mv,current_pa", _rows(n=5), ShapeError, "fewer than 10 samples"),
+        ("sweep,time_s,voltage_mv,current_pa", _rows(dt_s=0), ShapeError, "do not increase"),
+        ("sweep,time_s,voltage_mv,current_pa", _rows(i="inf"), BadSamplesError, "current has"),
+        ("sweep,time_s,voltage_mv,current_pa", _rows(v="nan"), BadSamplesError, "no finite"),
+        ("sweep,time_s,voltage_mv,current_pa", _rows(v="abc"), CorruptFileError, "not a read"),
+        (
+            "sweep,time_s,voltage_mv,current_pa",
+            _rows(sweep=1) + _rows(sweep=2) + _rows(sweep=1),
+            ShapeError,
+            r"duplicate sweep numbers \[1\]",
+        ),
+        ("sweep,time_s,voltage_mv,current_pa", [], ShapeError, "no samples"),
+    ],
+)
+def test_bad_text_files(tmp_path, header, rows, error, problem):
+    path = _csv(tmp_path / "bad_cell.csv", header, rows)
+    with pytest.raises(error, match=rf"bad_cell\.csv: .*{problem}"):
+        open_recordings(path)
+
+
+def test_supported_extensions():
+    exts = supported_extensions()
+    assert {".nwb", ".nix", ".csv", ".tsv", ".txt", ".abf", ".mat"} <= set(exts)
+    assert ".pkl" not in exts and ".json" not in exts and ".1" not in exts
+    assert list(exts) == sorted(exts)

@@ -1,0 +1,155 @@
+"""Unit conversions in the readers: every format gives volts and amperes.
+
+Expected values are the written arrays times the SI prefix factor (SI prefixes, BIPM SI
+Brochure, 9th ed., 2019, table 7: milli 1e-3, micro 1e-6, nano 1e-9, pico 1e-12) and, for NWB,
+the schema's scaling rule value = data * conversion + offset (NWB core schema 2.x,
+TimeSeries.data attributes ``conversion`` and ``offset``).
+"""
+
+from __future__ import annotations
+
+import datetime as dt
+import warnings
+
+import h5py
+import neo
+import numpy as np
+import pytest
+import quantities as pq
+from pynwb import NWBHDF5IO, NWBFile
+from pynwb.icephys import CurrentClampSeries, CurrentClampStimulusSeries
+
+from pipeline.readers import open_recordings, parse_unit
+
+RATE = 5_000.0
+N = 40
+
+
+@pytest.mark.parametrize(
+    ("text", "expected"),
+    [
+        ("volts", ("V", 1.0)),
+        ("V", ("V", 1.0)),
+        ("mV", ("V", 1e-3)),
+        ("millivolts", ("V", 1e-3)),
+        ("uV", ("V", 1e-6)),
+        ("µV", ("V", 1e-6)),
+        ("amperes", ("A", 1.0)),
+        ("A", ("A", 1.0)),
+        ("nA", ("A", 1e-9)),
+        ("pA", ("A", 1e-12)),
+        ("picoamperes", ("A", 1e-12)),
+        ("ohm", None),
+        ("", None),
+        ("dimensionless", None),
+        ("kV", None),
+    ],
+)
+def test_parse_unit(text, expected):
+    assert parse_unit(text) == expected
+
+
+def _ramp(n: int = N) -> np.ndarray:
+    return np.linspace(-80.0, -60.0, n)
+
+
+def _nwb(path, v_data, v_kwargs, i_data, i_kwargs):
+    nwbfile = NWBFile(
+        session_description="units",
+        identifier="u",
+        session_start_time=dt.datetime(2026, 1, 2, tzinfo=dt.UTC),
+    )
+    dev = nwbfile.create_device(name="amp")
+    el = nwbfile.create_icephys_electrode(name="e", device=dev, description="wc")
+    stim = CurrentClampStimulusSeries(
+        name="stim", data=i_data, electrode=el, rate=RATE, gain=1.0, **i_kwargs
+    )
+    resp = CurrentClampSeries(
+        name="resp", data=v_data, electrode=el, rate=RATE, gain=1.0, **v_kwargs
+    )
+    nwbfile.add_intracellular_recording(electrode=el, stimulus=stim, response=resp)
+    with warnings.catch_warnings():
+        warnings.simplefilter("ignore")
+        with NWBHDF5IO(str(path), mode="w") as io:
+            io.write(nwbfile)
+    return path
+
+
+def test_nwb_conversion_on_volts_and_amperes(tmp_path):
+    # Integer samples in mV and pA, with the conversion to the base unit stored beside them.
+    v_mv = np.round(_ramp()).astype(np.int16)
+    i_pa = np.arange(N, dtype=np.int16) - 20
+    path = _nwb(tmp_path / "conv.nwb", v_mv, {"conversion": 1e-3}, i_pa, {"conversion": 1e-12})
+    (s,) = open_recordings(path)[0].sweeps
+    np.testing.assert_allclose(s.voltage, v_mv * 1e-3, rtol=1e-15)
+    np.testing.assert_allclose(s.current, i_pa * 1e-12, rtol=1e-15)
+
+
+def test_nwb_offset_is_added_after_conversion(tmp_path):
+    counts = np.arange(N, dtype=np.int16)
+    path = _nwb(
+        tmp_path / "offset.nwb",
+        counts,
+        {"conversion": 1e-4, "offset": -0.08},
+        np.zeros(N),
+        {},
+    )
+    (s,) = open_recordings(path)[0].sweeps
+    np.testing.assert_allclose(s.voltage, counts * 1e-4 - 0.08, rtol=1e-14)
+
+
+def test_nwb_unit_with_prefix_is_honoured(tmp_path):
+    # A file whose unit attribute says mV (pynwb would silently reset it to volts).
+    v = _ramp()
+    path = _nwb(tmp_path / "mv_unit.nwb", v, {}, np.full(N, 25.0), {})
+    with h5py.File(path, "r+") as f:
+        f["acquisition/resp/data"].attrs["unit"] = "mV"
+        f["stimulus/presentation/stim/data"].attrs["unit"] = "pA"
+    (s,) = open_recordings(path)[0].sweeps
+    np.testing.assert_allclose(s.voltage, v * 1e-3, rtol=1e-15)
+    np.testing.assert_allclose(s.current, np.full(N, 25e-12), rtol=1e-15)
+
+
+@pytest.mark.parametrize(
+    ("v_unit", "v_factor", "i_unit", "i_factor"),
+    [("mV", 1e-3, "pA", 1e-12), ("uV", 1e-6, "nA", 1e-9), ("V", 1.0, "A", 1.0)],
+)
+def test_neo_units_to_si(tmp_path, v_unit, v_factor, i_unit, i_factor):
+    v = _ramp()
+    i = np.linspace(-2.0, 2.0, N)
+    seg = neo.Segment()
+    seg.analogsignals += [
+        neo.AnalogSignal(v, units=v_unit, sampling_rate=RATE * pq.Hz, name="Vm"),
+        neo.AnalogSignal(i, units=i_unit, sampling_rate=RATE * pq.Hz, name="I"),
+    ]
+    block = neo.Block()
+    block.segments.append(seg)
+    path = tmp_path / "units.nix"
+    io = neo.io.NixIO(str(path), mode="ow")
+    io.write_block(block)
+    io.close()
+    (s,) = open_recordings(path)[0].sweeps
+    np.testing.assert_allclose(s.voltage, v * v_factor, rtol=1e-12)
+    np.testing.assert_allclose(s.current, i * i_factor, rtol=1e-12)
+
+
+@pytest.mark.parametrize(
+    ("t_col", "t_factor", "v_col", "v_factor", "i_col", "i_factor"),
+    [
+        ("time_s", 1.0, "voltage_v", 1.0, "current_a", 1.0),
+        ("time_ms", 1e-3, "voltage_mv", 1e-3, "current_pa", 1e-12),
+        ("time_ms", 1e-3, "voltage_uv", 1e-6, "current_na", 1e-9),
+    ],
+)
+def test_text_units_to_si(tmp_path, t_col, t_factor, v_col, v_factor, i_col, i_factor):
+    t = np.arange(N) * (1.0 / RATE) / t_factor  # sample times in the column's unit
+    v = _ramp()
+    i = np.linspace(-2.0, 2.0, N)
+    lines = [f"sweep,{t_col},{v_col},{i_col}"]
+    lines += [f"0,{float(t[j])!r},{float(v[j])!r},{float(i[j])!r}" for j in range(N)]
+    path = tmp_path / "units.csv"
+    path.write_text("\n".join(lines) + "\n")
+    (s,) = open_recordings(path)[0].sweeps
+    assert s.rate == pytest.approx(RATE, rel=1e-12)
+    np.testing.assert_allclose(s.voltage, v * v_factor, rtol=1e-15)
+    np.testing.assert_allclose(s.current, i * i_factor, rtol=1e-15)
