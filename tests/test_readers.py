@@ -654,3 +654,24 @@ def test_supported_extensions():
     assert {".nwb", ".nix", ".csv", ".tsv", ".txt", ".abf", ".mat"} <= set(exts)
     assert ".pkl" not in exts and ".json" not in exts and ".1" not in exts
     assert list(exts) == sorted(exts)
+
+
+def test_file_of_the_wrong_format_is_corrupt_not_a_crash(tmp_path):
+    nix = _write_neo_nix(_neo_block(channels=1), tmp_path / "a.nix")
+    nwb = _standard_file(tmp_path / "b.nwb", n_sweeps=1)
+    nix.rename(tmp_path / "really_nix.nwb")
+    nwb.rename(tmp_path / "really_nwb.nix")
+    with pytest.raises(CorruptFileError, match=r"really_nix\.nwb: cannot be read as NWB") as e1:
+        open_recordings(tmp_path / "really_nix.nwb")
+    with pytest.raises(CorruptFileError, match=r"really_nwb\.nix: cannot be read by neo") as e2:
+        open_recordings(tmp_path / "really_nwb.nix")
+    for err in (e1, e2):  # one short line, not a traceback
+        assert "\n" not in str(err.value) and len(str(err.value)) < 400
+
+
+def test_semicolon_delimiter_is_sniffed(tmp_path):
+    rows = [f"2;{j / 1000!r};-70;5" for j in range(12)]
+    path = _csv(tmp_path / "semi.csv", "sweep;time_s;voltage_mv;current_pa", rows)
+    (rec,) = open_recordings(path)
+    assert rec.sweeps[0].number == 2
+    np.testing.assert_allclose(rec.sweeps[0].current, 5e-12, rtol=1e-15)

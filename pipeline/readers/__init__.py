@@ -305,6 +305,14 @@ def cell_ids(path: Path, electrodes: Sequence[str]) -> list[str]:
     return [f"{path.stem}-{e}" for e in electrodes]
 
 
+def describe(exc: BaseException, limit: int = 200) -> str:
+    """A library exception as one short line for an error message (never a traceback)."""
+    text = str(exc).strip().splitlines()[0] if str(exc).strip() else ""
+    if len(text) > limit:
+        text = text[: limit - 3] + "..."
+    return f"{type(exc).__name__}: {text}" if text else type(exc).__name__
+
+
 def check_volts_or_amps(path: str, what: str, unit: str, expected: str) -> float:
     """Factor to SI for a unit name that must be volts-like (``"V"``) or amperes-like (``"A"``)."""
     parsed = parse_unit(unit or "")

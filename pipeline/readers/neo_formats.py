@@ -25,7 +25,7 @@ from pipeline.errors import (
     ShapeError,
     UnitError,
 )
-from pipeline.readers import cell_ids, make_recording, make_sweep
+from pipeline.readers import cell_ids, describe, make_recording, make_sweep
 from pipeline.recording import Recording, Sweep
 
 SETTINGS_KEYS = ("bias_current_a", "bridge_balance_ohm", "capacitance_compensation_f")
@@ -66,14 +66,11 @@ def read(path: Path) -> list[Recording]:
     try:
         with warnings.catch_warnings():
             warnings.simplefilter("ignore")
-            blocks = _read_blocks(path)
+            return recordings_from_blocks(path, _read_blocks(path))
     except RecordingError:
         raise
     except Exception as exc:  # neo / nixio / h5py errors on a corrupt or foreign file
-        raise CorruptFileError(
-            name, f"cannot be read by neo ({type(exc).__name__}: {exc})"
-        ) from exc
-    return recordings_from_blocks(path, blocks)
+        raise CorruptFileError(name, f"cannot be read by neo ({describe(exc)})") from exc
 
 
 def _read_blocks(path: Path) -> list:

@@ -26,6 +26,7 @@ from pipeline.errors import CorruptFileError, NoCurrentClampError, RecordingErro
 from pipeline.readers import (
     cell_ids,
     check_volts_or_amps,
+    describe,
     make_recording,
     make_sweep,
     rate_from_times,
@@ -85,9 +86,7 @@ def read(path: Path) -> list[Recording]:
     except RecordingError:
         raise
     except Exception as exc:  # h5py / hdmf / pynwb errors on a corrupt or truncated file
-        raise CorruptFileError(
-            name, f"cannot be read as NWB ({type(exc).__name__}: {exc})"
-        ) from exc
+        raise CorruptFileError(name, f"cannot be read as NWB ({describe(exc)})") from exc
 
 
 def _recordings(path: Path, nwbfile: Any) -> list[Recording]:

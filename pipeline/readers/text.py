@@ -31,7 +31,7 @@ from pathlib import Path
 import numpy as np
 
 from pipeline.errors import CorruptFileError, RecordingError, ShapeError, UnitError
-from pipeline.readers import MIN_SAMPLES, make_recording, make_sweep, rate_from_times
+from pipeline.readers import MIN_SAMPLES, describe, make_recording, make_sweep, rate_from_times
 from pipeline.recording import Recording
 
 UNITS = {
@@ -71,8 +71,8 @@ def read(path: Path) -> list[Recording]:
         )
     except RecordingError:
         raise
-    except (ValueError, pd.errors.ParserError, UnicodeDecodeError) as exc:
-        raise CorruptFileError(name, f"not a readable table ({exc})") from exc
+    except (ValueError, OSError, pd.errors.ParserError, UnicodeDecodeError) as exc:
+        raise CorruptFileError(name, f"not a readable table ({describe(exc)})") from exc
     if table.empty:
         raise ShapeError(name, "the table has a header but no samples")
     return [_recording(path, table, columns)]
@@ -84,6 +84,8 @@ def _sniff(path: Path) -> str:
             first = next((ln for ln in fh if ln.strip() and not ln.startswith("#")), "")
     except UnicodeDecodeError as exc:
         raise CorruptFileError(str(path), "not a text file (not UTF-8)") from exc
+    except OSError as exc:
+        raise CorruptFileError(str(path), f"cannot be opened ({describe(exc)})") from exc
     try:
         return csv.Sniffer().sniff(first, delimiters=",\t;").delimiter
     except csv.Error as exc:
