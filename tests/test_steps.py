@@ -1,0 +1,193 @@
+"""Step finder: exact on clean commands, within a sample on noisy filtered ones, and every kind
+of sweep that is not a single step classified with its reason. All inputs are seeded."""
+
+from __future__ import annotations
+
+import numpy as np
+import pytest
+from scipy import signal
+
+from pipeline.recording import Recording, Sweep
+from pipeline.steps import StepSettings, find_step, find_steps
+
+RATE = 20_000.0
+N = 30_000
+ON, OFF = 4_000, 24_000  # 200 ms and 1200 ms
+SETTINGS = StepSettings()
+AMPLITUDES = [a * 1e-12 for a in range(-100, 201, 20) if a != 0]
+
+
+def _sweep(current: np.ndarray | None, number: int = 0) -> Sweep:
+    voltage = np.full(N if current is None else current.size, -0.07)
+    return Sweep(voltage=voltage, current=current, rate=RATE, number=number)
+
+
+def _command(amplitude: float, holding: float = 0.0, on: int = ON, off: int = OFF) -> np.ndarray:
+    current = np.full(N, holding)
+    current[on:off] += amplitude
+    return current
+
+
+def _rc_filtered(amplitude: float, tau: float) -> np.ndarray:
+    """A rectangular step seen through a single-pole filter (the electrode or amplifier):
+    amplitude * (1 - exp(-(t - t_on) / tau)) after each edge, evaluated at the sample times."""
+    t = np.arange(N) / RATE
+
+    def rise(t0: float) -> np.ndarray:
+        return np.where(t >= t0, -np.expm1(-np.clip(t - t0, 0, None) / tau), 0.0)
+
+    return amplitude * (rise(ON / RATE) - rise(OFF / RATE))
+
+
+@pytest.mark.parametrize("amplitude", AMPLITUDES)
+@pytest.mark.parametrize("holding", [0.0, -35e-12, 60e-12])
+def test_clean_command_is_exact(amplitude: float, holding: float) -> None:
+    epoch = find_step(_sweep(_command(amplitude, holding), number=7), SETTINGS)
+    assert (epoch.usable, epoch.kind, epoch.reason, epoch.source) == (True, "step", "", "recorded")
+    assert epoch.sweep == 7
+    assert (epoch.onset_index, epoch.offset_index) == (ON, OFF)
+    assert epoch.onset == pytest.approx(0.2, abs=1e-12)
+    assert epoch.duration == pytest.approx(1.0, abs=1e-12)
+    assert epoch.holding == pytest.approx(holding, abs=1e-18)
+    assert epoch.amplitude == pytest.approx(amplitude, rel=1e-9)
+    assert np.sign(epoch.amplitude) == np.sign(amplitude)  # positive = depolarizing
+
+
+@pytest.mark.parametrize("tau", [0.0, 25e-6, 40e-6])
+def test_noisy_filtered_current_within_one_sample(tau: float) -> None:
+    rng = np.random.default_rng(11)
+    for amplitude in AMPLITUDES:
+        clean = _command(amplitude) if tau == 0 else _rc_filtered(amplitude, tau)
+        current = clean + 20e-12 + rng.normal(0.0, 3e-12, N)  # 3 pA RMS, 20 pA holding
+        epoch = find_step(_sweep(current), SETTINGS)
+        assert epoch.usable, epoch.reason
+        assert abs(epoch.onset_index - ON) <= 1
+        assert abs(epoch.offset_index - OFF) <= 1
+        assert epoch.holding == pytest.approx(20e-12, abs=0.3e-12)
+        assert epoch.amplitude == pytest.approx(amplitude, abs=0.3e-12)
+        assert epoch.noise_a == pytest.approx(3e-12, rel=0.15)
+
+
+def test_bessel_filtered_edge_within_one_sample() -> None:
+    # 2-pole Bessel low-pass at a quarter of the sampling rate, as an amplifier output filter.
+    b, a = signal.bessel(2, RATE / 4, fs=RATE, norm="phase")
+    rng = np.random.default_rng(12)
+    current = signal.lfilter(b, a, _command(-80e-12)) + rng.normal(0, 2e-12, N)
+    epoch = find_step(_sweep(current), SETTINGS)
+    assert epoch.usable
+    assert abs(epoch.onset_index - ON) <= 1 and abs(epoch.offset_index - OFF) <= 1
+
+
+def test_nan_in_voltage_is_ignored_and_nan_in_current_is_bridged() -> None:
+    current = _command(50e-12)
+    voltage = np.full(N, -0.07)
+    voltage[100:5000] = np.nan
+    epoch = find_step(Sweep(voltage, current, RATE, 0), SETTINGS)
+    assert epoch.usable and epoch.onset_index == ON
+    holed = current.copy()
+    holed[10_000:10_050] = np.nan
+    epoch = find_step(_sweep(holed), SETTINGS)
+    assert epoch.usable and (epoch.onset_index, epoch.offset_index) == (ON, OFF)
+    nothing = find_step(_sweep(np.full(N, np.nan)), SETTINGS)
+    assert (nothing.usable, nothing.kind) == (False, "no current")
+    assert "NaN" in nothing.reason
+
+
+def _train() -> np.ndarray:
+    current = np.zeros(N)
+    for i in range(5):
+        current[ON + 2000 * i : ON + 2000 * i + 400] = 150e-12
+    return current
+
+
+def _staircase() -> np.ndarray:
+    current = np.zeros(N)
+    current[ON:10_000], current[10_000:OFF] = 50e-12, 100e-12
+    return current
+
+
+def _ramp() -> np.ndarray:
+    current = np.zeros(N)
+    current[ON:OFF] = np.linspace(0.0, 200e-12, OFF - ON)
+    return current
+
+
+def _fast_ramp() -> np.ndarray:
+    current = _command(200e-12)
+    current[ON : ON + 1000] = np.linspace(0.0, 200e-12, 1000)  # 50 ms rise, then a plateau
+    return current
+
+
+def _noise_epoch() -> np.ndarray:
+    current = np.zeros(N)
+    current[ON:OFF] = np.random.default_rng(3).normal(0, 40e-12, OFF - ON)
+    return current
+
+
+@pytest.mark.parametrize(
+    ("make", "kind", "words"),
+    [
+        (lambda: np.random.default_rng(4).normal(0, 2e-12, N), "no change", "no step"),
+        (lambda: _command(0.4e-12), "no change", "no step"),
+        (_ramp, "ramp", "drifts"),
+        (_fast_ramp, "ramp", "gradually"),
+        (_noise_epoch, "noise", "noise-like"),
+        (lambda: np.random.default_rng(5).normal(0, 30e-12, N), "noise", "noise-like"),
+        (_train, "train", "5 pulses"),
+        (_staircase, "multi-step", "50, 100, 0 pA"),
+        (lambda: _command(50e-12, off=N), "too short", "changes once"),
+        (lambda: _command(50e-12, on=40), "too short", "baseline"),
+        (lambda: _command(50e-12, off=N - 20), "too short", "after the step"),
+        (lambda: _command(50e-12, off=ON + 10), "too short", "lasts only"),
+    ],
+)
+def test_non_steps_are_classified_with_reason(make, kind: str, words: str) -> None:
+    epoch = find_step(_sweep(make()), SETTINGS)
+    assert (epoch.usable, epoch.kind) == (False, kind)
+    assert words in epoch.reason
+
+
+def test_train_and_staircase_keep_what_was_measured() -> None:
+    train = find_step(_sweep(_train()), SETTINGS)
+    assert train.onset_index == ON and train.offset_index == ON + 8000 + 400
+    assert train.amplitude == pytest.approx(150e-12)
+    stairs = find_step(_sweep(_staircase()), SETTINGS)
+    assert stairs.amplitude == pytest.approx(100e-12) and stairs.holding == 0.0
+
+
+def test_schedule_fallback_and_missing_schedule() -> None:
+    schedule = StepSettings(
+        schedule_onset_s=0.2,
+        schedule_duration_s=1.0,
+        schedule_first_a=-100e-12,
+        schedule_increment_a=20e-12,
+    )
+    sweeps = tuple(_sweep(None, number=10 + i) for i in range(7))
+    epochs = find_steps(Recording("c1", "c1.csv", "e0", sweeps), schedule)
+    assert [e.sweep for e in epochs] == list(range(10, 17))
+    assert all(e.source == "schedule" for e in epochs)
+    assert [round(e.amplitude * 1e12) for e in epochs] == [-100, -80, -60, -40, -20, 0, 20]
+    assert [e.usable for e in epochs] == [True] * 5 + [False, True]
+    assert epochs[5].kind == "no change"
+    assert (epochs[0].onset_index, epochs[0].offset_index, epochs[0].holding) == (ON, OFF, 0.0)
+    missing = find_step(_sweep(None), StepSettings(schedule_onset_s=0.2))
+    assert (missing.usable, missing.kind) == (False, "no current")
+    assert "schedule" in missing.reason
+    late = StepSettings(schedule_onset_s=1.2, schedule_duration_s=0.4, schedule_first_a=1e-11)
+    assert find_step(_sweep(None), late).kind == "too short"
+
+
+def test_min_amplitude_setting() -> None:
+    epoch = find_step(_sweep(_command(5e-12)), StepSettings(min_amplitude_a=10e-12))
+    assert (epoch.usable, epoch.kind) == (False, "no change")
+    assert find_step(_sweep(_command(5e-12)), SETTINGS).usable
+
+
+def test_other_rates() -> None:
+    for rate in (10_000.0, 50_000.0):
+        n = int(1.5 * rate)
+        current = np.zeros(n)
+        current[int(0.2 * rate) : int(1.2 * rate)] = -60e-12
+        epoch = find_step(Sweep(np.zeros(n), current, rate, 0), SETTINGS)
+        assert epoch.usable
+        assert (epoch.onset_index, epoch.offset_index) == (int(0.2 * rate), int(1.2 * rate))
