@@ -1,0 +1,722 @@
+"""One QC figure per cell: traces with fits, I-V, residuals, properties and verdict, spiking.
+
+Matplotlib through ``Figure`` + ``FigureCanvasAgg`` (no pyplot: no global state, safe in worker
+processes). The figure only draws results computed upstream; the one thing derived here is the
+residual of each charging-curve fit (data minus ``ExpFit.curve``), which is a view, not a value.
+Colours are fixed across panels: each hyperpolarizing sweep keeps its colour (by step current)
+in the traces and residuals; fits are black; excluded sweeps are grey and hollow.
+"""
+
+from __future__ import annotations
+
+import hashlib
+import math
+import re
+import textwrap
+import unicodedata
+from collections.abc import Iterable, Mapping, Sequence
+from dataclasses import dataclass
+from pathlib import Path
+from typing import Any
+
+import matplotlib
+import numpy as np
+from matplotlib.backends.backend_agg import FigureCanvasAgg
+from matplotlib.cm import ScalarMappable
+from matplotlib.colors import Normalize
+from matplotlib.figure import Figure
+from matplotlib.ticker import MaxNLocator
+
+from pipeline.fitters.results import CellFit, ExpFit, SweepFit
+from pipeline.qc import CellVerdict
+from pipeline.recording import Recording, Sweep
+from pipeline.report.atomic import atomic_path
+from pipeline.steps import StepEpoch
+
+_UNSAFE = re.compile(r"[^A-Za-z0-9._-]+")
+_WINDOWS_RESERVED = {"CON", "PRN", "AUX", "NUL"} | {f"{d}{i}" for d in ("COM", "LPT") for i in range(1, 10)}  # fmt: skip
+_MAX_STEM = 80
+
+PASS_COLOUR = "#1a7f37"
+FAIL_COLOUR = "#c62828"
+EXCLUDED_COLOUR = "0.65"
+DEPOLARIZING_COLOUR = "0.45"
+SS_COLOUR = "tab:blue"
+PEAK_COLOUR = "tab:orange"
+FIT_COLOUR = "black"
+MISSING_COLOUR = "0.4"
+
+
+def safe_name(cell_id: str) -> str:
+    """A file-name stem for a cell's figure, safe on every common file system.
+
+    Keeps ``[A-Za-z0-9._-]``; anything else (path separators, ``..``, ``:``, spaces, markup,
+    non-ASCII) becomes ``_``, leading dots and dashes are dropped and the stem is at most 80
+    characters. Whenever that changed the id, a short hash of the original id is appended, so
+    two distinct ids never share a name (``a/b`` and ``a_b`` differ).
+
+    Parameters
+    ----------
+    cell_id : str
+        The cell id, any text.
+
+    Returns
+    -------
+    str
+        The stem, without extension (the figure is ``figures/<stem>.png``).
+    """
+    cell_id = str(cell_id)
+    ascii_id = unicodedata.normalize("NFKD", cell_id).encode("ascii", "ignore").decode("ascii")
+    stem = _UNSAFE.sub("_", ascii_id).lstrip(".-")[:_MAX_STEM]
+    if not stem or stem != cell_id or stem.split(".")[0].upper() in _WINDOWS_RESERVED:
+        digest = hashlib.sha256(cell_id.encode("utf-8")).hexdigest()[:8]
+        stem = f"{stem}-{digest}" if stem.strip("_") else f"cell-{digest}"
+    return stem
+
+
+def figure_names(cell_ids: Iterable[str]) -> dict[str, str]:
+    """Safe stems for a day's cells that also stay distinct on case-insensitive file systems.
+
+    Parameters
+    ----------
+    cell_ids : iterable of str
+        Distinct cell ids.
+
+    Returns
+    -------
+    dict
+        Cell id -> stem; :func:`safe_name`, plus a hash when two stems differ only in case.
+    """
+    ids = list(dict.fromkeys(cell_ids))
+    stems = {cid: safe_name(cid) for cid in ids}
+    folded: dict[str, int] = {}
+    for stem in stems.values():
+        folded[stem.casefold()] = folded.get(stem.casefold(), 0) + 1
+    for cid, stem in stems.items():
+        if folded[stem.casefold()] > 1:
+            stems[cid] = f"{stem}-{hashlib.sha256(cid.encode('utf-8')).hexdigest()[:8]}"
+    return stems
+
+
+@dataclass(frozen=True)
+class FigureSettings:
+    """How cell figures look: resolution, size (inches), colour map of the step currents."""
+
+    dpi: float = 100.0
+    width_in: float = 15.0
+    height_in: float = 8.6
+    spikes_height_in: float = 3.6  # extra height of the spiking row
+    step_cmap: str = "viridis"
+    png_compress_level: int = 3  # zlib level: 3 is about as small as 9 for plots, much faster
+
+
+def _settings(
+    settings: FigureSettings | Mapping[str, Any] | None, dpi: float | None
+) -> FigureSettings:
+    if settings is None:
+        settings = FigureSettings()
+    elif not isinstance(settings, FigureSettings):
+        known = FigureSettings.__dataclass_fields__
+        settings = FigureSettings(**{k: v for k, v in dict(settings).items() if k in known})
+    if dpi is not None:
+        settings = FigureSettings(**{**settings.__dict__, "dpi": float(dpi)})
+    return settings
+
+
+def _finite(x: Any) -> bool:
+    return isinstance(x, int | float | np.floating) and math.isfinite(x)
+
+
+def envelope(t: np.ndarray, v: np.ndarray, n_columns: int) -> tuple[np.ndarray, np.ndarray]:
+    """Decimate a trace for drawing: the min and max of each pixel column, in time order.
+
+    Parameters
+    ----------
+    t, v : numpy.ndarray
+        Sample times and values (any units).
+    n_columns : int
+        Pixel columns the trace spans.
+
+    Returns
+    -------
+    (numpy.ndarray, numpy.ndarray)
+        At most ``2 * n_columns`` points plus a remainder shorter than one column, which draw
+        the same picture at that width.
+    """
+    n = v.shape[0]
+    per = -(-n // max(n_columns, 1))  # ceil: at most n_columns whole blocks
+    if per < 3:
+        return t, v
+    m = per * (n // per)
+    blocks = v[:m].reshape(-1, per)
+    lo_i, hi_i = blocks.argmin(axis=1), blocks.argmax(axis=1)
+    first = np.minimum(lo_i, hi_i)
+    second = np.maximum(lo_i, hi_i)
+    rows = np.arange(blocks.shape[0]) * per
+    idx = np.column_stack([rows + first, rows + second]).ravel()
+    idx = np.concatenate([idx, np.arange(m, n)])
+    return t[idx], v[idx]
+
+
+@dataclass
+class _SweepView:
+    """What the figure knows about one sweep, gathered from the three inputs."""
+
+    number: int
+    sweep: Sweep | None
+    epoch: StepEpoch | None
+    fit: SweepFit | None
+    step_a: float
+    used: bool
+    excluded_because: str
+    colour: Any = DEPOLARIZING_COLOUR
+
+
+def _epoch_map(
+    epochs: Sequence[StepEpoch] | Mapping[int, StepEpoch] | None,
+) -> dict[int, StepEpoch]:
+    if epochs is None:
+        return {}
+    values = epochs.values() if isinstance(epochs, Mapping) else epochs
+    return {int(e.sweep): e for e in values if e is not None}
+
+
+def _sweep_views(
+    recording: Recording | None,
+    epochs: Mapping[int, StepEpoch],
+    cell_fit: CellFit | None,
+    verdict: CellVerdict | None,
+    cmap_name: str,
+) -> list[_SweepView]:
+    sweeps = {s.number: s for s in recording.sweeps} if recording is not None else {}
+    fits = {f.sweep: f for f in cell_fit.sweeps} if cell_fit is not None else {}
+    excluded = dict(cell_fit.excluded) if cell_fit is not None else {}
+    if verdict is not None and verdict.excluded:
+        excluded.update(verdict.excluded)
+    used = set(cell_fit.used) if cell_fit is not None else set()
+    views = []
+    for number in sorted(set(sweeps) | set(fits) | set(epochs)):
+        fit, epoch = fits.get(number), epochs.get(number)
+        step = fit.step_a if fit is not None and _finite(fit.step_a) else math.nan
+        if not _finite(step) and epoch is not None and epoch.usable:
+            step = epoch.amplitude
+        reason = excluded.get(number, "")
+        if not reason and epoch is not None and not epoch.usable:
+            reason = epoch.reason or epoch.kind
+        views.append(
+            _SweepView(number, sweeps.get(number), epoch, fit, step, number in used, reason)
+        )
+    hyper = [v.step_a for v in views if _finite(v.step_a) and v.step_a < 0]
+    if hyper:
+        cmap = matplotlib.colormaps[cmap_name]
+        norm = _step_norm(hyper)
+        for v in views:
+            if _finite(v.step_a) and v.step_a < 0:
+                v.colour = cmap(0.9 * norm(v.step_a * 1e12))
+    return views
+
+
+def _step_norm(hyper_steps_a: Sequence[float]) -> Normalize:
+    lo = min(hyper_steps_a) * 1e12
+    return Normalize(vmin=lo, vmax=min(max(hyper_steps_a) * 1e12, lo * 0.1 if lo < 0 else 0))
+
+
+def _note(ax, text: str) -> None:
+    """Say in the panel what is missing and why (and drop the meaningless 0..1 ticks)."""
+    ax.set_xticks([])
+    ax.set_yticks([])
+    ax.text(
+        0.5, 0.5, textwrap.fill(text, 38), transform=ax.transAxes, ha="center", va="center",
+        color=MISSING_COLOUR, fontsize=9, style="italic",
+    )  # fmt: skip
+
+
+def _title(ax, text: str) -> None:
+    """A panel title as plain text (``set_title`` re-lays out every draw and costs ~20 ms)."""
+    ax.text(0.0, 1.012, text, transform=ax.transAxes, fontsize=9, va="bottom", ha="left")
+
+
+def _axis_columns(ax, fig: Figure, dpi: float) -> int:
+    return max(int(ax.get_position().width * fig.get_figwidth() * dpi), 50)
+
+
+def _draw_traces(ax, fig, views: list[_SweepView], cell_fit: CellFit | None, dpi: float) -> None:
+    drawn = [
+        v for v in views
+        if v.sweep is not None and v.sweep.n_samples > 1 and np.isfinite(v.sweep.voltage).any()
+    ]  # fmt: skip
+    if not drawn:
+        _note(ax, "no traces: the recording has no finite samples to draw")
+        _label_traces(ax)
+        return
+    longest = max(v.sweep.duration for v in drawn)
+    columns = _axis_columns(ax, fig, dpi)
+    spans = []
+    for v in drawn:
+        t, y = envelope(
+            v.sweep.time() * 1e3,
+            v.sweep.voltage * 1e3,
+            int(columns * v.sweep.duration / longest),
+        )
+        hyper = _finite(v.step_a) and v.step_a < 0
+        if v.excluded_because or (not hyper and not v.used):
+            style = {"color": EXCLUDED_COLOUR if hyper else DEPOLARIZING_COLOUR, "lw": 0.6}
+            if hyper:
+                style["ls"] = ":"
+        else:
+            style = {"color": v.colour, "lw": 0.9}
+        ax.plot(t, y, zorder=2 if hyper else 1, **style)
+        spans.append((np.nanmin(y), np.nanmax(y), hyper))
+    _draw_fits_and_windows(ax, views)
+    cap = _trace_limits(ax, spans, views)
+    _label_traces(ax, f"; clipped above {cap:.0f} mV" if cap is not None else "")
+
+
+def _label_traces(ax, note: str = "") -> None:
+    ax.set_xlabel("time from sweep start (ms)")
+    ax.set_ylabel("membrane potential (mV)")
+    _title(ax, f"sweeps (hyperpolarizing coloured by step; not used: dotted grey{note})")
+
+
+def _draw_fits_and_windows(ax, views: list[_SweepView]) -> None:
+    windows = {"charging fit": [], "steady state": [], "baseline": []}
+    for v in views:
+        f = v.fit
+        if f is None:
+            continue
+        if f.charging.ok and _finite(f.charging.t0) and _finite(f.charging.t1):
+            t = np.linspace(f.charging.t0, f.charging.t1, 120)
+            ax.plot(t * 1e3, f.charging.curve(t) * 1e3, color=FIT_COLOUR, lw=1.0, ls="--", zorder=3)
+            windows["charging fit"].append((f.charging.t0, f.charging.t1))
+        for key, win in (("steady state", f.ss_window), ("baseline", f.baseline_window)):
+            if all(_finite(x) for x in win):
+                windows[key].append(win)
+    shades = {"charging fit": "#9ecae1", "steady state": "#fdd0a2", "baseline": "0.88"}
+    for key, wins in windows.items():
+        if wins:
+            lo, hi = min(w[0] for w in wins), max(w[1] for w in wins)
+            ax.axvspan(
+                lo * 1e3,
+                hi * 1e3,
+                color=shades[key],
+                alpha=0.45,
+                lw=0,
+                zorder=0,
+                label=f"{key} window",
+            )
+    if any(windows.values()):
+        handles, labels = ax.get_legend_handles_labels()
+        if windows["charging fit"]:
+            handles.append(matplotlib.lines.Line2D([], [], color=FIT_COLOUR, ls="--", lw=1))
+            labels.append("fitted charging curve")
+        ax.legend(handles, labels, fontsize=7, loc="lower right", framealpha=0.85)
+
+
+def _trace_limits(ax, spans, views: list[_SweepView]) -> float | None:
+    """Keep the passive responses readable: clip spikes of depolarizing sweeps; returns the cap.
+
+    The top is set a margin above the highest median voltage during a step: a spiking sweep's
+    median sits between its spikes, a subthreshold sweep's at its plateau.
+    """
+    lo, hi = min(s[0] for s in spans), max(s[1] for s in spans)
+    plateaus = [m for v in views if (m := _step_median_mv(v)) is not None]
+    if plateaus:
+        top = max(
+            max(plateaus), max(s[1] for s in spans if s[2]) if any(s[2] for s in spans) else -np.inf
+        )
+        cap = top + max(0.3 * (top - lo), 8.0)
+        if hi > cap:
+            ax.set_ylim(lo - 0.04 * (cap - lo), cap)
+            return cap
+    pad = 0.04 * max(hi - lo, 1.0)
+    ax.set_ylim(lo - pad, hi + pad)
+    return None
+
+
+def _step_median_mv(v: _SweepView) -> float | None:
+    if v.sweep is None or v.epoch is None or not v.epoch.usable:
+        return None
+    seg = v.sweep.voltage[v.epoch.onset_index : v.epoch.offset_index]
+    seg = seg[np.isfinite(seg)]
+    return float(np.median(seg)) * 1e3 if seg.size else None
+
+
+def _draw_colourbar(fig: Figure, ax, views: list[_SweepView], cmap_name: str) -> None:
+    hyper = [v.step_a for v in views if _finite(v.step_a) and v.step_a < 0]
+    if not hyper:
+        return
+    norm = _step_norm(hyper)
+    cmap = matplotlib.colormaps[cmap_name]
+    colours = cmap(np.linspace(0, 0.9, 256))
+    sm = ScalarMappable(norm=norm, cmap=matplotlib.colors.ListedColormap(colours))
+    bar = fig.colorbar(sm, ax=ax, pad=0.01, fraction=0.035)
+    bar.set_label("step current (pA)", fontsize=8)
+    bar.ax.tick_params(labelsize=7)
+
+
+def _draw_iv(ax, views: list[_SweepView], cell_fit: CellFit | None) -> None:
+    ax.axhline(0, color="0.8", lw=0.8, zorder=0)
+    ax.axvline(0, color="0.8", lw=0.8, zorder=0)
+    ax.set_xlabel("step current (pA)")
+    ax.set_ylabel("ΔV from baseline (mV)")
+    _title(ax, "I-V: steady state ● and peak ▲")
+    points = [v for v in views if v.fit is not None and _finite(v.step_a)]
+    n_drawn = 0
+    for key, colour, marker in (("ss_dv", SS_COLOUR, "o"), ("peak_dv", PEAK_COLOUR, "^")):
+        for used in (True, False):
+            sel = [v for v in points if v.used == used and _finite(getattr(v.fit, key))]
+            if not sel:
+                continue
+            x = [v.step_a * 1e12 for v in sel]
+            y = [getattr(v.fit, key) * 1e3 for v in sel]
+            face = colour if used else "none"
+            edge = colour if used else EXCLUDED_COLOUR
+            ax.scatter(x, y, marker=marker, s=28, facecolors=face, edgecolors=edge, zorder=3)
+            n_drawn += len(sel)
+    if n_drawn == 0:
+        _note(ax, "no steady-state or peak deflections were measured")
+        return
+    _draw_iv_fit(ax, points, cell_fit)
+
+
+def _draw_iv_fit(ax, points: list[_SweepView], cell_fit: CellFit | None) -> None:
+    if cell_fit is None or not (
+        _finite(cell_fit.iv_slope_ohm) and _finite(cell_fit.iv_intercept_v)
+    ):
+        ax.text(
+            0.03,
+            0.95,
+            "no I-V fit",
+            transform=ax.transAxes,
+            va="top",
+            fontsize=8,
+            color=MISSING_COLOUR,
+        )
+        return
+    xs = [v.step_a for v in points if v.used] or [v.step_a for v in points]
+    x = np.linspace(min(min(xs), 0.0), max(max(xs), 0.0), 50)
+    b, slope = cell_fit.iv_intercept_v, cell_fit.iv_slope_ohm
+    label = f"fit: slope {slope / 1e6:.0f} MΩ"
+    lo, hi = cell_fit.rin_ci_ohm
+    if _finite(lo) and _finite(hi):
+        # band of lines through the fitted intercept with slopes across the 95% interval
+        y1, y2 = (b + lo * x) * 1e3, (b + hi * x) * 1e3
+        ax.fill_between(
+            x * 1e12, y1, y2, color=FIT_COLOUR, alpha=0.12, lw=0, label="95% interval of slope"
+        )
+    ax.plot(x * 1e12, (b + slope * x) * 1e3, color=FIT_COLOUR, lw=1.2, label=label)
+    ax.scatter(
+        [],
+        [],
+        marker="o",
+        facecolors="none",
+        edgecolors=EXCLUDED_COLOUR,
+        label="not used in the fit",
+    )
+    ax.legend(fontsize=7, loc="upper left", framealpha=0.85)
+
+
+def _draw_residuals(ax, views: list[_SweepView]) -> None:
+    ax.axhline(0, color="0.6", lw=0.8)
+    ax.set_xlabel("time from fit start (ms)")
+    ax.set_ylabel("residual (mV)")
+    _title(ax, "charging-curve fit residuals (data − fit)")
+    rms, n_drawn = [], 0
+    for v in views:
+        c: ExpFit | None = v.fit.charging if v.fit is not None else None
+        if c is None or not c.ok or v.sweep is None or not (_finite(c.t0) and _finite(c.t1)):
+            continue
+        t = v.sweep.time()
+        i0, i1 = np.searchsorted(t, [c.t0, c.t1])
+        if i1 - i0 < 2:
+            continue
+        resid = (v.sweep.voltage[i0:i1] - c.curve(t[i0:i1])) * 1e3
+        tt, rr = envelope((t[i0:i1] - c.t0) * 1e3, resid, 400)
+        colour = v.colour if v.used else EXCLUDED_COLOUR
+        ax.plot(tt, rr, color=colour, lw=0.7)
+        n_drawn += 1
+        if _finite(c.resid_rms):
+            rms.append(c.resid_rms * 1e3)
+    if not n_drawn:
+        _note(ax, "no charging-curve fits to show")
+        return
+    if rms:
+        ax.text(
+            0.99, 0.96, f"RMS {min(rms):.2f}–{max(rms):.2f} mV, {len(rms)} fits",
+            transform=ax.transAxes, ha="right", va="top", fontsize=7,
+        )  # fmt: skip
+
+
+def _draw_baselines(ax, views: list[_SweepView]) -> None:
+    """Baseline of each sweep in recording order: drift and jumps at a glance."""
+    ax.set_xlabel("sweep number")
+    ax.set_ylabel("baseline (mV)")
+    _title(ax, "baseline before each step")
+    sel = [v for v in views if v.fit is not None and _finite(v.fit.baseline_v)]
+    if not sel:
+        _note(ax, "no baselines measured")
+        return
+    ax.plot(
+        [v.number for v in sel],
+        [v.fit.baseline_v * 1e3 for v in sel],
+        color="0.5",
+        lw=0.8,
+        zorder=1,
+    )
+    ys = [v.fit.baseline_v * 1e3 for v in sel]
+    mid, half = (max(ys) + min(ys)) / 2, max((max(ys) - min(ys)) / 2 * 1.15, 2.0)
+    ax.set_ylim(mid - half, mid + half)  # at least 4 mV tall: noise must not look like drift
+    for used in (True, False):
+        pts = [v for v in sel if v.used == used]
+        if pts:
+            ax.scatter(
+                [v.number for v in pts], [v.fit.baseline_v * 1e3 for v in pts], s=18, zorder=2,
+                facecolors="0.2" if used else "none", edgecolors="0.2" if used else EXCLUDED_COLOUR,
+            )  # fmt: skip
+
+
+def _fmt(value: float, scale: float, unit: str, digits: int = 3) -> str:
+    return f"{value * scale:.{digits}g} {unit}" if _finite(value) else "not measured"
+
+
+def _fmt_ci(value: float, ci: tuple[float, float], scale: float, unit: str) -> str:
+    text = _fmt(value, scale, unit)
+    if _finite(value) and all(_finite(c) for c in ci):
+        text += f" [{ci[0] * scale:.3g}, {ci[1] * scale:.3g}]"
+    return text
+
+
+def _property_lines(cell_fit: CellFit | None, views: list[_SweepView]) -> list[str]:
+    if cell_fit is None:
+        return ["no passive fit for this cell"]
+    f = cell_fit
+    sag = f"{f.sag_ratio:.2f}" if _finite(f.sag_ratio) else "not measured"
+    if _finite(f.sag_ratio) and _finite(f.sag_step_a):
+        sag += f" (at {f.sag_step_a * 1e12:.0f} pA)"
+    return [
+        f"Vrest      {_fmt(f.vrest_v, 1e3, 'mV')}" + (f"  (drift {f.vrest_drift_v * 1e3:.2g} mV)" if _finite(f.vrest_drift_v) else ""),
+        f"Rin        {_fmt_ci(f.rin_ohm, f.rin_ci_ohm, 1e-6, 'MΩ')}",
+        f"tau        {_fmt_ci(f.tau_s, f.tau_ci_s, 1e3, 'ms')}",
+        f"Cm         {_fmt_ci(f.cm_f, f.cm_ci_f, 1e12, 'pF')}  (tau/Rin)",
+        f"sag ratio  {sag}",
+        f"rebound    {_fmt(f.rebound_v, 1e3, 'mV')}",
+        f"bridge err {_fmt(f.bridge_error_ohm, 1e-6, 'MΩ')}",
+        f"sweeps     {len(f.used)} used of {len(views)}",
+        "[ ] = 95% interval",
+    ]  # fmt: skip
+
+
+def _wrapped(items: Iterable[str], width: int, limit: int) -> list[str]:
+    lines: list[str] = []
+    for item in items:
+        lines.extend(textwrap.wrap(str(item), width, initial_indent="• ", subsequent_indent="  "))
+    if len(lines) > limit:
+        lines = [*lines[: limit - 1], f"  … {len(lines) - limit + 1} more lines (see sweeps.csv)"]
+    return lines
+
+
+def _grouped_reasons(views: list[_SweepView]) -> list[str]:
+    """``sweeps 1-3, 7: reason``, one line per distinct reason, in sweep order."""
+    groups: dict[str, list[int]] = {}
+    for v in views:
+        if v.excluded_because:
+            groups.setdefault(v.excluded_because, []).append(v.number)
+    return [f"{'sweep' if len(n) == 1 else 'sweeps'} {_ranges(n)}: {r}" for r, n in groups.items()]
+
+
+def _ranges(numbers: list[int]) -> str:
+    """[1, 2, 3, 5] -> '1-3, 5'."""
+    parts, start = [], numbers[0]
+    for prev, cur in zip(numbers, [*numbers[1:], None], strict=True):
+        if cur is None or cur != prev + 1:
+            parts.append(f"{start}" if start == prev else f"{start}-{prev}")
+            start = cur
+    return ", ".join(parts)
+
+
+class _TextColumn:
+    """Stacks text blocks top-down in an axes, in exact line heights (no layout pass)."""
+
+    def __init__(self, ax, fig: Figure) -> None:
+        self.ax, self.y = ax, 1.0
+        self.height_pt = ax.get_position().height * fig.get_figheight() * 72
+
+    def add(self, lines: Sequence[str], size: float = 8.5, gap: float = 0.6, **kw: Any) -> None:
+        if not lines:
+            return
+        self.ax.text(
+            0, self.y, "\n".join(lines), fontsize=size, va="top", transform=self.ax.transAxes, **kw
+        )
+        self.y -= (len(lines) * 1.2 + gap) * size / self.height_pt
+
+    def lines_left(self, size: float) -> int:
+        return max(int(self.y * self.height_pt / (1.2 * size)), 0)
+
+
+def _draw_text(ax, fig, recording, cell_fit, verdict, views, cell_id: str) -> None:
+    ax.axis("off")
+    col = _TextColumn(ax, fig)
+    header = textwrap.wrap(f"cell {cell_id}", 44)
+    if recording is not None:
+        header += textwrap.wrap(f"file {Path(recording.source_file).name}", 44)
+    col.add(header, 9, family="monospace", weight="bold")
+    status = cell_fit.status if cell_fit is not None else "no passive results"
+    if status != "ok":
+        col.add(textwrap.wrap(f"status: {status}", 44), 8.5, family="monospace", color=FAIL_COLOUR)
+    col.add(_property_lines(cell_fit, views), 8.5, gap=1.0, family="monospace")
+    passed = verdict is not None and verdict.qc_pass and status == "ok"
+    word = "QC PASS" if passed else ("QC FAIL" if verdict is not None else "QC: no verdict")
+    col.add([word], 13, gap=0.4, weight="bold", color=PASS_COLOUR if passed else FAIL_COLOUR)
+    sections = []
+    if verdict is not None and verdict.reasons:
+        sections.append(("failed because:", list(verdict.reasons)))
+    if verdict is not None and verdict.flags:
+        sections.append(("flags (cell still passes):", list(verdict.flags)))
+    excluded = _grouped_reasons(views)
+    if excluded:
+        sections.append(("sweeps not used:", excluded))
+    for k, (title, items) in enumerate(sections):
+        budget = max((col.lines_left(7.5) - 2 * (len(sections) - k)) // (len(sections) - k), 2)
+        col.add([title, *_wrapped(items, 50, budget)], 7.5, gap=0.8, family="monospace")
+
+
+def _spike_fields(spikes: Any) -> tuple[Any, list[tuple[float, float]]]:
+    """Duck-typed spiking result: ``rheobase_sweep`` and ``fi`` points (step A, rate Hz)."""
+    rheobase = getattr(spikes, "rheobase_sweep", None)
+    raw = getattr(spikes, "fi", None) or ()
+    points = []
+    for p in raw:
+        step = getattr(p, "step_a", None)
+        rate = getattr(p, "rate_hz", None)
+        if step is None and isinstance(p, Sequence) and len(p) >= 2:
+            step, rate = p[0], p[1]
+        if _finite(step) and _finite(rate):
+            points.append((float(step), float(rate)))
+    return rheobase, sorted(points)
+
+
+def _draw_spikes(ax_sweep, ax_fi, views: list[_SweepView], spikes: Any, dpi: float, fig) -> None:
+    rheobase, points = _spike_fields(spikes)
+    ax_sweep.set_xlabel("time from sweep start (ms)")
+    ax_sweep.set_ylabel("membrane potential (mV)")
+    by_number = {v.number: v for v in views}
+    view = by_number.get(int(rheobase)) if _finite(rheobase) else None
+    if view is not None and view.sweep is not None:
+        t, y = envelope(
+            view.sweep.time() * 1e3, view.sweep.voltage * 1e3, _axis_columns(ax_sweep, fig, dpi)
+        )
+        ax_sweep.plot(t, y, color="black", lw=0.7)
+        step = f"{view.step_a * 1e12:.0f} pA" if _finite(view.step_a) else "step unknown"
+        _title(ax_sweep, f"rheobase sweep {view.number} ({step})")
+    else:
+        _title(ax_sweep, "rheobase sweep")
+        _note(
+            ax_sweep,
+            "no sweep evoked a spike"
+            if rheobase is None
+            else f"rheobase sweep {rheobase} not in the recording",
+        )
+    ax_fi.set_xlabel("step current (pA)")
+    ax_fi.set_ylabel("firing rate (Hz)")
+    _title(ax_fi, "f–I")
+    if points:
+        ax_fi.plot(
+            [p[0] * 1e12 for p in points], [p[1] for p in points], "o-", color="black", ms=4, lw=1
+        )
+    else:
+        _note(ax_fi, "no f–I points")
+
+
+def _layout(fig: Figure, with_spikes: bool) -> dict[str, Any]:
+    rows = 3 if with_spikes else 2
+    heights = [1.25, 1.0, 1.0][:rows]
+    gs = fig.add_gridspec(
+        rows, 3, width_ratios=[2.1, 1.25, 1.15], height_ratios=heights,
+        left=0.055, right=0.99, top=0.93, bottom=0.07 if not with_spikes else 0.05,
+        wspace=0.28, hspace=0.42,
+    )  # fmt: skip
+    axes = {
+        "traces": fig.add_subplot(gs[0, 0]),
+        "iv": fig.add_subplot(gs[0, 1]),
+        "resid": fig.add_subplot(gs[1, 0]),
+        "baseline": fig.add_subplot(gs[1, 1]),
+        "text": fig.add_subplot(gs[:, 2]),
+    }
+    if with_spikes:
+        axes["spike_sweep"] = fig.add_subplot(gs[2, 0])
+        axes["fi"] = fig.add_subplot(gs[2, 1])
+    for name, ax in axes.items():
+        if name != "text":
+            # fewer ticks: each tick is several artists and dominates the drawing time
+            ax.xaxis.set_major_locator(MaxNLocator(6, steps=[1, 2, 2.5, 5, 10]))
+            ax.yaxis.set_major_locator(MaxNLocator(6, steps=[1, 2, 2.5, 5, 10]))
+    return axes
+
+
+def cell_figure(
+    recording: Recording | None,
+    epochs: Sequence[StepEpoch] | Mapping[int, StepEpoch] | None,
+    cell_fit: CellFit | None,
+    verdict: CellVerdict | None,
+    path: str | Path,
+    *,
+    spikes: Any = None,
+    settings: FigureSettings | Mapping[str, Any] | None = None,
+    dpi: float | None = None,
+) -> None:
+    """Draw one cell's QC figure and write it as a PNG (atomically).
+
+    Panels: the sweeps overlaid (hyperpolarizing ones coloured by step current) with the fitted
+    charging curves and the fit, steady-state and baseline windows; the I-V plot (steady-state
+    and peak deflection vs step current) with the fitted line and the 95% interval of its slope,
+    excluded sweeps hollow grey; the fit residuals; the baseline of each sweep; the properties
+    with their intervals and the QC verdict with its reasons and the excluded sweeps; with
+    ``spikes``, the rheobase sweep and the f-I curve. Whatever is missing (NaN values, failed
+    fits, no sweeps, ``status != "ok"``) is drawn as far as it exists and named in its panel.
+
+    Parameters
+    ----------
+    recording : Recording or None
+        The cell's sweeps (V, s); None when they could not be read.
+    epochs : sequence or mapping of StepEpoch, or None
+        Step epochs, one per sweep (matched by sweep number).
+    cell_fit : CellFit or None
+        Passive results (SI units).
+    verdict : CellVerdict or None
+        QC outcome.
+    path : str or pathlib.Path
+        Destination PNG; its folder must exist.
+    spikes : object, optional
+        Spiking result with ``rheobase_sweep`` (sweep number or None) and ``fi`` (points with
+        ``step_a`` in A and ``rate_hz`` in Hz, or ``(step_a, rate_hz)`` pairs).
+    settings : FigureSettings or Mapping, optional
+        Size, resolution, colour map.
+    dpi : float, optional
+        Resolution, dots per inch; overrides ``settings.dpi``.
+    """
+    cfg = _settings(settings, dpi)
+    height = cfg.height_in + (cfg.spikes_height_in if spikes is not None else 0.0)
+    with matplotlib.rc_context({"text.parse_math": False, "font.size": 8.5, "axes.titlesize": 9}):
+        fig = Figure(figsize=(cfg.width_in, height), dpi=cfg.dpi)
+        FigureCanvasAgg(fig)
+        cell_id = (
+            recording.cell_id if recording is not None else (cell_fit.cell_id if cell_fit else "?")
+        )
+        views = _sweep_views(recording, _epoch_map(epochs), cell_fit, verdict, cfg.step_cmap)
+        axes = _layout(fig, spikes is not None)
+        fig.text(0.055, 0.985, cell_id, fontsize=12, ha="left", va="top", weight="bold")
+        _draw_traces(axes["traces"], fig, views, cell_fit, cfg.dpi)
+        _draw_colourbar(fig, axes["traces"], views, cfg.step_cmap)
+        _draw_iv(axes["iv"], views, cell_fit)
+        _draw_residuals(axes["resid"], views)
+        _draw_baselines(axes["baseline"], views)
+        _draw_text(axes["text"], fig, recording, cell_fit, verdict, views, cell_id)
+        if spikes is not None:
+            _draw_spikes(axes["spike_sweep"], axes["fi"], views, spikes, cfg.dpi, fig)
+        with atomic_path(path) as tmp:
+            fig.savefig(
+                tmp,
+                format="png",
+                dpi=cfg.dpi,
+                pil_kwargs={"compress_level": cfg.png_compress_level},
+            )

@@ -1,0 +1,242 @@
+"""Cell figures: written for normal, failed-fit and error cells; safe, distinct file names."""
+
+from __future__ import annotations
+
+import dataclasses
+import math
+from pathlib import Path
+from types import SimpleNamespace
+
+import numpy as np
+import pytest
+from matplotlib.image import imread
+
+from pipeline.fitters.results import CellFit, ExpFit, SweepFit
+from pipeline.qc import CellVerdict
+from pipeline.recording import Recording, Sweep
+from pipeline.report.figures import cell_figure, envelope, figure_names, safe_name
+from pipeline.steps import StepEpoch
+
+RATE = 20_000.0
+ONSET, OFFSET, LENGTH = 0.2, 1.0, 1.5  # s
+RIN, TAU, VREST = 150e6, 0.02, -0.070  # ohm, s, V
+
+
+def fake_cell(
+    cell_id: str = "cell01", n_sweeps: int = 15, seed: int = 1
+) -> tuple[Recording, list[StepEpoch], CellFit, CellVerdict]:
+    """An RC cell (Rin 150 MOhm, tau 20 ms) with steps -100..+180 pA, spikes above +100 pA,
+    and the results an ideal fitter would report; sweep 2 is excluded."""
+    rng = np.random.default_rng(seed)
+    t = np.arange(int(LENGTH * RATE)) / RATE
+    i0, i1 = int(ONSET * RATE), int(OFFSET * RATE)
+    sweeps, epochs, fits = [], [], []
+    for k in range(n_sweeps):
+        step = (-100 + 20 * k) * 1e-12
+        dv = step * RIN
+        v = np.full_like(t, VREST)
+        on = (t >= ONSET) & (t < OFFSET)
+        v[on] += dv * (1 - np.exp(-(t[on] - ONSET) / TAU))
+        after = t >= OFFSET
+        v[after] += dv * (1 - np.exp(-(OFFSET - ONSET) / TAU)) * np.exp(-(t[after] - OFFSET) / TAU)
+        if step > 100e-12:  # a few crude spikes so the clipping and spike panels have work
+            for ts in np.arange(ONSET + 0.05, OFFSET, 0.08):
+                v += 0.11 * np.exp(-(((t - ts) / 4e-4) ** 2))
+        v += rng.normal(0, 2e-4, t.size)
+        current = np.where(on, step, 0.0)
+        sweeps.append(Sweep(v, current, RATE, k + 1))
+        epochs.append(StepEpoch(k + 1, True, "step", "", 0.0, step, ONSET, OFFSET, i0, i1))
+        passive = step < 0
+        charging = ExpFit(ONSET, ONSET + 5 * TAU, TAU, -dv, VREST + dv, 0.999, 2e-4)
+        fits.append(
+            SweepFit(
+                sweep=k + 1,
+                step_a=step,
+                baseline_v=VREST + rng.normal(0, 3e-4),
+                ss_dv=dv if step <= 100e-12 else math.nan,
+                peak_dv=dv * 1.04 if passive else math.nan,
+                ss_window=(OFFSET - 0.1, OFFSET),
+                baseline_window=(0.05, ONSET),
+                charging=charging if passive else ExpFit(),
+                rin_ohm=RIN if step != 0 else math.nan,
+                reason="" if passive else "not a hyperpolarizing step",
+            )
+        )
+    used = tuple(f.sweep for f in fits if f.step_a < 0 and f.sweep != 2)
+    cell = CellFit(
+        cell_id=cell_id,
+        sweeps=tuple(fits),
+        used=used,
+        excluded={2: "baseline moved 2.4 mV during the sweep"},
+        vrest_v=VREST,
+        rin_ohm=RIN,
+        rin_ci_ohm=(RIN * 0.96, RIN * 1.04),
+        iv_slope_ohm=RIN,
+        iv_intercept_v=0.0,
+        tau_s=TAU,
+        tau_ci_s=(TAU * 0.97, TAU * 1.03),
+        cm_f=TAU / RIN,
+        cm_ci_f=(TAU / RIN * 0.95, TAU / RIN * 1.05),
+        sag_ratio=0.04,
+        sag_step_a=-100e-12,
+        bridge_error_ohm=2e6,
+    )
+    verdict = CellVerdict(True, flags=("tau from 4 sweeps only",), excluded=dict(cell.excluded))
+    recording = Recording(cell_id, f"/data/day/{cell_id}.nwb", "e0", tuple(sweeps))
+    return recording, epochs, cell, verdict
+
+
+def _png(path: Path) -> np.ndarray:
+    assert path.read_bytes()[:8] == b"\x89PNG\r\n\x1a\n"
+    return imread(path)
+
+
+def test_normal_cell_figure(tmp_path):
+    rec, epochs, fit, verdict = fake_cell()
+    out = tmp_path / "cell01.png"
+    cell_figure(rec, epochs, fit, verdict, out, dpi=100)
+    img = _png(out)
+    # 15 x 8.6 in at 100 dpi
+    assert img.shape[:2] == (860, 1500)
+    # the PASS colour (#1a7f37) is on the page: the verdict was drawn
+    green = np.all(np.abs(img[..., :3] - np.array([0x1A, 0x7F, 0x37]) / 255) < 0.02, axis=-1)
+    assert green.sum() > 50
+    assert not [p for p in tmp_path.iterdir() if p.name.startswith(".")]
+
+
+def test_figure_with_spikes_is_taller(tmp_path):
+    rec, epochs, fit, verdict = fake_cell()
+    spikes = SimpleNamespace(
+        rheobase_sweep=12,
+        fi=[
+            SimpleNamespace(step_a=(20 * k - 100) * 1e-12, rate_hz=12.5 * (k - 10))
+            for k in range(11, 15)
+        ],
+    )
+    cell_figure(rec, epochs, fit, verdict, tmp_path / "s.png", spikes=spikes, settings={"dpi": 60})
+    assert _png(tmp_path / "s.png").shape[:2] == (int(round((8.6 + 3.6) * 60)), 900)
+    # tuple points and a missing rheobase are accepted too
+    cell_figure(
+        rec,
+        epochs,
+        fit,
+        verdict,
+        tmp_path / "s2.png",
+        spikes=SimpleNamespace(rheobase_sweep=None, fi=[(1e-10, 5.0)]),
+        dpi=40,
+    )
+    _png(tmp_path / "s2.png")
+
+
+def test_failed_fits_figure(tmp_path):
+    rec, epochs, fit, _ = fake_cell("nofit")
+    nan_sweeps = tuple(
+        SweepFit(sweep=f.sweep, step_a=f.step_a, reason="fit did not converge") for f in fit.sweeps
+    )
+    failed = CellFit(
+        cell_id="nofit",
+        sweeps=nan_sweeps,
+        excluded={s.sweep: "fit did not converge" for s in nan_sweeps},
+    )
+    verdict = CellVerdict(
+        False, reasons=("no usable hyperpolarizing sweep",), excluded=failed.excluded
+    )
+    out = tmp_path / "nofit.png"
+    cell_figure(rec, epochs, failed, verdict, out, dpi=50)
+    img = _png(out)
+    red = np.all(np.abs(img[..., :3] - np.array([0xC6, 0x28, 0x28]) / 255) < 0.03, axis=-1)
+    assert red.sum() > 20  # the FAIL verdict is drawn
+
+
+def test_error_cell_figure(tmp_path):
+    rec, epochs, fit, _ = fake_cell("err")
+    error = CellFit(cell_id="err", sweeps=(), status="error: sweeps have different rates")
+    cell_figure(
+        rec, [], error, CellVerdict(False, reasons=(error.status,)), tmp_path / "err.png", dpi=50
+    )
+    _png(tmp_path / "err.png")
+    # nothing at all: no recording, no fit, no verdict
+    cell_figure(None, None, None, None, tmp_path / "none.png", dpi=40)
+    _png(tmp_path / "none.png")
+    # a recording with an empty sweep and NaN samples
+    bad = Recording(
+        "bad",
+        "bad.nwb",
+        "e0",
+        (Sweep(np.array([]), None, RATE, 1), Sweep(np.full(100, np.nan), None, RATE, 2)),
+    )
+    cell_figure(
+        bad,
+        None,
+        CellFit("bad", (), status="error: NaN samples"),
+        None,
+        tmp_path / "bad.png",
+        dpi=40,
+    )
+    _png(tmp_path / "bad.png")
+
+
+def test_failed_write_leaves_no_file(tmp_path, monkeypatch):
+    from matplotlib.figure import Figure
+
+    def broken(self, *args, **kwargs):
+        raise OSError("disk full")
+
+    monkeypatch.setattr(Figure, "savefig", broken)
+    rec, epochs, fit, verdict = fake_cell()
+    with pytest.raises(OSError, match="disk full"):
+        cell_figure(rec, epochs, fit, verdict, tmp_path / "x.png", dpi=40)
+    assert list(tmp_path.iterdir()) == []
+
+
+def test_envelope_keeps_extremes():
+    rng = np.random.default_rng(3)
+    v = rng.normal(size=30_000)
+    v[12_345] = 9.0  # a spike one sample wide must survive decimation
+    t = np.arange(v.size) / RATE
+    td, vd = envelope(t, v, 800)
+    assert vd.size <= 2 * 800 + 37 and vd.max() == 9.0 and vd.min() == v.min()
+    assert np.all(np.diff(td) >= 0)
+
+
+HOSTILE = [
+    "../x",
+    "a/b",
+    "a_b",
+    "c:d",
+    "<script>",
+    "a b",
+    "..",
+    "",
+    "é-cell",
+    "e-cell",
+    "CON",
+    "x" * 300,
+    "a\\b",
+]
+
+
+def test_safe_name_hostile_ids(tmp_path):
+    names = [safe_name(h) for h in HOSTILE]
+    assert len(set(names)) == len(HOSTILE)
+    for name in names:
+        assert name and not name.startswith(".") and len(name) <= 90
+        assert all(ch.isascii() and (ch.isalnum() or ch in "._-") for ch in name)
+        path = (tmp_path / "figures" / f"{name}.png").resolve()
+        assert path.parent == (tmp_path / "figures").resolve()
+    # plain ids keep their name; the same id always gets the same name
+    assert safe_name("2026-03-01_cell-3.e1") == "2026-03-01_cell-3.e1"
+    assert safe_name("a/b") == safe_name("a/b") != safe_name("a_b") == "a_b"
+
+
+def test_figure_names_case_insensitive():
+    stems = figure_names(["Cell1", "cell1", "cell2"])
+    assert len({s.casefold() for s in stems.values()}) == 3 and stems["cell2"] == "cell2"
+
+
+def test_real_hostile_files_written(tmp_path):
+    rec, epochs, fit, verdict = fake_cell(n_sweeps=4)
+    for h in ("../x", "<script>"):
+        rec2 = dataclasses.replace(rec, cell_id=h)
+        cell_figure(rec2, epochs, fit, verdict, tmp_path / f"{safe_name(h)}.png", dpi=30)
+    assert sorted(p.suffix for p in tmp_path.iterdir()) == [".png", ".png"]
