@@ -35,6 +35,7 @@ from pipeline.errors import (
     UnitError,
     UnsupportedFormatError,
 )
+from pipeline.readers import nwb as nwb_reader
 from pipeline.readers import open_recordings, supported_extensions
 from pipeline.recording import Recording, Sweep
 from pipeline.writers import write_csv, write_nix, write_nwb
@@ -130,12 +131,59 @@ def _set_attr(path: Path, obj: str, attr: str, value) -> None:
         f[obj].attrs[attr] = value
 
 
+def _open(path) -> list[Recording]:
+    """open_recordings; for an NWB file also checks that both NWB engines agree exactly.
+
+    The default engine reads the NWB layout with h5py; pynwb is the reference it must match,
+    in the Recordings it returns or in the error class and message it raises.
+    """
+    path = Path(path)
+    got, err = _attempt(lambda: open_recordings(path))
+    if path.suffix == ".nwb" and path.is_file() and path.stat().st_size > 0:
+        ref, ref_err = _attempt(lambda: nwb_reader.read(path, engine="pynwb"))
+        assert type(err) is type(ref_err)
+        if err is None:
+            _assert_identical(got, ref)
+            _assert_identical(nwb_reader.read(path, engine="h5py"), ref)  # no silent fallback
+        else:
+            assert str(err) == str(ref_err)
+    if err is not None:
+        raise err
+    return got
+
+
+def _attempt(fn):
+    try:
+        return fn(), None
+    except RecordingError as exc:
+        return None, exc
+
+
+def _assert_identical(a: list[Recording], b: list[Recording]) -> None:
+    assert len(a) == len(b)
+    for ra, rb in zip(a, b, strict=True):
+        assert (ra.cell_id, ra.source_file, ra.electrode) == (
+            rb.cell_id,
+            rb.source_file,
+            rb.electrode,
+        )
+        assert (ra.metadata, ra.skipped) == (rb.metadata, rb.skipped)
+        assert len(ra.sweeps) == len(rb.sweeps)
+        for sa, sb in zip(ra.sweeps, rb.sweeps, strict=True):
+            assert (sa.number, sa.rate, sa.start_time) == (sb.number, sb.rate, sb.start_time)
+            assert (sa.protocol, sa.settings) == (sb.protocol, sb.settings)
+            np.testing.assert_array_equal(sa.voltage, sb.voltage)
+            assert (sa.current is None) == (sb.current is None)
+            if sa.current is not None:
+                np.testing.assert_array_equal(sa.current, sb.current)
+
+
 # ---- NWB --------------------------------------------------------------------------------------
 
 
 def test_nwb_standard_layout_round_trips(tmp_path):
     path = _standard_file(tmp_path / "day1_slice2.nwb", electrodes=("e1", "e2"))
-    recs = open_recordings(path)
+    recs = _open(path)
     assert [r.cell_id for r in recs] == ["day1_slice2-e1", "day1_slice2-e2"]
     assert [r.electrode for r in recs] == ["e1", "e2"]
     rec = recs[1]
@@ -163,7 +211,7 @@ def test_nwb_standard_layout_round_trips(tmp_path):
 
 
 def test_nwb_one_electrode_gives_stem_as_cell_id(tmp_path):
-    recs = open_recordings(_standard_file(tmp_path / "cellA.nwb"))
+    recs = _open(_standard_file(tmp_path / "cellA.nwb"))
     assert [r.cell_id for r in recs] == ["cellA"]
 
 
@@ -177,7 +225,7 @@ def test_nwb_pairs_by_sweep_number_without_table(tmp_path):
     for _, resp in pairs:
         nwbfile.add_acquisition(resp, use_sweep_table=False)
     path = _write(nwbfile, tmp_path / "nosheet.nwb")
-    (rec,) = open_recordings(path)
+    (rec,) = _open(path)
     assert [s.number for s in rec.sweeps] == [0, 1, 2]
     for k, s in enumerate(rec.sweeps):
         np.testing.assert_array_equal(s.current, _as64(_current(-10e-12 * (k + 1))))
@@ -192,7 +240,7 @@ def test_nwb_pairs_by_order_without_sweep_numbers(tmp_path):
         stim, resp = _pair(nwbfile, el, k, number=False, name=tag)
         nwbfile.add_stimulus(stim, use_sweep_table=False)
         nwbfile.add_acquisition(resp, use_sweep_table=False)
-    (rec,) = open_recordings(_write(nwbfile, tmp_path / "byorder.nwb"))
+    (rec,) = _open(_write(nwbfile, tmp_path / "byorder.nwb"))
     assert [s.number for s in rec.sweeps] == [0, 1, 2]
     for k, s in enumerate(rec.sweeps):
         assert s.start_time == float(k)
@@ -216,7 +264,7 @@ def test_nwb_voltage_clamp_only_is_refused_naming_the_series(tmp_path):
     nwbfile.add_intracellular_recording(electrode=el, stimulus=stim, response=resp)
     path = _write(nwbfile, tmp_path / "vconly.nwb")
     with pytest.raises(NoCurrentClampError, match=r"vconly\.nwb: no current-clamp.*vc_resp_0"):
-        open_recordings(path)
+        _open(path)
 
 
 def test_nwb_voltage_clamp_series_are_skipped_and_listed(tmp_path):
@@ -226,7 +274,7 @@ def test_nwb_voltage_clamp_series_are_skipped_and_listed(tmp_path):
     nwbfile.add_intracellular_recording(electrode=el, stimulus=stim, response=resp)
     vstim, vresp = _vc_pair(nwbfile, el, 1)
     nwbfile.add_intracellular_recording(electrode=el, stimulus=vstim, response=vresp)
-    (rec,) = open_recordings(_write(nwbfile, tmp_path / "mixed.nwb"))
+    (rec,) = _open(_write(nwbfile, tmp_path / "mixed.nwb"))
     assert len(rec.sweeps) == 1
     assert set(rec.skipped) == {
         "vc_resp_1 (VoltageClampSeries)",
@@ -241,7 +289,7 @@ def test_nwb_izero_series_has_zero_current(tmp_path):
         name="izero", data=_voltage(5), electrode=el, rate=RATE, sweep_number=np.uint64(4)
     )
     nwbfile.add_acquisition(resp, use_sweep_table=False)
-    (rec,) = open_recordings(_write(nwbfile, tmp_path / "izero.nwb"))
+    (rec,) = _open(_write(nwbfile, tmp_path / "izero.nwb"))
     (s,) = rec.sweeps
     assert s.number == 4
     np.testing.assert_array_equal(s.current, np.zeros(N))
@@ -253,7 +301,7 @@ def test_nwb_timestamps_give_the_rate_and_start(tmp_path):
     times = 2.5 + np.arange(N) / 20_000.0
     resp = CurrentClampSeries(name="r", data=_voltage(1), electrode=el, timestamps=times)
     nwbfile.add_acquisition(resp, use_sweep_table=False)
-    (rec,) = open_recordings(_write(nwbfile, tmp_path / "stamped.nwb"))
+    (rec,) = _open(_write(nwbfile, tmp_path / "stamped.nwb"))
     (s,) = rec.sweeps
     assert s.rate == pytest.approx(20_000.0, rel=1e-12)
     assert s.start_time == 2.5
@@ -269,7 +317,7 @@ def test_nwb_irregular_timestamps_are_refused(tmp_path):
     nwbfile.add_acquisition(resp, use_sweep_table=False)
     path = _write(nwbfile, tmp_path / "gappy.nwb")
     with pytest.raises(ShapeError, match=r"gappy\.nwb: r \(CurrentClampSeries\).*irregular"):
-        open_recordings(path)
+        _open(path)
 
 
 def test_nwb_table_rows_cutting_one_series(tmp_path):
@@ -289,7 +337,7 @@ def test_nwb_table_rows_cutting_one_series(tmp_path):
             response_start_index=k * N,
             response_index_count=N,
         )
-    (rec,) = open_recordings(_write(nwbfile, tmp_path / "cut.nwb"))
+    (rec,) = _open(_write(nwbfile, tmp_path / "cut.nwb"))
     assert [s.number for s in rec.sweeps] == [0, 1]
     assert rec.sweeps[1].start_time == pytest.approx(N / RATE)
     np.testing.assert_array_equal(rec.sweeps[1].voltage, _as64(_voltage(1)))
@@ -299,7 +347,7 @@ def test_nwb_table_rows_cutting_one_series(tmp_path):
 def test_write_nwb_round_trips(tmp_path):
     recs = [_recording("a", 3), _recording("b", 2, with_current=False)]
     path = write_nwb(recs, tmp_path / "w.nwb", subject_id="animal-9", session_start_time=START)
-    out = open_recordings(path)
+    out = _open(path)
     assert [r.cell_id for r in out] == ["w-a", "w-b"]
     assert out[0].metadata["subject_id"] == "animal-9"
     assert out[0].metadata["session_start_time"] == START.isoformat()
@@ -343,7 +391,7 @@ def _assert_same_sweeps(got: Recording, want: Recording, *, settings: bool = Tru
 
 def test_write_nix_round_trips(tmp_path):
     recs = [_recording("a", 3), _recording("b", 2, with_current=False)]
-    out = open_recordings(write_nix(recs, tmp_path / "w.nix"))
+    out = _open(write_nix(recs, tmp_path / "w.nix"))
     assert [r.cell_id for r in out] == ["w-a", "w-b"]
     _assert_same_sweeps(out[0], recs[0])
     _assert_same_sweeps(out[1], recs[1])
@@ -384,7 +432,7 @@ def _write_neo_nix(block, path: Path) -> Path:
 
 def test_nix_written_by_neo_pairs_channels_by_order(tmp_path):
     path = _write_neo_nix(_neo_block(), tmp_path / "rig.nix")
-    recs = open_recordings(path)
+    recs = _open(path)
     assert [r.cell_id for r in recs] == ["rig-ch0", "rig-ch1"]
     for c, rec in enumerate(recs):
         # NixIO does not store Segment.index (it reads back the order), and these segments
@@ -399,7 +447,7 @@ def test_nix_written_by_neo_pairs_channels_by_order(tmp_path):
 
 def test_nix_without_current_channel_is_allowed(tmp_path):
     path = _write_neo_nix(_neo_block(channels=1, with_current=False), tmp_path / "vonly.nix")
-    (rec,) = open_recordings(path)
+    (rec,) = _open(path)
     assert rec.cell_id == "vonly"
     assert all(s.current is None for s in rec.sweeps)
 
@@ -408,7 +456,7 @@ def test_neo_dimensionless_channel_is_a_unit_error(tmp_path):
     block = _neo_block(channels=1, units_i="dimensionless")
     path = _write_neo_nix(block, tmp_path / "nounit.nix")
     with pytest.raises(UnitError, match=r"nounit\.nix: channel 'Im'.*neither volts nor amperes"):
-        open_recordings(path)
+        _open(path)
 
 
 def test_neo_unequal_channel_counts_cannot_be_paired(tmp_path):
@@ -417,13 +465,13 @@ def test_neo_unequal_channel_counts_cannot_be_paired(tmp_path):
         seg.analogsignals[1] = seg.analogsignals[1][:, :1]
     path = _write_neo_nix(block, tmp_path / "odd.nix")
     with pytest.raises(ShapeError, match=r"odd\.nix: sweep 0: 2 voltage channels but 1 current"):
-        open_recordings(path)
+        _open(path)
 
 
 def test_other_neo_format_through_io_detection(tmp_path):
     path = tmp_path / "legacy.mat"
     neo.io.NeoMatlabIO(str(path)).write_block(_neo_block(channels=1))
-    (rec,) = open_recordings(path)
+    (rec,) = _open(path)
     assert rec.cell_id == "legacy"
     assert len(rec.sweeps) == 2
     np.testing.assert_allclose(rec.sweeps[1].voltage, _as64(_voltage(21)), rtol=1e-6)
@@ -435,7 +483,7 @@ def test_other_neo_format_through_io_detection(tmp_path):
 
 def test_csv_round_trips(tmp_path):
     rec = _recording("", 3)
-    (out,) = open_recordings(write_csv(rec, tmp_path / "cell7.csv"))
+    (out,) = _open(write_csv(rec, tmp_path / "cell7.csv"))
     assert out.cell_id == "cell7"
     assert [s.number for s in out.sweeps] == [1, 2, 3]
     for a, b in zip(out.sweeps, rec.sweeps, strict=True):
@@ -457,7 +505,7 @@ def test_tsv_with_ms_uv_na_comments_and_partial_nan(tmp_path):
             lines.append(f"{k}\t{t:.1f}\t{v}\t{0.05 * k}")
     path = tmp_path / "tabbed.tsv"
     path.write_text("\n".join(lines) + "\n")
-    (rec,) = open_recordings(path)
+    (rec,) = _open(path)
     assert [s.number for s in rec.sweeps] == [3, 4]
     s = rec.sweeps[1]
     assert s.rate == pytest.approx(10_000.0, rel=1e-12)
@@ -470,7 +518,7 @@ def test_csv_without_current_column(tmp_path):
     rows = "\n".join(f"1,{j / 1000:.3f},{-65 + 0.01 * j:.2f}" for j in range(12))
     path = tmp_path / "nocurrent.csv"
     path.write_text("sweep,time_s,voltage_mv\n" + rows + "\n")
-    (rec,) = open_recordings(path)
+    (rec,) = _open(path)
     assert rec.sweeps[0].current is None
     assert rec.sweeps[0].rate == pytest.approx(1000.0)
 
@@ -491,19 +539,19 @@ def test_unknown_extension_lists_supported(tmp_path):
     path = tmp_path / "cell.xyz"
     path.write_text("data")
     with pytest.raises(UnsupportedFormatError, match=r"cell\.xyz: unknown extension.*\.nwb"):
-        open_recordings(path)
+        _open(path)
 
 
 def test_folder_is_refused(tmp_path):
     folder = tmp_path / "run.nwb"
     folder.mkdir()
     with pytest.raises(UnsupportedFormatError, match=r"run\.nwb: is a folder"):
-        open_recordings(folder)
+        _open(folder)
 
 
 def test_missing_file(tmp_path):
     with pytest.raises(RecordingError, match=r"ghost\.nwb: no such file"):
-        open_recordings(tmp_path / "ghost.nwb")
+        _open(tmp_path / "ghost.nwb")
 
 
 @pytest.mark.parametrize("name", ["empty.nwb", "empty.nix", "empty.csv", "empty.abf"])
@@ -511,7 +559,7 @@ def test_zero_length_file(tmp_path, name):
     path = tmp_path / name
     path.touch()
     with pytest.raises(CorruptFileError, match=rf"{re.escape(name)}: file is empty"):
-        open_recordings(path)
+        _open(path)
 
 
 def test_truncated_nwb(tmp_path):
@@ -519,7 +567,7 @@ def test_truncated_nwb(tmp_path):
     data = path.read_bytes()
     path.write_bytes(data[: len(data) // 2])
     with pytest.raises(CorruptFileError, match=r"cut_short\.nwb: cannot be read as NWB"):
-        open_recordings(path)
+        _open(path)
 
 
 @pytest.mark.parametrize("name", ["junk.nwb", "junk.nix", "junk.abf"])
@@ -527,28 +575,28 @@ def test_garbage_binary(tmp_path, name):
     path = tmp_path / name
     path.write_bytes(np.random.default_rng(3).bytes(2048))
     with pytest.raises(CorruptFileError, match=rf"{re.escape(name)}: cannot be read"):
-        open_recordings(path)
+        _open(path)
 
 
 def test_garbage_text(tmp_path):
     path = tmp_path / "junk.csv"
     path.write_bytes(b"\xff\xfe\x00\x01" * 50)
     with pytest.raises(CorruptFileError, match=r"junk\.csv: not a text file"):
-        open_recordings(path)
+        _open(path)
 
 
 def test_nwb_response_in_amperes_is_a_unit_error(tmp_path):
     path = _standard_file(tmp_path / "amps.nwb", n_sweeps=1)
     _set_attr(path, "acquisition/resp_e1_0/data", "unit", "amperes")
     with pytest.raises(UnitError, match=r"amps\.nwb: resp_e1_0 .*'amperes' is not volts-like"):
-        open_recordings(path)
+        _open(path)
 
 
 def test_nwb_unknown_unit_is_a_unit_error(tmp_path):
     path = _standard_file(tmp_path / "furlong.nwb", n_sweeps=1)
     _set_attr(path, "stimulus/presentation/stim_e1_0/data", "unit", "furlongs")
     with pytest.raises(UnitError, match=r"furlong\.nwb: stim_e1_0 .*unknown unit 'furlongs'"):
-        open_recordings(path)
+        _open(path)
 
 
 @pytest.mark.parametrize("rate", [0.0, -1.0, np.nan, np.inf])
@@ -556,7 +604,7 @@ def test_nwb_bad_rate(tmp_path, rate):
     path = _standard_file(tmp_path / "norate.nwb", n_sweeps=1)
     _set_attr(path, "acquisition/resp_e1_0/starting_time", "rate", rate)
     with pytest.raises(ShapeError, match=r"norate\.nwb: resp_e1_0.*sampling rate"):
-        open_recordings(path)
+        _open(path)
 
 
 def test_nwb_length_mismatch(tmp_path):
@@ -567,14 +615,14 @@ def test_nwb_length_mismatch(tmp_path):
     nwbfile.add_intracellular_recording(electrode=el, stimulus=stim, response=resp)
     path = _write(nwbfile, tmp_path / "ragged.nwb")
     with pytest.raises(ShapeError, match=rf"ragged\.nwb: .*{N} samples but current has {N - 5}"):
-        open_recordings(path)
+        _open(path)
 
 
 def test_nwb_rate_mismatch(tmp_path):
     path = _standard_file(tmp_path / "tworates.nwb", n_sweeps=1)
     _set_attr(path, "stimulus/presentation/stim_e1_0/starting_time", "rate", 2 * RATE)
     with pytest.raises(ShapeError, match=r"tworates\.nwb: .*10000 Hz but current at 20000 Hz"):
-        open_recordings(path)
+        _open(path)
 
 
 def test_nwb_duplicate_sweep_numbers(tmp_path):
@@ -585,7 +633,7 @@ def test_nwb_duplicate_sweep_numbers(tmp_path):
         nwbfile.add_intracellular_recording(electrode=el, stimulus=stim, response=resp)
     path = _write(nwbfile, tmp_path / "twice.nwb")
     with pytest.raises(ShapeError, match=r"twice\.nwb: e1: duplicate sweep numbers \[2\]"):
-        open_recordings(path)
+        _open(path)
 
 
 def test_nwb_nan_current_and_all_nan_voltage(tmp_path):
@@ -598,7 +646,7 @@ def test_nwb_nan_current_and_all_nan_voltage(tmp_path):
     nwbfile.add_intracellular_recording(electrode=el, stimulus=stim, response=resp)
     path = _write(nwbfile, tmp_path / "nancur.nwb")
     with pytest.raises(BadSamplesError, match=r"nancur\.nwb: .*current has 1 NaN/Inf"):
-        open_recordings(path)
+        _open(path)
     nwbfile = _nwbfile()
     el = _electrode(nwbfile, "e1")
     stim, resp = _pair(nwbfile, el, 0)
@@ -606,7 +654,7 @@ def test_nwb_nan_current_and_all_nan_voltage(tmp_path):
     nwbfile.add_intracellular_recording(electrode=el, stimulus=stim, response=resp)
     path = _write(nwbfile, tmp_path / "nanvolt.nwb")
     with pytest.raises(BadSamplesError, match=r"nanvolt\.nwb: .*voltage has no finite sample"):
-        open_recordings(path)
+        _open(path)
 
 
 def test_nwb_partial_nan_voltage_is_kept(tmp_path):
@@ -617,7 +665,7 @@ def test_nwb_partial_nan_voltage_is_kept(tmp_path):
     v[10:14] = np.nan
     resp.fields["data"] = v
     nwbfile.add_intracellular_recording(electrode=el, stimulus=stim, response=resp)
-    (rec,) = open_recordings(_write(nwbfile, tmp_path / "gap.nwb"))
+    (rec,) = _open(_write(nwbfile, tmp_path / "gap.nwb"))
     assert np.isnan(rec.sweeps[0].voltage[10:14]).all()
     assert np.isfinite(rec.sweeps[0].voltage[14:]).all()
 
@@ -646,7 +694,7 @@ def test_nwb_partial_nan_voltage_is_kept(tmp_path):
 def test_bad_text_files(tmp_path, header, rows, error, problem):
     path = _csv(tmp_path / "bad_cell.csv", header, rows)
     with pytest.raises(error, match=rf"bad_cell\.csv: .*{problem}"):
-        open_recordings(path)
+        _open(path)
 
 
 def test_supported_extensions():
@@ -662,9 +710,9 @@ def test_file_of_the_wrong_format_is_corrupt_not_a_crash(tmp_path):
     nix.rename(tmp_path / "really_nix.nwb")
     nwb.rename(tmp_path / "really_nwb.nix")
     with pytest.raises(CorruptFileError, match=r"really_nix\.nwb: cannot be read as NWB") as e1:
-        open_recordings(tmp_path / "really_nix.nwb")
+        _open(tmp_path / "really_nix.nwb")
     with pytest.raises(CorruptFileError, match=r"really_nwb\.nix: cannot be read by neo") as e2:
-        open_recordings(tmp_path / "really_nwb.nix")
+        _open(tmp_path / "really_nwb.nix")
     for err in (e1, e2):  # one short line, not a traceback
         assert "\n" not in str(err.value) and len(str(err.value)) < 400
 
@@ -672,6 +720,27 @@ def test_file_of_the_wrong_format_is_corrupt_not_a_crash(tmp_path):
 def test_semicolon_delimiter_is_sniffed(tmp_path):
     rows = [f"2;{j / 1000!r};-70;5" for j in range(12)]
     path = _csv(tmp_path / "semi.csv", "sweep;time_s;voltage_mv;current_pa", rows)
-    (rec,) = open_recordings(path)
+    (rec,) = _open(path)
     assert rec.sweeps[0].number == 2
     np.testing.assert_allclose(rec.sweeps[0].current, 5e-12, rtol=1e-15)
+
+
+def test_nwb_extension_types_are_left_to_pynwb(tmp_path, monkeypatch):
+    path = _standard_file(tmp_path / "ext.nwb", n_sweeps=1)
+    with h5py.File(path, "r+") as f:  # what an extension's subtype of the series looks like
+        f["acquisition/resp_e1_0"].attrs["namespace"] = "ndx-invented-rig"
+    with pytest.raises(nwb_reader.NotUnderstood, match="extension type"):
+        nwb_reader.read(path, engine="h5py")
+    # auto falls back to pynwb for what the direct path does not understand
+    good = _standard_file(tmp_path / "good.nwb", n_sweeps=2)
+    calls = []
+
+    def not_understood(p):
+        calls.append(p)
+        raise nwb_reader.NotUnderstood("test")
+
+    monkeypatch.setattr(nwb_reader, "_read_h5", not_understood)
+    got = open_recordings(good)
+    assert calls == [good]
+    monkeypatch.undo()
+    _assert_identical(got, nwb_reader.read(good, engine="h5py"))

@@ -19,6 +19,7 @@ import quantities as pq
 from pynwb import NWBHDF5IO, NWBFile
 from pynwb.icephys import CurrentClampSeries, CurrentClampStimulusSeries
 
+from pipeline.readers import nwb as nwb_reader
 from pipeline.readers import open_recordings, parse_unit
 
 RATE = 5_000.0
@@ -75,17 +76,19 @@ def _nwb(path, v_data, v_kwargs, i_data, i_kwargs):
     return path
 
 
-def test_nwb_conversion_on_volts_and_amperes(tmp_path):
+@pytest.mark.parametrize("engine", ["h5py", "pynwb"])
+def test_nwb_conversion_on_volts_and_amperes(tmp_path, engine):
     # Integer samples in mV and pA, with the conversion to the base unit stored beside them.
     v_mv = np.round(_ramp()).astype(np.int16)
     i_pa = np.arange(N, dtype=np.int16) - 20
     path = _nwb(tmp_path / "conv.nwb", v_mv, {"conversion": 1e-3}, i_pa, {"conversion": 1e-12})
-    (s,) = open_recordings(path)[0].sweeps
+    (s,) = nwb_reader.read(path, engine=engine)[0].sweeps
     np.testing.assert_allclose(s.voltage, v_mv * 1e-3, rtol=1e-15)
     np.testing.assert_allclose(s.current, i_pa * 1e-12, rtol=1e-15)
 
 
-def test_nwb_offset_is_added_after_conversion(tmp_path):
+@pytest.mark.parametrize("engine", ["h5py", "pynwb"])
+def test_nwb_offset_is_added_after_conversion(tmp_path, engine):
     counts = np.arange(N, dtype=np.int16)
     path = _nwb(
         tmp_path / "offset.nwb",
@@ -94,18 +97,19 @@ def test_nwb_offset_is_added_after_conversion(tmp_path):
         np.zeros(N),
         {},
     )
-    (s,) = open_recordings(path)[0].sweeps
+    (s,) = nwb_reader.read(path, engine=engine)[0].sweeps
     np.testing.assert_allclose(s.voltage, counts * 1e-4 - 0.08, rtol=1e-14)
 
 
-def test_nwb_unit_with_prefix_is_honoured(tmp_path):
+@pytest.mark.parametrize("engine", ["h5py", "pynwb"])
+def test_nwb_unit_with_prefix_is_honoured(tmp_path, engine):
     # A file whose unit attribute says mV (pynwb would silently reset it to volts).
     v = _ramp()
     path = _nwb(tmp_path / "mv_unit.nwb", v, {}, np.full(N, 25.0), {})
     with h5py.File(path, "r+") as f:
         f["acquisition/resp/data"].attrs["unit"] = "mV"
         f["stimulus/presentation/stim/data"].attrs["unit"] = "pA"
-    (s,) = open_recordings(path)[0].sweeps
+    (s,) = nwb_reader.read(path, engine=engine)[0].sweeps
     np.testing.assert_allclose(s.voltage, v * 1e-3, rtol=1e-15)
     np.testing.assert_allclose(s.current, np.full(N, 25e-12), rtol=1e-15)
 

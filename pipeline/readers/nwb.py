@@ -1,4 +1,8 @@
-"""NWB reader: current-clamp sweeps of an NWB 2 file, read through pynwb.
+"""NWB reader: current-clamp sweeps of an NWB 2 file.
+
+Two engines give identical Recordings: by default the documented NWB 2 core layout is read
+directly with h5py (pynwb's object mapping costs ~0.1 s per file); anything that path does not
+understand (extension types, other link kinds, a file it cannot parse) is read through pynwb.
 
 Responses are ``CurrentClampSeries`` (and ``IZeroClampSeries``, which by definition inject no
 current, so their current is zeros). Each is paired with its ``CurrentClampStimulusSeries``
@@ -11,6 +15,8 @@ in ``Recording.skipped``.
 
 from __future__ import annotations
 
+import contextlib
+import datetime as dt
 import math
 import re
 import warnings
@@ -57,78 +63,160 @@ class SeriesData:
     settings: dict[str, float | str]
 
 
-def read(path: Path) -> list[Recording]:
-    """Read the current-clamp cells of an NWB file through pynwb.
+def read(path: Path, *, engine: str = "auto") -> list[Recording]:
+    """Read the current-clamp cells of an NWB file.
 
     Parameters
     ----------
     path : pathlib.Path
         An NWB 2 (HDF5) file.
+    engine : {"auto", "h5py", "pynwb"}
+        ``"h5py"`` reads the documented core layout directly (fast, no object mapping);
+        ``"pynwb"`` goes through pynwb; ``"auto"`` tries h5py and falls back to pynwb for
+        anything it does not understand (extension types, other layouts).
 
     Returns
     -------
     list of Recording
-        One per intracellular electrode with current-clamp sweeps, in electrode order.
+        One per intracellular electrode with current-clamp sweeps.
 
     Raises
     ------
     CorruptFileError, NoCurrentClampError, UnitError, ShapeError, BadSamplesError
     """
-    from pynwb import NWBHDF5IO
+    if engine not in ("auto", "h5py", "pynwb"):
+        raise ValueError(f"engine must be 'auto', 'h5py' or 'pynwb', not {engine!r}")
+    if engine != "pynwb":
+        try:
+            return _guarded(path, _read_h5)
+        except (NotUnderstood, CorruptFileError):
+            # pynwb reads what the direct path does not know, and words the corrupt-file error
+            if engine == "h5py":
+                raise
+    return _guarded(path, _read_pynwb)
 
-    name = str(path)
+
+def _guarded(path: Path, reader: Any) -> list[Recording]:
     try:
         with warnings.catch_warnings():
             warnings.simplefilter("ignore")
-            with NWBHDF5IO(name, mode="r", load_namespaces=True) as io:
-                nwbfile = io.read()
-                return _recordings(path, nwbfile)
-    except RecordingError:
+            return reader(path)
+    except (RecordingError, NotUnderstood):
         raise
     except Exception as exc:  # h5py / hdmf / pynwb errors on a corrupt or truncated file
-        raise CorruptFileError(name, f"cannot be read as NWB ({describe(exc)})") from exc
+        raise CorruptFileError(str(path), f"cannot be read as NWB ({describe(exc)})") from exc
 
 
-def _recordings(path: Path, nwbfile: Any) -> list[Recording]:
-    from pynwb.icephys import (
-        CurrentClampSeries,
-        CurrentClampStimulusSeries,
-        PatchClampSeries,
+class NotUnderstood(Exception):
+    """The h5py path does not understand this file's layout; pynwb should read it."""
+
+
+def _series_data(
+    path: str,
+    *,
+    name: str,
+    kind: str,
+    electrode: str,
+    base: str,
+    unit: str,
+    conversion: float | None,
+    offset: float | None,
+    data: Any,
+    timestamps: Any,
+    rate: float | None,
+    starting_time: float | None,
+    start: int,
+    stop: int | None,
+    sweep_number: int | None,
+    protocol: str | None,
+    settings: dict[str, float | str],
+) -> SeriesData:
+    """Scale one series to SI (schema: value = data * conversion + offset, in ``unit``)."""
+    what = f"{name} ({kind})"
+    factor = check_volts_or_amps(path, what, unit, base)
+    raw = np.asarray(data[start:stop], dtype=np.float64)
+    if raw.ndim != 1 and not (raw.ndim == 2 and raw.shape[1] == 1):
+        raise ShapeError(path, f"{what}: data of shape {raw.shape}, expected one channel")
+    conversion = 1.0 if conversion is None else float(conversion)
+    offset = 0.0 if offset is None else float(offset)
+    values = (raw.reshape(-1) * conversion + offset) * factor
+    if timestamps is not None:
+        times = np.asarray(timestamps[start:stop], dtype=np.float64)
+        rate = rate_from_times(path, times, what)
+        t0 = float(times[0])
+    else:
+        rate = math.nan if rate is None else float(rate)
+        t0 = float(starting_time or 0.0) + start / rate if rate > 0 else math.nan
+    protocol = protocol or ""
+    return SeriesData(
+        name=name,
+        kind=kind,
+        electrode=electrode,
+        values=values,
+        rate=rate,
+        start_time=t0,
+        sweep_number=None if sweep_number is None else int(sweep_number),
+        protocol="" if protocol == NO_DESCRIPTION else protocol,
+        settings={k: float(v) for k, v in settings.items() if v is not None and np.isfinite(v)},
     )
 
+
+def _finish(
+    path: Path,
+    table_rows: list | None,
+    responses: list[SeriesData],
+    stimuli: list[SeriesData],
+    meta: dict[str, str],
+    skipped: list[str],
+) -> list[Recording]:
+    """Pair (from the table's rows when given) and build the Recordings; shared by both engines."""
     name = str(path)
-    everything = list(nwbfile.acquisition.values()) + list(nwbfile.stimulus.values())
-    responses, stimuli, skipped = [], [], []
-    for obj in everything:
-        if isinstance(obj, CurrentClampSeries):
-            responses.append(obj)
-        elif isinstance(obj, CurrentClampStimulusSeries):
-            stimuli.append(obj)
-        elif isinstance(obj, PatchClampSeries):
-            skipped.append(f"{obj.name} ({type(obj).__name__})")
-    if not responses:
+    skipped = sorted(skipped)
+    if not responses and not table_rows:
         what = f"; skipped: {', '.join(skipped)}" if skipped else ""
         raise NoCurrentClampError(name, f"no current-clamp series{what}")
-    pairs = _pairs_from_table(nwbfile.intracellular_recordings)
-    if pairs is None:
-        pairs = pair_series(
-            name, [_load(name, s, "V") for s in responses], [_load(name, s, "A") for s in stimuli]
-        )
-    else:
-        pairs = [
-            (_load(name, r, "V", ref_r), None if s is None else _load(name, s, "A", ref_s))
-            for (r, ref_r), (s, ref_s) in pairs
-        ]
+    if table_rows:
+        pairs = table_rows
         # Rows cutting one series into several sweeps: number those sweeps by row order.
         counts = Counter(r.name for r, _ in pairs)
         for r, _ in pairs:
             if counts[r.name] > 1:
                 r.sweep_number = None
-    return build_recordings(path, pairs, metadata(nwbfile), skipped)
+    else:
+        pairs = pair_series(name, responses, stimuli)
+    return build_recordings(path, pairs, meta, skipped)
 
 
-def _pairs_from_table(table: Any) -> list | None:
-    """(response, ref), (stimulus, ref) per row of the intracellular recordings table, or None."""
+# ---- pynwb engine -----------------------------------------------------------------------------
+
+
+def _read_pynwb(path: Path) -> list[Recording]:
+    from pynwb import NWBHDF5IO
+    from pynwb.icephys import CurrentClampSeries, CurrentClampStimulusSeries, PatchClampSeries
+
+    name = str(path)
+    with NWBHDF5IO(name, mode="r", load_namespaces=True) as io:
+        nwbfile = io.read()
+        everything = list(nwbfile.acquisition.values()) + list(nwbfile.stimulus.values())
+        responses, stimuli, skipped = [], [], []
+        for obj in everything:
+            if isinstance(obj, CurrentClampSeries):
+                responses.append(obj)
+            elif isinstance(obj, CurrentClampStimulusSeries):
+                stimuli.append(obj)
+            elif isinstance(obj, PatchClampSeries):
+                skipped.append(f"{obj.name} ({type(obj).__name__})")
+        if not responses:
+            return _finish(path, None, [], [], {}, skipped)
+        rows = _rows_pynwb(name, nwbfile.intracellular_recordings)
+        if rows is None:
+            responses = [_load_pynwb(name, s, "V") for s in responses]
+            stimuli = [_load_pynwb(name, s, "A") for s in stimuli]
+        return _finish(path, rows, responses, stimuli, _metadata_pynwb(nwbfile), skipped)
+
+
+def _rows_pynwb(path: str, table: Any) -> list | None:
+    """Loaded (response, stimulus) per current-clamp row of the recordings table, or None."""
     from pynwb.icephys import CurrentClampSeries
 
     if table is None or len(table) == 0:
@@ -139,8 +227,9 @@ def _pairs_from_table(table: Any) -> list | None:
         stim = table["stimuli"]["stimulus"][i]
         if not _valid(resp) or not isinstance(resp.timeseries, CurrentClampSeries):
             continue  # voltage-clamp rows, or stimulus-only rows
-        stim_pair = (stim.timeseries, stim) if _valid(stim) else (None, None)
-        rows.append(((resp.timeseries, resp), stim_pair))
+        r = _load_pynwb(path, resp.timeseries, "V", resp)
+        s = _load_pynwb(path, stim.timeseries, "A", stim) if _valid(stim) else None
+        rows.append((r, s))
     return rows or None
 
 
@@ -148,42 +237,29 @@ def _valid(ref: Any) -> bool:
     return ref is not None and ref.timeseries is not None and int(ref.idx_start) >= 0
 
 
-def _load(path: str, series: Any, base: str, ref: Any = None) -> SeriesData:
+def _load_pynwb(path: str, series: Any, base: str, ref: Any = None) -> SeriesData:
     """Load one pynwb series into memory, in SI, honouring a table row's (idx_start, count)."""
-    kind = type(series).__name__
-    what = f"{series.name} ({kind})"
-    factor = check_volts_or_amps(path, what, stored_unit(series), base)
-    conversion = float(series.conversion) if series.conversion is not None else 1.0
-    offset = float(getattr(series, "offset", 0.0) or 0.0)
     start, stop = 0, None
     if ref is not None:
         start, stop = int(ref.idx_start), int(ref.idx_start) + int(ref.count)
-    raw = np.asarray(series.data[start:stop], dtype=np.float64)
-    values = (raw * conversion + offset) * factor
-    if series.timestamps is not None:
-        times = np.asarray(series.timestamps[start:stop], dtype=np.float64)
-        rate = rate_from_times(path, times, what)
-        t0 = float(times[0])
-    else:
-        rate = float(series.rate) if series.rate is not None else math.nan
-        t0 = float(series.starting_time or 0.0) + start / rate if rate > 0 else math.nan
-    settings: dict[str, float | str] = {}
-    for attr, key in SETTINGS_KEYS.items():
-        value = getattr(series, attr, None)
-        if value is not None and np.isfinite(value):
-            settings[key] = float(value)
-    number = getattr(series, "sweep_number", None)
-    protocol = series.stimulus_description or ""
-    return SeriesData(
+    return _series_data(
+        path,
         name=series.name,
-        kind=kind,
+        kind=type(series).__name__,
         electrode=series.electrode.name if series.electrode is not None else "",
-        values=values,
-        rate=rate,
-        start_time=t0,
-        sweep_number=None if number is None else int(number),
-        protocol="" if protocol == NO_DESCRIPTION else protocol,
-        settings=settings,
+        base=base,
+        unit=stored_unit(series),
+        conversion=series.conversion,
+        offset=getattr(series, "offset", None),
+        data=series.data,
+        timestamps=series.timestamps,
+        rate=series.rate,
+        starting_time=series.starting_time,
+        start=start,
+        stop=stop,
+        sweep_number=getattr(series, "sweep_number", None),
+        protocol=series.stimulus_description,
+        settings={key: getattr(series, attr, None) for attr, key in SETTINGS_KEYS.items()},
     )
 
 
@@ -198,7 +274,187 @@ def stored_unit(series: Any) -> str:
     unit = attrs.get("unit") if attrs is not None else None
     if unit is None:
         return series.unit or ""
-    return unit.decode() if isinstance(unit, bytes) else str(unit)
+    return _text(unit)
+
+
+def _metadata_pynwb(nwbfile: Any) -> dict[str, str]:
+    start = nwbfile.session_start_time
+    subject = nwbfile.subject
+    return _clean_metadata(
+        {
+            "session_description": nwbfile.session_description,
+            "identifier": nwbfile.identifier,
+            "session_start_time": start.isoformat() if start is not None else None,
+            "subject_id": subject.subject_id if subject is not None else None,
+            "species": subject.species if subject is not None else None,
+        }
+    )
+
+
+def _clean_metadata(meta: dict[str, Any]) -> dict[str, str]:
+    return {k: str(v) for k, v in meta.items() if v is not None}
+
+
+def _text(value: Any) -> str:
+    return value.decode() if isinstance(value, bytes) else str(value)
+
+
+# ---- h5py engine: the NWB 2 core layout read directly ----------------------------------------
+
+CLAMP_TYPES = ("CurrentClampSeries", "IZeroClampSeries")
+STIMULUS_TYPES = ("CurrentClampStimulusSeries",)
+OTHER_PATCH_TYPES = ("PatchClampSeries", "VoltageClampSeries", "VoltageClampStimulusSeries")
+KNOWN_NAMESPACES = ("core", "hdmf-common", "hdmf-experimental")
+TABLE = "general/intracellular_ephys/intracellular_recordings"
+
+
+def _read_h5(path: Path) -> list[Recording]:
+    import h5py
+
+    name = str(path)
+    with h5py.File(name, "r") as f:
+        if _attr(f, "neurodata_type") != "NWBFile":
+            raise NotUnderstood("no NWBFile at the root")
+        responses, stimuli, skipped = [], [], []
+        for top in ("acquisition", "stimulus/presentation"):
+            for group in _children(f, top):
+                kind = _attr(group, "neurodata_type")
+                if kind in CLAMP_TYPES:
+                    responses.append(group)
+                elif kind in STIMULUS_TYPES:
+                    stimuli.append(group)
+                elif kind in OTHER_PATCH_TYPES:
+                    skipped.append(f"{group.name.rsplit('/', 1)[-1]} ({kind})")
+        if not responses:
+            return _finish(path, None, [], [], {}, skipped)
+        rows = _rows_h5(name, f)
+        if rows is None:
+            responses = [_load_h5(name, g, "V") for g in responses]
+            stimuli = [_load_h5(name, g, "A") for g in stimuli]
+        return _finish(path, rows, responses, stimuli, _metadata_h5(f), skipped)
+
+
+def _children(f: Any, top: str) -> list:
+    """Groups under ``top``; a type from an extension namespace may subclass ours: not ours."""
+    import h5py
+
+    parent = f.get(top)
+    if parent is None:
+        return []
+    out = []
+    for key in parent:
+        obj = parent[key]
+        namespace = _attr(obj, "namespace")
+        if namespace is not None and namespace not in KNOWN_NAMESPACES:
+            raise NotUnderstood(f"extension type in {top}/{key}")
+        if isinstance(obj, h5py.Group):
+            out.append(obj)
+    return out
+
+
+def _rows_h5(path: str, f: Any) -> list | None:
+    table = f.get(TABLE)
+    if table is None:
+        return None
+    if _attr(table, "neurodata_type") != "IntracellularRecordingsTable":
+        raise NotUnderstood("unexpected intracellular recordings table")
+    responses = table["responses/response"][()]
+    stimuli = table["stimuli/stimulus"][()]
+    rows = []
+    for resp, stim in zip(responses, stimuli, strict=True):
+        if resp["idx_start"] < 0 or not resp["timeseries"]:
+            continue
+        group = f[resp["timeseries"]]
+        if _attr(group, "neurodata_type") not in CLAMP_TYPES:
+            continue  # voltage-clamp rows
+        r = _load_h5(path, group, "V", resp)
+        s = None
+        if stim["idx_start"] >= 0 and stim["timeseries"]:
+            s = _load_h5(path, f[stim["timeseries"]], "A", stim)
+        rows.append((r, s))
+    return rows or None
+
+
+def _load_h5(path: str, group: Any, base: str, ref: Any = None) -> SeriesData:
+    kind = _attr(group, "neurodata_type")
+    data = group["data"]
+    start, stop = 0, None
+    if ref is not None:
+        start, stop = int(ref["idx_start"]), int(ref["idx_start"]) + int(ref["count"])
+    starting = group.get("starting_time")
+    if kind == "IZeroClampSeries":  # pynwb fixes these for I=0 series, whatever is stored
+        settings: dict[str, Any] = dict.fromkeys(SETTINGS_KEYS.values(), 0.0)
+        protocol = None
+    else:
+        settings = {key: _scalar(group, attr) for attr, key in SETTINGS_KEYS.items()}
+        protocol = _attr(group, "stimulus_description")
+    electrode = _link_target(group, "electrode")
+    return _series_data(
+        path,
+        name=group.name.rsplit("/", 1)[-1],
+        kind=kind,
+        electrode=electrode.rsplit("/", 1)[-1] if electrode is not None else "",
+        base=base,
+        unit=_attr(data, "unit") or "",
+        conversion=_attr(data, "conversion"),
+        offset=_attr(data, "offset"),
+        data=data,
+        timestamps=group.get("timestamps"),
+        rate=_attr(starting, "rate") if starting is not None else None,
+        starting_time=float(starting[()]) if starting is not None else None,
+        start=start,
+        stop=stop,
+        sweep_number=_attr(group, "sweep_number"),
+        protocol=protocol,
+        settings=settings,
+    )
+
+
+def _link_target(group: Any, key: str) -> str | None:
+    """Path a link points to (NWB stores links to electrodes as HDF5 soft links)."""
+    import h5py
+
+    link = group.get(key, getlink=True)
+    if link is None:
+        return None
+    if not isinstance(link, h5py.SoftLink):
+        raise NotUnderstood(f"{group.name}/{key} is not a soft link")
+    return link.path
+
+
+def _attr(obj: Any, key: str) -> Any:
+    value = obj.attrs.get(key)
+    if isinstance(value, bytes | str):
+        return _text(value)
+    return value
+
+
+def _scalar(group: Any, key: str) -> Any:
+    ds = group.get(key)
+    if ds is None:
+        return None
+    value = ds[()]
+    return _text(value) if isinstance(value, bytes) else value
+
+
+def _metadata_h5(f: Any) -> dict[str, str]:
+    start = _scalar(f, "session_start_time")
+    if start is not None:
+        with contextlib.suppress(ValueError):
+            start = dt.datetime.fromisoformat(start).isoformat()
+    subject = f.get("general/subject")
+    return _clean_metadata(
+        {
+            "session_description": _scalar(f, "session_description"),
+            "identifier": _scalar(f, "identifier"),
+            "session_start_time": start,
+            "subject_id": _scalar(subject, "subject_id") if subject is not None else None,
+            "species": _scalar(subject, "species") if subject is not None else None,
+        }
+    )
+
+
+# ---- pairing, shared ---------------------------------------------------------------------------
 
 
 def _natural_key(name: str) -> list:
@@ -214,6 +470,7 @@ def pair_series(
     alphabetically, so ``sweep_10`` would come before ``sweep_2``).
     """
     pairs = []
+    responses = _ordered(responses)  # electrode order: that of their first sweep
     for electrode in dict.fromkeys(r.electrode for r in responses):
         resp = _ordered(r for r in responses if r.electrode == electrode)
         stim = _ordered(s for s in stimuli if s.electrode == electrode)
@@ -279,19 +536,3 @@ def _sweep(path: str, order: int, resp: SeriesData, stim: SeriesData | None) -> 
         protocol=resp.protocol or (stim.protocol if stim is not None else ""),
         settings=resp.settings,
     )
-
-
-def metadata(nwbfile: Any) -> dict[str, str]:
-    """Session and subject fields as strings (missing ones left out)."""
-    meta = {
-        "session_description": nwbfile.session_description,
-        "identifier": nwbfile.identifier,
-        "session_start_time": (
-            nwbfile.session_start_time.isoformat() if nwbfile.session_start_time else None
-        ),
-    }
-    subject = nwbfile.subject
-    if subject is not None:
-        meta["subject_id"] = subject.subject_id
-        meta["species"] = subject.species
-    return {k: str(v) for k, v in meta.items() if v is not None}
