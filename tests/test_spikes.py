@@ -169,7 +169,7 @@ def test_refractory_guard():
     assert len(detect_spikes(sweep(v), epoch(), SpikeSettings(refractory_s=4e-3))) == 1
 
 
-def bridge_artefact(v: np.ndarray, jump: float, spike: float, lag: float = 3e-4) -> None:
+def bridge_artefact(v: np.ndarray, jump: float, spike: float, lag: float = 1.6e-4) -> None:
     """Bridge jump while the step is on plus a fast capacitive overshoot (tau 30 us) at each
     edge, ``lag`` s after the edges (a slow electrode and the amplifier filter)."""
     t = np.arange(v.size) * DT - lag
@@ -354,6 +354,7 @@ def test_cell_rheobase_fi_slope_and_block():
         "max_rise_v_per_s",
         "max_fall_v_per_s",
         "in_step",
+        "spike_note",
     }
 
 

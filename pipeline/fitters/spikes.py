@@ -14,7 +14,7 @@ from __future__ import annotations
 
 import math
 from collections.abc import Mapping, Sequence
-from dataclasses import dataclass, field, fields
+from dataclasses import dataclass, field, fields, replace
 
 import numpy as np
 from scipy.ndimage import maximum_filter1d
@@ -52,7 +52,7 @@ class SpikeSettings:
     # after the peak the voltage must fall below half amplitude within this time, s
     max_fall_s: float = 0.01
     # dV/dt crossings this soon after a step onset or offset are the bridge artefact, s
-    edge_guard_s: float = 5e-4
+    edge_guard_s: float = 2e-4
     # spikes up to this long after the step offset are counted as rebound spikes, s
     rebound_window_s: float = 0.1
     # the after-hyperpolarization trough is searched this long after a spike (or to the next), s
@@ -114,6 +114,10 @@ class Spike:
         Largest and most negative dV/dt of the spike (unsmoothed), V/s; the fall is negative.
     in_step : bool
         True when the threshold crossing lies within the step, False for a rebound spike.
+    note : str
+        Empty for a normal spike. Set when dV/dt was still above threshold at the end of the edge
+        guard (a step larger than C * threshold): the threshold is then the dV/dt minimum before
+        the upstroke, or unknown (NaN threshold-based values) when dV/dt only rises.
     """
 
     time_s: float
@@ -127,6 +131,7 @@ class Spike:
     max_rise_v_per_s: float
     max_fall_v_per_s: float
     in_step: bool
+    note: str = ""  # why threshold-based values are NaN
 
 
 @dataclass(frozen=True)
@@ -237,6 +242,7 @@ class SpikeFit:
                 "max_rise_v_per_s": s.max_rise_v_per_s,
                 "max_fall_v_per_s": s.max_fall_v_per_s,
                 "in_step": s.in_step,
+                "spike_note": s.note,
             }
             for r in self.sweeps
             for i, s in enumerate(r.spikes, start=1)
@@ -316,16 +322,21 @@ def _detect(
 
     cand = _crossings(dvdt, thr)
     keep = cand >= onset
+    knees = []
     for edge in (onset, offset):
         keep &= (cand < edge - guard_pre) | (cand > edge + guard)
-    cand = cand[keep]
+        # a step larger than C * threshold keeps dV/dt above threshold past the guard: a spike
+        # rising straight out of it starts at the dV/dt minimum (knee) instead of a crossing
+        if edge + guard + 1 < n and dvdt[edge + guard + 1] >= thr:
+            knees.append(edge + guard + 1)
+    cand = np.union1d(cand[keep], knees).astype(int)
     rise_n = max(2, int(round(settings.max_rise_s * rate)))
     fall_n = max(2, int(round(settings.max_fall_s * rate)))
     refr_n = int(round(settings.refractory_s * rate))
     # vectorised pre-filter: the largest voltage within max_rise_s ahead of each candidate
     ahead = maximum_filter1d(v, size=rise_n, origin=-(rise_n // 2), mode="nearest")
     ok = (ahead[cand] - v[cand] >= settings.min_amplitude_v) & (ahead[cand] >= settings.min_peak_v)
-    found: list[tuple[float, int, int, int]] = []  # (threshold index, peak, half-down, crossing)
+    found: list[tuple] = []  # (x, v_thr, peak, half-down, start, knee, foot hidden)
     resume = 0
     for c in cand[ok]:
         if c < resume:
@@ -333,8 +344,15 @@ def _detect(
         p = c + int(np.argmax(v[c : min(c + rise_n, n)]))
         m = c + int(np.argmax(dvdt[c : p + 1]))
         c = cand[np.searchsorted(cand, m, side="right") - 1]  # last crossing before max rise
-        x = _interp_cross(dvdt, c, thr)
-        v_thr = float(np.interp(x, (c - 1, c), v[c - 1 : c + 1]))
+        hidden = c_knee = c in knees
+        if c_knee:
+            k = int(np.argmin(dvdt[c : m + 1]))
+            hidden = k == 0  # dV/dt only rises after the guard: the foot lies inside it
+            c += k
+            x, v_thr = float(c), float(v[c])
+        else:
+            x = _interp_cross(dvdt, c, thr)
+            v_thr = float(np.interp(x, (c - 1, c), v[c - 1 : c + 1]))
         amp = v[p] - v_thr
         if amp < settings.min_amplitude_v or v[p] < settings.min_peak_v:
             continue
@@ -342,40 +360,48 @@ def _detect(
         if below.size == 0:  # no repolarization: a plateau, not a spike
             resume = p
             continue
-        found.append((x, p, p + int(below[0]), c))
+        found.append((x, v_thr, p, p + int(below[0]), c, c_knee, hidden))
         resume = max(p + int(below[0]), c + refr_n)
 
     spikes = []
     ahp_n = max(1, int(round(settings.ahp_window_s * rate)))
-    for k, (x, p, down, c) in enumerate(found):
+    for k, (x, v_thr, p, down, c, c_knee, hidden) in enumerate(found):
         in_step = bool(onset <= x < offset)
         end = min(down + ahp_n, offset if in_step else n)
         if k + 1 < len(found):
-            end = min(end, found[k + 1][3])
+            end = min(end, found[k + 1][4])
         end = max(end, down + 1)
         trough = down + int(np.argmin(v[down:end]))
-        v_thr = float(np.interp(x, (c - 1, c), v[c - 1 : c + 1]))
         amp = float(v[p] - v_thr)
         half = v_thr + amp / 2
         up = p - int(np.flatnonzero(v[c - 1 : p + 1][::-1] < half)[0])
         t_up = _interp_cross(v, up + 1, half)
         t_down = _interp_cross(v, down, half)
+        unknown = NAN if hidden else 1.0  # threshold-based values of a hidden foot are NaN
         spikes.append(
             Spike(
                 time_s=x * dt,
-                threshold_v=v_thr,
+                threshold_v=v_thr * unknown,
                 peak_v=float(v[p]),
                 peak_time_s=p * dt,
-                amplitude_v=amp,
-                width_s=(t_down - t_up) * dt,
-                ahp_v=float(v_thr - v[trough]),
+                amplitude_v=amp * unknown,
+                width_s=(t_down - t_up) * dt * unknown,
+                ahp_v=float(v_thr - v[trough]) * unknown,
                 ahp_time_s=trough * dt - x * dt,
                 max_rise_v_per_s=float(raw[c - 1 : p + 1].max()),
                 max_fall_v_per_s=float(raw[p : trough + 1].min()),
                 in_step=in_step,
+                note=_knee_note(hidden) if c_knee else "",
             )
         )
     return spikes, noise
+
+
+def _knee_note(hidden: bool) -> str:
+    """Note of a spike whose dV/dt was still above threshold when the edge guard ended."""
+    if hidden:
+        return "rises straight out of the step edge: threshold unknown, time = end of edge guard"
+    return "dV/dt above threshold since the step edge: threshold at the dV/dt minimum (knee)"
 
 
 def _shift(spike: Spike, t0: float) -> Spike:
@@ -446,38 +472,45 @@ def adaptation_index(isis: Sequence[float]) -> float:
     return float(np.mean(np.diff(isi) / (isi[1:] + isi[:-1])))
 
 
-def _in_block(
-    v: np.ndarray, rate: float, epoch: StepEpoch, first: Spike, last: Spike, s: SpikeSettings
-) -> bool:
-    """Silent for at least ``block_min_s`` before the offset while above the first threshold."""
-    t_end = last.time_s + last.ahp_time_s
-    if epoch.offset - t_end < s.block_min_s:
-        return False
+def _silent_tail(
+    v: np.ndarray, rate: float, epoch: StepEpoch, step: list[Spike], s: SpikeSettings
+) -> tuple[float, float]:
+    """Start (s) of the spike-free end of the step and the median V of its last half."""
+    if step:
+        t_end = step[-1].time_s + (step[-1].ahp_time_s if math.isfinite(step[-1].ahp_time_s) else 0)
+    else:
+        t_end = epoch.onset + s.edge_guard_s
     i0 = int(round((epoch.offset - s.block_min_s / 2) * rate))
-    tail = v[i0 : epoch.offset_index]
-    return tail.size > 0 and float(np.median(tail)) >= first.threshold_v
+    tail = v[max(i0, 0) : epoch.offset_index]
+    return t_end, float(np.median(tail)) if tail.size else NAN
 
 
-def measure_spiking(
-    sweep: Sweep, epoch: StepEpoch, settings: SpikeSettings | None = None
+def _with_block(
+    r: SweepSpiking, sweep: Sweep, epoch: StepEpoch, threshold_v: float, s: SpikeSettings
 ) -> SweepSpiking:
-    """Detect spikes in one sweep and summarise its firing.
+    """``r`` with depolarization block assessed against ``threshold_v`` (V).
 
-    Parameters
-    ----------
-    sweep : Sweep
-        Voltage in V, rate in Hz.
-    epoch : StepEpoch
-        The sweep's step; ``amplitude`` in A, positive = depolarizing.
-    settings : SpikeSettings, optional
-        Detection criteria; defaults when omitted.
-
-    Returns
-    -------
-    SweepSpiking
-        NaN values carry a reason: NaN samples, too much noise, no spikes, block...
+    Block: no spike for at least ``block_min_s`` before the step offset while the membrane sits
+    above the threshold; the sweep's rate is then NaN (it says nothing about the f-I relation).
     """
-    settings = settings or SpikeSettings()
+    if not r.analysed or r.step_a <= 0:
+        return r
+    step = [sp for sp in r.spikes if sp.in_step]
+    if not math.isfinite(threshold_v):
+        threshold_v = next((sp.threshold_v for sp in step if math.isfinite(sp.threshold_v)), NAN)
+    t_end, v_tail = _silent_tail(sweep.voltage, sweep.rate, epoch, step, s)
+    if not (epoch.offset - t_end >= s.block_min_s and v_tail >= threshold_v):
+        return r
+    since = f"after {(step[-1].time_s - epoch.onset) * 1e3:.0f} ms" if step else "at all"
+    reason = (
+        f"depolarization block: no spikes {since} while the membrane stays at "
+        f"{v_tail * 1e3:.1f} mV, above the {threshold_v * 1e3:.1f} mV threshold"
+    )
+    return replace(r, rate_hz=NAN, block=True, reason="; ".join(filter(None, (r.reason, reason))))
+
+
+def _measure(sweep: Sweep, epoch: StepEpoch, settings: SpikeSettings) -> SweepSpiking:
+    """Spikes and firing of one sweep, block not yet assessed."""
     base = dict(sweep=sweep.number, step_a=epoch.amplitude, duration_s=epoch.duration)
     problem = _precheck(sweep, epoch, settings)
     if problem:
@@ -498,8 +531,7 @@ def measure_spiking(
         )
     spikes = [_shift(s, start / sweep.rate) for s in spikes]
     step = [s for s in spikes if s.in_step]
-    times = np.array([s.time_s for s in step])
-    isis = tuple(float(d) for d in np.diff(times))
+    isis = tuple(float(d) for d in np.diff([s.time_s for s in step]))
     reasons = []
     if not step:
         reasons.append("no spikes during the step")
@@ -507,29 +539,50 @@ def measure_spiking(
         reasons.append(
             f"adaptation index needs {settings.adaptation_min_spikes} spikes, got {len(step)}"
         )
-    block = bool(step) and _in_block(sweep.voltage, sweep.rate, epoch, step[0], step[-1], settings)
-    rate = len(step) / epoch.duration
-    if block:
-        rate = NAN
-        reasons.append(
-            f"depolarization block: no spikes after {(step[-1].time_s - epoch.onset) * 1e3:.0f} ms"
-            " while the membrane stays above the first spike's threshold"
-        )
     return SweepSpiking(
         **base,
         analysed=True,
         spikes=tuple(spikes),
         spike_count=len(step),
         rebound_spike_count=len(spikes) - len(step),
-        rate_hz=rate,
+        rate_hz=len(step) / epoch.duration,
         latency_s=step[0].time_s - epoch.onset if step else NAN,
         isis_s=isis,
         adaptation_index=(
             adaptation_index(isis) if len(step) >= settings.adaptation_min_spikes else NAN
         ),
-        block=block,
         reason="; ".join(reasons),
     )
+
+
+def measure_spiking(
+    sweep: Sweep,
+    epoch: StepEpoch,
+    settings: SpikeSettings | None = None,
+    block_threshold_v: float = NAN,
+) -> SweepSpiking:
+    """Detect spikes in one sweep and summarise its firing.
+
+    Parameters
+    ----------
+    sweep : Sweep
+        Voltage in V, rate in Hz.
+    epoch : StepEpoch
+        The sweep's step; ``amplitude`` in A, positive = depolarizing.
+    settings : SpikeSettings, optional
+        Detection criteria; defaults when omitted.
+    block_threshold_v : float, optional
+        Threshold (V) above which a silent membrane is in depolarization block; NaN (default)
+        uses the sweep's first spike threshold. :func:`fit_spiking` passes the cell's threshold
+        at rheobase.
+
+    Returns
+    -------
+    SweepSpiking
+        NaN values carry a reason: NaN samples, too much noise, no spikes, block...
+    """
+    settings = settings or SpikeSettings()
+    return _with_block(_measure(sweep, epoch, settings), sweep, epoch, block_threshold_v, settings)
 
 
 # ---------------------------------------------------------------- per cell
@@ -595,19 +648,29 @@ def fit_spiking(
     settings = settings or SpikeSettings()
     exclude = {int(k): str(v) for k, v in (exclude or {}).items()}
     by_number = {s.number: s for s in recording.sweeps}
-    rows = []
+    rows, used = [], []
     for ep in epochs:
         if not ep.usable or ep.sweep not in by_number:
             continue
         if ep.sweep in exclude:
-            rows.append(
-                SweepSpiking(
-                    ep.sweep, ep.amplitude, ep.duration, reason=f"excluded: {exclude[ep.sweep]}"
-                )
-            )
+            reason = f"excluded: {exclude[ep.sweep]}"
+            rows.append(SweepSpiking(ep.sweep, ep.amplitude, ep.duration, reason=reason))
         else:
-            rows.append(measure_spiking(by_number[ep.sweep], ep, settings))
+            rows.append(_measure(by_number[ep.sweep], ep, settings))
+            used.append((len(rows) - 1, ep))
+    # block is judged against the cell's threshold at rheobase where the cell has one
+    rheo = _rheobase_sweep([r for r in rows if r.analysed and r.step_a > 0])
+    ref = next((sp.threshold_v for sp in rheo.spikes if sp.in_step), NAN) if rheo else NAN
+    for k, ep in used:
+        above = rheo is not None and rows[k].step_a > rheo.step_a + settings.step_tolerance_a
+        rows[k] = _with_block(rows[k], by_number[ep.sweep], ep, ref if above else NAN, settings)
     return _summarise(recording.cell_id, tuple(rows), exclude, settings)
+
+
+def _rheobase_sweep(depol: list[SweepSpiking]) -> SweepSpiking | None:
+    """The smallest depolarizing step with an in-step spike (the first of equal steps)."""
+    spiking = [r for r in depol if r.spike_count >= 1]
+    return min(spiking, key=lambda r: r.step_a) if spiking else None
 
 
 def _summarise(
@@ -632,15 +695,14 @@ def _summarise(
         block_step_a=min(blocked) if blocked else NAN,
     )
     reasons = [] if amps.size > 1 else ["step resolution needs 2 depolarizing amplitudes"]
-    spiking = [r for r in depol if r.spike_count >= 1]
-    if not spiking:
+    rheo = _rheobase_sweep(depol)
+    if rheo is None:
         largest = max(r.step_a for r in depol) * 1e12
         return SpikeFit(
             **base,
             status=f"no spikes in {len(depol)} depolarizing sweeps (largest step {largest:.4g} pA)",
             reason="; ".join(reasons),
         )
-    rheo = min(spiking, key=lambda r: r.step_a)  # min() keeps the first of equal steps
     below = [
         r.step_a
         for r in depol
