@@ -245,12 +245,23 @@ def sha256_file(path: str | os.PathLike[str], chunk_size: int = 1 << 20) -> str:
     return digest.hexdigest()
 
 
-def _jsonable(value: Any) -> Any:
-    """Plain JSON types only: NaN/inf -> null (JSON has no NaN), numpy -> Python, paths -> str."""
+def to_jsonable(value: Any) -> Any:
+    """Plain JSON types only: NaN/inf -> null (JSON has no NaN), numpy -> Python, paths -> str.
+
+    Parameters
+    ----------
+    value : Any
+        Nested mappings, sequences and scalars.
+
+    Returns
+    -------
+    Any
+        The same structure made of dict, list, str, int, float, bool and None.
+    """
     if isinstance(value, Mapping):
-        return {str(k): _jsonable(v) for k, v in value.items()}
+        return {str(k): to_jsonable(v) for k, v in value.items()}
     if isinstance(value, list | tuple | set | frozenset | np.ndarray):
-        return [_jsonable(v) for v in value]
+        return [to_jsonable(v) for v in value]
     if isinstance(value, np.generic):
         value = value.item()
     if isinstance(value, float) and not math.isfinite(value):
@@ -287,7 +298,7 @@ def write_run_json(outdir: str | os.PathLike[str], info: Mapping[str, Any]) -> P
     from pipeline import __version__
 
     record = {"version": __version__, **dict(info)}
-    text = json.dumps(_jsonable(record), indent=2, ensure_ascii=False, allow_nan=False)
+    text = json.dumps(to_jsonable(record), indent=2, ensure_ascii=False, allow_nan=False)
     out = Path(outdir)
     out.mkdir(parents=True, exist_ok=True)
     return atomic_write_text(out / "run.json", text + "\n")
