@@ -1,9 +1,10 @@
 """Writers: Recordings to NWB, NIX and the plain-text layout (demo day, benchmarks, tests).
 
 Each writer writes to a temporary file in the target folder and then moves it into place with
-:func:`os.replace`, so a reader never sees a half-written file. Samples are stored as float32
-in volts and amperes (conversion 1, no offset): what the readers give back is exactly
-``numpy.float32(x)`` of what was written. Sweep settings with our SI keys
+:func:`os.replace`, so a reader never sees a half-written file. NWB and NIX store samples as
+float32 in volts and amperes (conversion 1, no offset): the readers give back exactly
+``numpy.float32(x)`` of what was written. CSV stores mV and pA as the shortest decimal that
+reads back to the same float64 (exact but for the last bit of the unit scaling). Sweep settings with our SI keys
 (``bias_current_a``, ``bridge_balance_ohm``, ``capacitance_compensation_f``) are written back to
 the format's own fields.
 """

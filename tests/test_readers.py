@@ -391,8 +391,10 @@ def _assert_same_sweeps(got: Recording, want: Recording, *, settings: bool = Tru
 
 def test_write_nix_round_trips(tmp_path):
     recs = [_recording("a", 3), _recording("b", 2, with_current=False)]
+    recs[0] = Recording("x", "", "a", recs[0].sweeps, metadata={"subject_id": "animal-3"})
     out = _open(write_nix(recs, tmp_path / "w.nix"))
     assert [r.cell_id for r in out] == ["w-a", "w-b"]
+    assert out[1].metadata["subject_id"] == "animal-3"
     _assert_same_sweeps(out[0], recs[0])
     _assert_same_sweeps(out[1], recs[1])
 
@@ -446,10 +448,16 @@ def test_nix_written_by_neo_pairs_channels_by_order(tmp_path):
 
 
 def test_nix_without_current_channel_is_allowed(tmp_path):
-    path = _write_neo_nix(_neo_block(channels=1, with_current=False), tmp_path / "vonly.nix")
-    (rec,) = _open(path)
+    block = _neo_block(channels=1, with_current=False)
+    block.segments[0].irregularlysampledsignals.append(
+        neo.IrregularlySampledSignal(
+            [0.0, 0.3, 0.4], [1.0, 2.0, 3.0], units="mV", time_units="s", name="marks"
+        )
+    )
+    (rec,) = _open(_write_neo_nix(block, tmp_path / "vonly.nix"))
     assert rec.cell_id == "vonly"
     assert all(s.current is None for s in rec.sweeps)
+    assert rec.skipped == ("marks (IrregularlySampledSignal)",)
 
 
 def test_neo_dimensionless_channel_is_a_unit_error(tmp_path):
