@@ -752,3 +752,11 @@ def test_nwb_extension_types_are_left_to_pynwb(tmp_path, monkeypatch):
     assert calls == [good]
     monkeypatch.undo()
     _assert_identical(got, nwb_reader.read(good, engine="h5py"))
+
+
+@pytest.mark.parametrize("ext", ["dat", "bin", "raw", "h5", "mat", "smr", "edf", "continuous"])
+def test_random_bytes_in_any_neo_format_give_a_recording_error(tmp_path, ext):
+    path = tmp_path / f"noise.{ext}"
+    path.write_bytes(np.random.default_rng(11).bytes(4096))
+    with pytest.raises(RecordingError, match=rf"noise\.{ext}: "):
+        _open(path)
