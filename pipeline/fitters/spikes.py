@@ -15,13 +15,13 @@ from __future__ import annotations
 import math
 from collections.abc import Mapping, Sequence
 from dataclasses import dataclass, field, fields, replace
+from typing import NamedTuple
 
 import numpy as np
 from scipy.ndimage import maximum_filter1d
 from scipy.signal import savgol_filter
 from scipy.stats import linregress
 
-from pipeline.errors import ConfigError
 from pipeline.recording import Recording, Sweep
 from pipeline.steps import StepEpoch
 
@@ -35,7 +35,11 @@ def _is_real(value: object) -> bool:
 
 @dataclass(frozen=True)
 class SpikeSettings:
-    """How spikes are found and summarised; the ``[spikes]`` table of the config."""
+    """How spikes are found and summarised; the ``[spikes]`` table of the config.
+
+    Raises ValueError naming the field when a value is impossible (negative duration, zero
+    threshold, too few spikes or sweeps for a fit).
+    """
 
     # spike threshold: where the smoothed dV/dt rises through this, V/s (20 V/s = 20 mV/ms)
     dvdt_threshold_v_per_s: float = 20.0
@@ -85,8 +89,8 @@ class SpikeSettings:
                 need, ok = "a number > 0", _is_real(value) and value > 0
             else:
                 need, ok = "a number >= 0", _is_real(value) and value >= 0
-            if not ok:
-                raise ConfigError(f"[spikes] {f.name} must be {need}, got {value!r}")
+            if not ok:  # ValueError: the config loader adds the file and table to the message
+                raise ValueError(f"{f.name} must be {need}, got {value!r}")
 
 
 @dataclass(frozen=True)
@@ -303,97 +307,131 @@ def _interp_cross(y: np.ndarray, i: int, level: float) -> float:
     return i - 1 + (level - y0) / (y1 - y0) if y1 != y0 else float(i)
 
 
-def _detect(
-    v: np.ndarray, rate: float, onset: int, offset: int, settings: SpikeSettings
-) -> tuple[list[Spike], float]:
-    """Find spikes in ``v`` (already cut to the analysis span; onset/offset relative to it).
+class _Found(NamedTuple):
+    """A spike located in the analysis span (sample indices relative to its start)."""
 
-    Returns the spikes and the baseline dV/dt noise (robust SD, V/s; NaN without a baseline).
-    """
-    dt = 1.0 / rate
-    w = _window_samples(settings, rate)
-    dvdt = savgol_filter(v, w, 2, deriv=1, delta=dt)  # exact for quadratic onsets
-    raw = np.gradient(v, dt)
-    thr = settings.dvdt_threshold_v_per_s
-    n = v.size
-    guard_pre = w // 2 + 2  # the smoothing spreads an edge jump this far back
-    guard = int(round(settings.edge_guard_s * rate))
-    noise = _robust_sd(dvdt[: max(0, onset - guard_pre)])
+    x: float  # fractional index of the threshold point
+    v_thr: float  # V at the threshold point
+    peak: int
+    down: int  # first sample below half amplitude after the peak
+    start: int  # sample of the threshold point (rounded up)
+    knee: bool  # dV/dt was above threshold from a step edge on (no crossing)
+    hidden: bool  # ... and only rose after the guard: the foot is inside the guard
 
+
+def _candidates(
+    dvdt: np.ndarray, thr: float, edges: tuple[int, int], guard_pre: int, guard: int
+) -> tuple[np.ndarray, list[int]]:
+    """Rising dV/dt crossings from onset on, outside the edge guards, plus knee candidates."""
     cand = _crossings(dvdt, thr)
-    keep = cand >= onset
+    keep = cand >= edges[0]
     knees = []
-    for edge in (onset, offset):
+    for edge in edges:
         keep &= (cand < edge - guard_pre) | (cand > edge + guard)
         # a step larger than C * threshold keeps dV/dt above threshold past the guard: a spike
         # rising straight out of it starts at the dV/dt minimum (knee) instead of a crossing
-        if edge + guard + 1 < n and dvdt[edge + guard + 1] >= thr:
+        if edge + guard + 1 < dvdt.size and dvdt[edge + guard + 1] >= thr:
             knees.append(edge + guard + 1)
-    cand = np.union1d(cand[keep], knees).astype(int)
-    rise_n = max(2, int(round(settings.max_rise_s * rate)))
-    fall_n = max(2, int(round(settings.max_fall_s * rate)))
-    refr_n = int(round(settings.refractory_s * rate))
-    # vectorised pre-filter: the largest voltage within max_rise_s ahead of each candidate
+    return np.union1d(cand[keep], knees).astype(int), knees
+
+
+def _locate(
+    v: np.ndarray,
+    dvdt: np.ndarray,
+    cand: np.ndarray,
+    knees: list[int],
+    rate: float,
+    s: SpikeSettings,
+) -> list[_Found]:
+    """Spikes among the candidates: a peak, enough amplitude, repolarization, refractory gap."""
+    n, thr = v.size, s.dvdt_threshold_v_per_s
+    rise_n = max(2, int(round(s.max_rise_s * rate)))
+    fall_n = max(2, int(round(s.max_fall_s * rate)))
+    refr_n = int(round(s.refractory_s * rate))
+    # vectorised pre-filter (noise makes many candidates): the largest V within max_rise_s ahead
     ahead = maximum_filter1d(v, size=rise_n, origin=-(rise_n // 2), mode="nearest")
-    ok = (ahead[cand] - v[cand] >= settings.min_amplitude_v) & (ahead[cand] >= settings.min_peak_v)
-    found: list[tuple] = []  # (x, v_thr, peak, half-down, start, knee, foot hidden)
+    ok = (ahead[cand] - v[cand] >= s.min_amplitude_v) & (ahead[cand] >= s.min_peak_v)
+    found: list[_Found] = []
     resume = 0
     for c in cand[ok]:
         if c < resume:
             continue
         p = c + int(np.argmax(v[c : min(c + rise_n, n)]))
         m = c + int(np.argmax(dvdt[c : p + 1]))
-        c = cand[np.searchsorted(cand, m, side="right") - 1]  # last crossing before max rise
-        hidden = c_knee = c in knees
-        if c_knee:
+        c = int(cand[np.searchsorted(cand, m, side="right") - 1])  # last crossing before m
+        knee = hidden = c in knees
+        if knee:
             k = int(np.argmin(dvdt[c : m + 1]))
-            hidden = k == 0  # dV/dt only rises after the guard: the foot lies inside it
-            c += k
+            hidden, c = k == 0, c + k
             x, v_thr = float(c), float(v[c])
         else:
             x = _interp_cross(dvdt, c, thr)
             v_thr = float(np.interp(x, (c - 1, c), v[c - 1 : c + 1]))
         amp = v[p] - v_thr
-        if amp < settings.min_amplitude_v or v[p] < settings.min_peak_v:
+        if amp < s.min_amplitude_v or v[p] < s.min_peak_v:
             continue
         below = np.flatnonzero(v[p : min(p + fall_n, n)] < v_thr + amp / 2)
         if below.size == 0:  # no repolarization: a plateau, not a spike
             resume = p
             continue
-        found.append((x, v_thr, p, p + int(below[0]), c, c_knee, hidden))
+        found.append(_Found(x, v_thr, p, p + int(below[0]), c, knee, hidden))
         resume = max(p + int(below[0]), c + refr_n)
+    return found
 
-    spikes = []
+
+def _shape(
+    v: np.ndarray, raw: np.ndarray, f: _Found, end: int, in_step: bool, dt: float, t0: float
+) -> Spike:
+    """Measure one located spike; ``end`` bounds the after-hyperpolarization trough search."""
+    trough = f.down + int(np.argmin(v[f.down : max(end, f.down + 1)]))
+    amp = float(v[f.peak] - f.v_thr)
+    half = f.v_thr + amp / 2
+    up = f.peak - int(np.flatnonzero(v[f.start - 1 : f.peak + 1][::-1] < half)[0])
+    width = (_interp_cross(v, f.down, half) - _interp_cross(v, up + 1, half)) * dt
+    unknown = NAN if f.hidden else 1.0  # threshold-based values of a hidden foot are NaN
+    return Spike(
+        time_s=t0 + f.x * dt,
+        threshold_v=f.v_thr * unknown,
+        peak_v=float(v[f.peak]),
+        peak_time_s=t0 + f.peak * dt,
+        amplitude_v=amp * unknown,
+        width_s=width * unknown,
+        ahp_v=float(f.v_thr - v[trough]) * unknown,
+        ahp_time_s=(trough - f.x) * dt,
+        max_rise_v_per_s=float(raw[f.start - 1 : f.peak + 1].max()),
+        max_fall_v_per_s=float(raw[f.peak : trough + 1].min()),
+        in_step=in_step,
+        note=_knee_note(f.hidden) if f.knee else "",
+    )
+
+
+def _detect(
+    v: np.ndarray, rate: float, onset: int, offset: int, settings: SpikeSettings, t0: float
+) -> tuple[list[Spike], float]:
+    """Find spikes in ``v`` (cut to the analysis span; ``onset``/``offset`` relative to it).
+
+    Returns the spikes (times from ``t0``, s) and the baseline dV/dt noise (robust SD, V/s;
+    NaN without a baseline).
+    """
+    dt = 1.0 / rate
+    w = _window_samples(settings, rate)
+    dvdt = savgol_filter(v, w, 2, deriv=1, delta=dt)  # exact for quadratic onsets
+    guard_pre = w // 2 + 2  # the smoothing spreads an edge jump this far back
+    guard = int(round(settings.edge_guard_s * rate))
+    noise = _robust_sd(dvdt[: max(0, onset - guard_pre)])
+    cand, knees = _candidates(
+        dvdt, settings.dvdt_threshold_v_per_s, (onset, offset), guard_pre, guard
+    )
+    found = _locate(v, dvdt, cand, knees, rate, settings)
+    raw = np.gradient(v, dt)
     ahp_n = max(1, int(round(settings.ahp_window_s * rate)))
-    for k, (x, v_thr, p, down, c, c_knee, hidden) in enumerate(found):
-        in_step = bool(onset <= x < offset)
-        end = min(down + ahp_n, offset if in_step else n)
+    spikes = []
+    for k, f in enumerate(found):
+        in_step = bool(onset <= f.x < offset)
+        end = min(f.down + ahp_n, offset if in_step else v.size)
         if k + 1 < len(found):
-            end = min(end, found[k + 1][4])
-        end = max(end, down + 1)
-        trough = down + int(np.argmin(v[down:end]))
-        amp = float(v[p] - v_thr)
-        half = v_thr + amp / 2
-        up = p - int(np.flatnonzero(v[c - 1 : p + 1][::-1] < half)[0])
-        t_up = _interp_cross(v, up + 1, half)
-        t_down = _interp_cross(v, down, half)
-        unknown = NAN if hidden else 1.0  # threshold-based values of a hidden foot are NaN
-        spikes.append(
-            Spike(
-                time_s=x * dt,
-                threshold_v=v_thr * unknown,
-                peak_v=float(v[p]),
-                peak_time_s=p * dt,
-                amplitude_v=amp * unknown,
-                width_s=(t_down - t_up) * dt * unknown,
-                ahp_v=float(v_thr - v[trough]) * unknown,
-                ahp_time_s=trough * dt - x * dt,
-                max_rise_v_per_s=float(raw[c - 1 : p + 1].max()),
-                max_fall_v_per_s=float(raw[p : trough + 1].min()),
-                in_step=in_step,
-                note=_knee_note(hidden) if c_knee else "",
-            )
-        )
+            end = min(end, found[k + 1].start)  # the trough lies before the next spike
+        spikes.append(_shape(v, raw, f, end, in_step, dt, t0))
     return spikes, noise
 
 
@@ -404,14 +442,18 @@ def _knee_note(hidden: bool) -> str:
     return "dV/dt above threshold since the step edge: threshold at the dV/dt minimum (knee)"
 
 
-def _shift(spike: Spike, t0: float) -> Spike:
-    """The same spike with its times moved from the span start to the sweep start."""
-    return Spike(
-        **{
-            **spike.__dict__,
-            "time_s": spike.time_s + t0,
-            "peak_time_s": spike.peak_time_s + t0,
-        }
+def _detect_in_span(
+    sweep: Sweep, epoch: StepEpoch, settings: SpikeSettings
+) -> tuple[list[Spike], float]:
+    """Spikes (times from the sweep start) and baseline dV/dt noise of a checked sweep."""
+    start, stop = _analysis_span(sweep.n_samples, sweep.rate, epoch, settings)
+    return _detect(
+        sweep.voltage[start:stop],
+        sweep.rate,
+        epoch.onset_index - start,
+        epoch.offset_index - start,
+        settings,
+        start / sweep.rate,
     )
 
 
@@ -438,15 +480,7 @@ def detect_spikes(
     settings = settings or SpikeSettings()
     if _precheck(sweep, epoch, settings):
         return []
-    start, stop = _analysis_span(sweep.n_samples, sweep.rate, epoch, settings)
-    spikes, _ = _detect(
-        sweep.voltage[start:stop],
-        sweep.rate,
-        epoch.onset_index - start,
-        epoch.offset_index - start,
-        settings,
-    )
-    return [_shift(s, start / sweep.rate) for s in spikes]
+    return _detect_in_span(sweep, epoch, settings)[0]
 
 
 # ---------------------------------------------------------------- per sweep
@@ -515,21 +549,13 @@ def _measure(sweep: Sweep, epoch: StepEpoch, settings: SpikeSettings) -> SweepSp
     problem = _precheck(sweep, epoch, settings)
     if problem:
         return SweepSpiking(**base, reason=problem)
-    start, stop = _analysis_span(sweep.n_samples, sweep.rate, epoch, settings)
-    spikes, noise = _detect(
-        sweep.voltage[start:stop],
-        sweep.rate,
-        epoch.onset_index - start,
-        epoch.offset_index - start,
-        settings,
-    )
+    spikes, noise = _detect_in_span(sweep, epoch, settings)
     if noise > settings.max_dvdt_noise_v_per_s:
         return SweepSpiking(
             **base,
             reason=f"baseline dV/dt noise {noise:.3g} V/s exceeds "
             f"{settings.max_dvdt_noise_v_per_s:g} V/s: spike threshold unreliable",
         )
-    spikes = [_shift(s, start / sweep.rate) for s in spikes]
     step = [s for s in spikes if s.in_step]
     isis = tuple(float(d) for d in np.diff([s.time_s for s in step]))
     reasons = []
