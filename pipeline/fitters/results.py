@@ -42,6 +42,7 @@ class ExpFit:
     v_inf: float = NAN
     r2: float = NAN
     resid_rms: float = NAN
+    tau_se: float = NAN  # standard error of tau from the fit's covariance, s
 
     @property
     def ok(self) -> bool:
@@ -51,6 +52,47 @@ class ExpFit:
     def curve(self, t: np.ndarray) -> np.ndarray:
         """Evaluate the fitted curve at times ``t`` (s); returns V."""
         return self.v_inf + self.amp * np.exp(-(np.asarray(t) - self.t0) / self.tau)
+
+
+@dataclass(frozen=True)
+class BiExpFit:
+    """A two-exponential fit ``v(t) = v_inf + amp0 exp(-(t-t0)/tau0) + amp1 exp(-(t-t0)/tau1)``,
+    ``tau0 >= tau1`` (Rall 1969 peeling: tau0 the membrane, tau1 the first equalising constant).
+
+    Times in s from the sweep start, voltages in V; ``*_se`` are standard errors from the fit.
+    """
+
+    t0: float = NAN
+    t1: float = NAN
+    tau0: float = NAN
+    tau1: float = NAN
+    amp0: float = NAN
+    amp1: float = NAN
+    v_inf: float = NAN
+    tau0_se: float = NAN
+    tau1_se: float = NAN
+    resid_rms: float = NAN
+
+    @property
+    def ok(self) -> bool:
+        """True when both time constants are finite."""
+        return math.isfinite(self.tau0) and math.isfinite(self.tau1)
+
+
+def _ms(x: float) -> float:
+    return x * 1e3
+
+
+def _mv(x: float) -> float:
+    return x * 1e3
+
+
+def _pa(x: float) -> float:
+    return x * 1e12
+
+
+def _mohm(x: float) -> float:
+    return x * 1e-6
 
 
 @dataclass(frozen=True)
@@ -75,6 +117,50 @@ class SweepFit:
     rebound_v: float = NAN
     rin_ohm: float = NAN  # ss_dv / step_a for this sweep alone
     reason: str = ""  # why values are NaN, '; '-separated
+    bias_a: float = 0.0  # amplifier bias current from the sweep's settings, A
+    start_time_s: float = NAN  # sweep start, s from the session start
+    onset_s: float = NAN  # step onset, s from the sweep start
+    nonfinite_samples: int = 0  # NaN or infinite samples in the whole sweep
+    clipped_samples: int = 0  # samples in flat runs at the trace's extreme (amplifier rail)
+    charging2: BiExpFit | None = None  # two-exponential fit, when asked for
+
+    @property
+    def baseline_shift_v(self) -> float:
+        """Baseline after the step minus before, V."""
+        return self.baseline_after_v - self.baseline_v
+
+    def row(self) -> dict[str, float | int | str]:
+        """Flat record with report units in the keys (mV, pA, MOhm, ms from step onset)."""
+        c = self.charging
+        row = {
+            "sweep": self.sweep,
+            "step_pa": _pa(self.step_a),
+            "holding_pa": _pa(self.holding_a),
+            "baseline_mv": _mv(self.baseline_v),
+            "baseline_rms_mv": _mv(self.baseline_rms_v),
+            "baseline_after_mv": _mv(self.baseline_after_v),
+            "baseline_shift_mv": _mv(self.baseline_shift_v),
+            "ss_dv_mv": _mv(self.ss_dv),
+            "peak_dv_mv": _mv(self.peak_dv),
+            "onset_jump_mv": _mv(self.onset_jump_v),
+            "offset_jump_mv": _mv(self.offset_jump_v),
+            "rin_mohm": _mohm(self.rin_ohm),
+            "tau_ms": _ms(c.tau),
+            "tau_se_ms": _ms(c.tau_se),
+            "tau_r2": c.r2,
+            "tau_resid_rms_mv": _mv(c.resid_rms),
+            "fit_start_ms": _ms(c.t0 - self.onset_s),
+            "fit_end_ms": _ms(c.t1 - self.onset_s),
+            "sag_ratio": self.sag_ratio,
+            "rebound_mv": _mv(self.rebound_v),
+            "nonfinite_samples": self.nonfinite_samples,
+            "clipped_samples": self.clipped_samples,
+            "fit_reason": self.reason,
+        }
+        if self.charging2 is not None:
+            row["tau0_ms"] = _ms(self.charging2.tau0)
+            row["tau1_ms"] = _ms(self.charging2.tau1)
+        return row
 
 
 @dataclass(frozen=True)
@@ -102,3 +188,71 @@ class CellFit:
     sag_step_a: float = NAN
     rebound_v: float = NAN
     status: str = "ok"  # 'ok' or why the cell has no values
+    rin_apparent_ohm: float = NAN  # steady-state slope before the bridge correction, ohm
+    rin_method: str = ""  # 'linear' (slope of the linear range) or 'quadratic' (slope at rest)
+    bridge_error_se_ohm: float = NAN
+    sag_ratio_at_target: float = NAN  # interpolated at PassiveSettings.sag_target_v
+    two_exp: bool = False  # True when the two-exponential (peeling) values were asked for
+    tau0_s: float = NAN  # slow time constant of the two-exponential fits
+    tau1_s: float = NAN  # first equalising time constant
+    tau1_ci_s: tuple[float, float] = (NAN, NAN)
+    electrotonic_length: float = NAN  # L = pi / sqrt(tau0/tau1 - 1) (Rall 1969)
+    peel_status: str = ""  # 'ok' or why tau1 / L are not given
+    notes: str = ""  # why some cell values are NaN or uncorrected, '; '-separated
+
+    @property
+    def n_sweeps(self) -> int:
+        """Number of sweeps measured (usable or not)."""
+        return len(self.sweeps)
+
+    def row(self) -> dict[str, float | int | str]:
+        """Flat record with report units in the keys (mV, MOhm, ms, pF, pA)."""
+        row = {
+            "cell_id": self.cell_id,
+            "n_sweeps": self.n_sweeps,
+            "n_sweeps_used": len(self.used),
+            "vrest_mv": _mv(self.vrest_v),
+            "vrest_drift_mv": _mv(self.vrest_drift_v),
+            "rin_mohm": _mohm(self.rin_ohm),
+            "rin_ci_low_mohm": _mohm(self.rin_ci_ohm[0]),
+            "rin_ci_high_mohm": _mohm(self.rin_ci_ohm[1]),
+            "rin_peak_mohm": _mohm(self.rin_peak_ohm),
+            "rin_apparent_mohm": _mohm(self.rin_apparent_ohm),
+            "rin_method": self.rin_method,
+            "iv_curvature": self.iv_curvature,
+            "bridge_error_mohm": _mohm(self.bridge_error_ohm),
+            "tau_ms": _ms(self.tau_s),
+            "tau_ci_low_ms": _ms(self.tau_ci_s[0]),
+            "tau_ci_high_ms": _ms(self.tau_ci_s[1]),
+            "cm_pf": self.cm_f * 1e12,
+            "cm_ci_low_pf": self.cm_ci_f[0] * 1e12,
+            "cm_ci_high_pf": self.cm_ci_f[1] * 1e12,
+            "sag_ratio": self.sag_ratio,
+            "sag_step_pa": _pa(self.sag_step_a),
+            "sag_ratio_at_target": self.sag_ratio_at_target,
+            "rebound_mv": _mv(self.rebound_v),
+            "status": self.status,
+            "notes": self.notes,
+        }
+        if self.two_exp:
+            row.update(
+                tau0_ms=_ms(self.tau0_s),
+                tau1_ms=_ms(self.tau1_s),
+                tau1_ci_low_ms=_ms(self.tau1_ci_s[0]),
+                tau1_ci_high_ms=_ms(self.tau1_ci_s[1]),
+                electrotonic_length=self.electrotonic_length,
+                peel_status=self.peel_status,
+            )
+        return row
+
+    def sweep_rows(self) -> list[dict[str, float | int | str | bool]]:
+        """One flat record per sweep, with ``used`` and ``excluded_because`` added."""
+        used = set(self.used)
+        return [
+            {
+                **f.row(),
+                "used": f.sweep in used,
+                "excluded_because": self.excluded.get(f.sweep, ""),
+            }
+            for f in self.sweeps
+        ]

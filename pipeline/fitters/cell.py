@@ -1,0 +1,311 @@
+"""Passive properties of one cell from its sweep measurements (cheap: no trace is re-read).
+
+Rin is the bridge-corrected steady-state slope near rest: the slope through the origin of
+(step current, steady-state deflection) over the hyperpolarizing sweeps whose membrane deflection
+lies within ``linear_range_v`` (at least the ``n_small_steps`` smallest), or the slope at zero
+current of a quadratic through the origin when the V-I relation curves significantly (Ih,
+inward rectification), minus the bridge error (slope of the edge jumps against current).
+Tau is the inverse-variance weighted mean of the per-sweep tau0 fits of the same small steps;
+Cm = tau / Rin with the interval propagated in quadrature of relative half-widths.
+
+References
+----------
+Johnston D, Wu SM-S (1995) Foundations of Cellular Neurophysiology, ch. 2 (Rin = dV/dI,
+tau = Rin*Cm). Rall W (1969) Biophys J 9:1483-1508 (L = pi / sqrt(tau0/tau1 - 1)).
+"""
+
+from __future__ import annotations
+
+import math
+from collections.abc import Mapping, Sequence
+from dataclasses import dataclass
+
+import numpy as np
+from scipy import stats
+
+from pipeline.fitters.results import NAN, CellFit, SweepFit
+from pipeline.fitters.sweep import PassiveSettings
+
+
+@dataclass(frozen=True)
+class _Slope:
+    """A regression slope with its standard error and degrees of freedom."""
+
+    value: float = NAN
+    se: float = NAN
+    dof: int = 0
+
+
+def _through_origin(x: np.ndarray, y: np.ndarray) -> _Slope:
+    """Least-squares slope of ``y = b x`` (ΔV is 0 at zero step current by construction)."""
+    if x.size == 0:
+        return _Slope()
+    sxx = float(x @ x)
+    b = float(x @ y) / sxx
+    dof = x.size - 1
+    se = math.sqrt(float(np.sum((y - b * x) ** 2)) / dof / sxx) if dof > 0 else NAN
+    return _Slope(b, se, dof)
+
+
+def _quadratic_at_rest(x: np.ndarray, y: np.ndarray) -> tuple[_Slope, float]:
+    """Slope at zero of ``y = a x + c x**2`` and the t statistic of ``c``."""
+    if x.size < 3:
+        return _Slope(), 0.0
+    design = np.column_stack([x, x * x])
+    coef, *_ = np.linalg.lstsq(design, y, rcond=None)
+    dof = x.size - 2
+    resid = y - design @ coef
+    s2 = float(resid @ resid) / dof
+    cov = s2 * np.linalg.inv(design.T @ design)
+    se = np.sqrt(np.diag(cov))
+    t_c = float(coef[1] / se[1]) if se[1] > 0 else math.inf
+    return _Slope(float(coef[0]), float(se[0]), dof), t_c
+
+
+def _robust_origin_slope(x: np.ndarray, y: np.ndarray) -> _Slope:
+    """Through-origin slope after dropping points beyond 5 robust SD (a spike at an edge)."""
+    fit = _through_origin(x, y)
+    if x.size < 4:
+        return fit
+    resid = y - fit.value * x
+    mad = 1.4826 * float(np.median(np.abs(resid - np.median(resid))))
+    keep = np.abs(resid) <= 5 * mad if mad > 0 else np.ones(x.size, bool)
+    return _through_origin(x[keep], y[keep]) if keep.sum() >= 2 else fit
+
+
+def _interval(value: float, se: float, dof: int, level: float) -> tuple[float, float]:
+    """Two-sided t interval (normal when dof is 0 and se is known)."""
+    if not (math.isfinite(value) and math.isfinite(se)):
+        return (NAN, NAN)
+    q = stats.t.ppf(0.5 + level / 2, dof) if dof > 0 else stats.norm.ppf(0.5 + level / 2)
+    return (value - q * se, value + q * se)
+
+
+def _weighted_mean(values: np.ndarray, se: np.ndarray, level: float):
+    """Inverse-variance mean, its interval (scaled by the Birge ratio when the spread exceeds the
+    fit errors) and the standard error."""
+    w = 1.0 / se**2
+    mean = float(w @ values / w.sum())
+    err = 1.0 / math.sqrt(w.sum())
+    dof = values.size - 1
+    if dof > 0:
+        birge = float(w @ (values - mean) ** 2) / dof
+        err *= math.sqrt(max(1.0, birge))
+    return mean, _interval(mean, err, dof, level), err
+
+
+def _vrest(
+    fits: list[SweepFit], s: PassiveSettings, notes: list[str]
+) -> tuple[float, float, float]:
+    """Resting potential (median baseline of the zero-current sweeps, V), its drift over the
+    recording (V, from a line through those baselines against time) and the drift rate (V/s)."""
+    rest = [
+        f
+        for f in fits
+        if math.isfinite(f.baseline_v)
+        and math.isfinite(f.bias_a)
+        and abs(f.holding_a + f.bias_a) <= s.zero_current_a
+    ]
+    if not rest:
+        notes.append("no sweep at zero holding and bias current for Vrest")
+        return NAN, NAN, 0.0
+    v = np.array([f.baseline_v for f in rest])
+    t = np.array([f.start_time_s + np.mean(f.baseline_window) for f in rest])
+    if len(rest) < 3 or not np.isfinite(t).all() or np.ptp(t) <= 0:
+        return float(np.median(v)), float(v[-1] - v[0]), 0.0
+    slope = float(np.polyfit(t - t[0], v, 1)[0])
+    return float(np.median(v)), slope * float(t[-1] - t[0]), slope
+
+
+def _bridge(fits: list[SweepFit], notes: list[str]) -> _Slope:
+    """Bridge error (ohm): slope of the edge jumps against the current step through them."""
+    x, y = [], []
+    for f in fits:
+        if math.isfinite(f.onset_jump_v):
+            x.append(f.step_a)
+            y.append(f.onset_jump_v)
+        if math.isfinite(f.offset_jump_v):
+            x.append(-f.step_a)
+            y.append(f.offset_jump_v)
+    if len(x) < 2:
+        notes.append("edge jumps not measurable: Rin not bridge-corrected")
+        return _Slope()
+    return _robust_origin_slope(np.array(x), np.array(y))
+
+
+def _pick_small(hyper: list[SweepFit], dv_m: np.ndarray, s: PassiveSettings) -> list[int]:
+    """Indices of the sweeps in the linear range, or the n smallest steps if too few are."""
+    inside = [i for i in range(len(hyper)) if abs(dv_m[i]) <= s.linear_range_v]
+    if len(inside) >= s.n_small_steps:
+        return inside
+    order = np.argsort([-f.step_a for f in hyper])  # smallest |step| first (steps are negative)
+    return sorted(int(i) for i in order[: s.n_small_steps])
+
+
+def summarize_cell(
+    cell_id: str,
+    sweep_fits: Sequence[SweepFit],
+    settings: PassiveSettings,
+    exclude: Mapping[int, str] | None = None,
+) -> CellFit:
+    """Cell passive properties from per-sweep fits, leaving out ``exclude``.
+
+    Parameters
+    ----------
+    cell_id : str
+        Cell identifier.
+    sweep_fits : sequence of SweepFit
+        Every sweep's measurements (from :func:`pipeline.fitters.sweep.fit_sweep`).
+    settings : PassiveSettings
+        Linear range, number of small steps, corrections, sag target, interval level.
+    exclude : mapping of int to str, optional
+        Sweep number -> reason, for sweeps to leave out (e.g. by QC).
+
+    Returns
+    -------
+    CellFit
+        Rin (bridge-corrected steady-state slope near rest, ohm) with its interval, Rin from the
+        peak deflections, the bridge error, tau (s), Cm (F), Vrest (V, at the first zero-current
+        sweep) and its drift, sag ratio ``(V_peak - V_ss) / (V_peak - V_base)`` (0 = no sag,
+        bridge jump removed) at the most hyperpolarizing step and at ``sag_target_v``, rebound.
+        ``status`` is ``'ok'`` or why there are no values; ``notes`` lists lesser gaps.
+    """
+    s = settings
+    excluded = dict(exclude or {})
+    fits = [f for f in sweep_fits if f.sweep not in excluded]
+    notes: list[str] = []
+    vrest, drift, rate = _vrest(fits, s, notes)
+    common = dict(cell_id=cell_id, sweeps=tuple(sweep_fits), vrest_v=vrest, vrest_drift_v=drift)
+    hyper = [
+        f for f in fits if f.step_a < 0 and math.isfinite(f.ss_dv) and math.isfinite(f.peak_dv)
+    ]
+    for f in fits:
+        if f.step_a < 0 and f not in hyper:
+            excluded[f.sweep] = f.reason or "no steady-state deflection"
+    if not hyper:
+        return CellFit(
+            **common,
+            excluded=excluded,
+            status="no usable hyperpolarizing sweep",
+            notes="; ".join(notes),
+        )
+    hyper.sort(key=lambda f: -f.step_a)
+    bridge = _bridge(fits, notes) if s.bridge_correction else _Slope(0.0, 0.0, 0)
+    re = bridge.value if math.isfinite(bridge.value) else 0.0
+    i = np.array([f.step_a for f in hyper])
+    shift = np.array([_drift_shift(f, rate) for f in hyper]) if s.drift_correction else 0.0
+    ss = np.array([f.ss_dv for f in hyper]) - shift
+    peak = np.array([f.peak_dv for f in hyper]) - shift
+    pick = _pick_small(hyper, ss - re * i, s)
+    apparent, method = _through_origin(i[pick], ss[pick]), "linear"
+    quad, t_c = _quadratic_at_rest(i[pick], ss[pick])
+    if abs(t_c) > s.curvature_t:
+        apparent, method = quad, "quadratic"
+    rin = apparent.value - re
+    rin_se = math.hypot(apparent.se, bridge.se if math.isfinite(bridge.se) else 0.0)
+    rin_peak = _through_origin(i[pick], peak[pick]).value - re
+    chord = ss[-1] / i[-1] - re
+    tau, tau_ci, tau_se, tau_used = _tau(hyper, pick, s)
+    cm, cm_ci = _cm(tau, tau_ci, rin, _interval(rin, rin_se, apparent.dof, s.confidence))
+    sag, at_target = _sag(hyper, i, ss, peak, re, s)
+    used = sorted({hyper[k].sweep for k in pick} | {hyper[-1].sweep} | tau_used)
+    peel = _peel([hyper[k] for k in pick], s) if s.two_exp else {}
+    return CellFit(
+        **common,
+        used=tuple(used),
+        excluded=excluded,
+        rin_ohm=rin,
+        rin_ci_ohm=_interval(rin, rin_se, apparent.dof, s.confidence),
+        rin_peak_ohm=rin_peak,
+        rin_apparent_ohm=apparent.value,
+        rin_method=method,
+        iv_slope_ohm=apparent.value,
+        iv_intercept_v=float(np.mean([hyper[k].baseline_v for k in pick])),
+        iv_curvature=chord / rin - 1.0 if len(hyper) > 1 and rin > 0 else NAN,
+        bridge_error_ohm=bridge.value,
+        bridge_error_se_ohm=bridge.se,
+        tau_s=tau,
+        tau_ci_s=tau_ci,
+        cm_f=cm,
+        cm_ci_f=cm_ci,
+        sag_ratio=sag,
+        sag_step_a=hyper[-1].step_a,
+        sag_ratio_at_target=at_target,
+        rebound_v=hyper[-1].rebound_v,
+        two_exp=s.two_exp,
+        notes="; ".join(
+            notes + ([] if math.isfinite(tau) else ["no charging fit on the small steps"])
+        ),
+        **peel,
+    )
+
+
+def _drift_shift(f: SweepFit, rate: float) -> float:
+    """Baseline drift between the baseline and steady-state window centres, V."""
+    return rate * (float(np.mean(f.ss_window)) - float(np.mean(f.baseline_window)))
+
+
+def _tau(hyper: list[SweepFit], pick: list[int], s: PassiveSettings):
+    """Weighted tau over the picked sweeps with a fit (else over the smallest fitted ones)."""
+    fitted = [hyper[k] for k in pick if _tau_ok(hyper[k])]
+    if not fitted:
+        fitted = [f for f in hyper if _tau_ok(f)][: s.n_small_steps]
+    if not fitted:
+        return NAN, (NAN, NAN), NAN, set()
+    taus = np.array([f.charging.tau for f in fitted])
+    ses = np.array([f.charging.tau_se for f in fitted])
+    mean, ci, se = _weighted_mean(taus, ses, s.confidence)
+    return mean, ci, se, {f.sweep for f in fitted}
+
+
+def _tau_ok(f: SweepFit) -> bool:
+    return f.charging.ok and math.isfinite(f.charging.tau_se) and f.charging.tau_se > 0
+
+
+def _cm(tau, tau_ci, rin, rin_ci):
+    """Cm = tau / Rin (F) and its interval from the relative half-widths in quadrature."""
+    if not (math.isfinite(tau) and math.isfinite(rin) and rin > 0):
+        return NAN, (NAN, NAN)
+    cm = tau / rin
+    rel = math.hypot((tau_ci[1] - tau_ci[0]) / 2 / tau, (rin_ci[1] - rin_ci[0]) / 2 / rin)
+    return cm, (cm * (1 - rel), cm * (1 + rel)) if math.isfinite(rel) else (NAN, NAN)
+
+
+def _sag(hyper, i, ss, peak, re, s: PassiveSettings) -> tuple[float, float]:
+    """Sag ratio at the most hyperpolarizing step and interpolated at the target potential."""
+    peak_m = peak - re * i
+    with np.errstate(divide="ignore", invalid="ignore"):
+        ratio = np.where(peak_m < 0, (peak - ss) / peak_m, np.nan)
+    v_peak = np.array([f.baseline_v for f in hyper]) + peak_m
+    ok = np.isfinite(ratio) & np.isfinite(v_peak)
+    at_target = NAN
+    if ok.sum() >= 2:
+        vp, rr = v_peak[ok], ratio[ok]
+        order = np.argsort(vp)
+        if vp.min() <= s.sag_target_v <= vp.max():
+            at_target = float(np.interp(s.sag_target_v, vp[order], rr[order]))
+    return float(ratio[-1]), at_target
+
+
+def _peel(small: list[SweepFit], s: PassiveSettings) -> dict:
+    """Cell tau0, tau1 and electrotonic length from the sweeps' two-exponential fits."""
+    fits = [f.charging2 for f in small if f.charging2 is not None and f.charging2.ok]
+    fits = [
+        b for b in fits if math.isfinite(b.tau0_se) and math.isfinite(b.tau1_se) and b.tau1_se > 0
+    ]
+    if not fits:
+        return dict(peel_status="no two-exponential fit converged")
+    tau0, ci0, _ = _weighted_mean(
+        np.array([b.tau0 for b in fits]), np.array([b.tau0_se for b in fits]), s.confidence
+    )
+    tau1, ci1, _ = _weighted_mean(
+        np.array([b.tau1 for b in fits]), np.array([b.tau1_se for b in fits]), s.confidence
+    )
+    out = dict(tau0_s=tau0, tau1_s=tau1, tau1_ci_s=ci1)
+    if tau0 / tau1 < s.min_tau_ratio:
+        return out | dict(
+            peel_status=f"not resolvable: tau0/tau1 = {tau0 / tau1:.2f} < {s.min_tau_ratio:g}"
+        )
+    if ci1[1] >= ci0[0] or ci1[0] <= 0:
+        return out | dict(peel_status="not resolvable: tau1 interval reaches tau0 or zero")
+    return out | dict(electrotonic_length=math.pi / math.sqrt(tau0 / tau1 - 1.0), peel_status="ok")

@@ -1,0 +1,602 @@
+"""Passive measurements of one current-step sweep, and the settings of the passive fitters.
+
+Every measurement is taken on the trace after mains hum has been fitted and removed (sine and
+cosine at 50 and 60 Hz and their harmonics, fitted where the membrane is flat: before the step,
+late in the step and late after it). Windows are in seconds; values in SI units. Injected
+current positive = depolarizing, so a hyperpolarizing step has ``step_a < 0`` and negative
+deflections.
+
+The charging curve is fitted with a single exponential in a window chosen per sweep: it starts
+once the response has reached ``fit_start_fraction`` of its peak *and* the faster (dendritic
+equalisation) components, estimated by peeling the early residual, have decayed for
+``equalization_factor`` of their time constant; it ends at ``fit_end_fraction`` of the peak or at
+the peak itself when the response sags (Ih). Tau is then the slowest time constant tau0, not the
+blend a fit from onset gives.
+
+References
+----------
+Johnston D, Wu SM-S (1995) Foundations of Cellular Neurophysiology, ch. 2 (RC charging).
+Rall W (1969) Time constants and electrotonic length of membrane cylinders and neurons.
+Biophys J 9:1483-1508 (peeling of exponentials, tau0 = Rm*Cm).
+"""
+
+from __future__ import annotations
+
+import functools
+import math
+from dataclasses import dataclass
+
+import numpy as np
+from scipy.optimize import curve_fit
+
+from pipeline.fitters.results import NAN, BiExpFit, ExpFit, SweepFit
+from pipeline.recording import Sweep
+from pipeline.steps import StepEpoch
+
+
+@dataclass(frozen=True)
+class PassiveSettings:
+    """How passive properties are measured; the ``[passive]`` table of the config."""
+
+    baseline_window_s: float = (
+        0.1  # pre-step window ending at onset; 0.1 s spans whole 50 and 60 Hz cycles
+    )
+    ss_window_s: float = (
+        0.2  # steady-state window ending at the step offset (late part of the step)
+    )
+    min_window_s: float = 0.02  # shortest baseline or steady-state window accepted
+    after_delay_s: float = (
+        0.15  # relaxation allowed after the offset before the 'after' baseline window
+    )
+    settle_s: float = 3e-4  # electrode/amplifier settling after a step edge, excluded from fits
+    jump_fit_s: float = (
+        2e-3  # span after settling used to extrapolate the membrane response back to an edge
+    )
+    peak_smooth_s: float = 0.02  # boxcar length for the noise-robust peak and rebound
+    bin_s: float = 5e-4  # bin width of the trace fed to the exponential fits
+    fit_start_fraction: float = (
+        0.2  # tau fit starts when the response reaches this fraction of its peak
+    )
+    fit_end_fraction: float = (
+        0.95  # tau fit ends at this fraction of the peak (or at the peak if it sags)
+    )
+    fit_span_tau: float = (
+        6.0  # without sag the tau fit runs this many tau after onset (or to the step end)
+    )
+    equalization_factor: float = (
+        5.0  # fit starts this many fast (dendritic) time constants after onset
+    )
+    min_fit_bins: int = 8  # fewest bins accepted in a charging-curve fit
+    remove_hum: bool = True  # fit and subtract mains hum before measuring
+    hum_harmonics: int = 2  # harmonics of 50 and 60 Hz fitted (1 = fundamentals only)
+    clip_run_samples: int = 5  # a flat run this long at the trace's extreme counts as clipped
+    rebound_window_s: float = 0.3  # window after the offset searched for the rebound depolarization
+    linear_range_v: float = (
+        0.01  # |membrane deflection| bound of the linear part of the V-I relation
+    )
+    n_small_steps: int = 3  # smallest hyperpolarizing steps used when fewer lie in the linear range
+    curvature_t: float = 3.0  # |t| of the quadratic V-I term above which Rin is the slope at rest
+    bridge_correction: bool = True  # subtract the bridge error estimated from the edge jumps
+    drift_correction: bool = True  # correct deflections for the baseline drift across sweeps
+    zero_current_a: float = 2e-12  # |holding + bias| below this counts as zero current (for Vrest)
+    sag_target_v: float = -0.09  # membrane potential at the peak where sag_ratio_at_target is read
+    two_exp: bool = (
+        False  # also fit two exponentials (Rall peeling): tau0, tau1, electrotonic length
+    )
+    min_tau_ratio: float = 3.0  # tau0/tau1 below this: the fast component is "not resolvable"
+    confidence: float = 0.95  # level of the reported intervals
+
+
+@dataclass(frozen=True)
+class _Windows:
+    """Sample index ranges [start, stop) of the measurement windows of one sweep."""
+
+    base: tuple[int, int]
+    ss: tuple[int, int]
+    after: tuple[int, int] | None
+    settle: int
+    jump: int
+
+
+def count_nonfinite(v: np.ndarray) -> int:
+    """Number of NaN or infinite samples in ``v``."""
+    return int(v.size - np.count_nonzero(np.isfinite(v)))
+
+
+def clipped_runs(v: np.ndarray, min_run: int) -> list[tuple[int, int]]:
+    """Sample ranges [start, stop) where the trace sits flat at its maximum or minimum.
+
+    An amplifier or digitizer at its rail returns the same value repeatedly, entered and left
+    with a real step; noise never does. Runs touching the sweep's ends, or entered or left by
+    less than 1 nV (a noiseless simulated plateau reached asymptotically), are not counted.
+    """
+    finite = v[np.isfinite(v)]
+    if finite.size == 0:
+        return []
+    runs = []
+    for extreme in (finite.max(), finite.min()):
+        at = np.concatenate(([False], v == extreme, [False]))
+        edges = np.flatnonzero(np.diff(at.astype(np.int8)))
+        for a, b in zip(edges[::2], edges[1::2], strict=True):
+            if b - a < min_run or a == 0 or b == v.size:
+                continue
+            if abs(v[a - 1] - extreme) > 1e-9 and abs(v[b] - extreme) > 1e-9:
+                runs.append((int(a), int(b)))
+    return runs
+
+
+def count_clipped(v: np.ndarray, min_run: int) -> int:
+    """Number of samples in clipped runs (see :func:`clipped_runs`)."""
+    return sum(b - a for a, b in clipped_runs(v, min_run))
+
+
+@functools.lru_cache(maxsize=8)
+def _hum_basis(n: int, rate: float, harmonics: int) -> np.ndarray:
+    """Sine/cosine columns at 50 and 60 Hz and harmonics, shape (n, 4*harmonics); cached per
+    sweep shape so a cell's sweeps share it."""
+    t = np.arange(n) / rate
+    cols = []
+    for base in (50.0, 60.0):
+        for k in range(1, harmonics + 1):
+            w = 2 * math.pi * base * k * t
+            cols += [np.sin(w), np.cos(w)]
+    basis = np.column_stack(cols)
+    basis.setflags(write=False)
+    return basis
+
+
+def remove_hum(
+    v: np.ndarray, rate: float, regions: list[tuple[int, int]], harmonics: int
+) -> np.ndarray:
+    """Subtract mains hum fitted on flat regions of the trace.
+
+    Parameters
+    ----------
+    v : numpy.ndarray
+        Voltage, V.
+    rate : float
+        Sampling rate, Hz.
+    regions : list of (start, stop)
+        Sample ranges where the membrane is near flat; each gets its own offset and slope so
+        slow trends do not leak into the hum.
+    harmonics : int
+        Harmonics of 50 and 60 Hz fitted.
+
+    Returns
+    -------
+    numpy.ndarray
+        ``v`` minus the fitted hum (NaN samples stay NaN).
+    """
+    basis = _hum_basis(v.size, rate, harmonics)
+    stride = max(1, int(rate // 2500))  # 2.5 kHz is ample for 240 Hz and keeps the fit cheap
+    rows, trend = [], []
+    for j, (a, b) in enumerate(regions):
+        idx = np.arange(a, b, stride)
+        idx = idx[np.isfinite(v[idx])]
+        rows.append(idx)
+        t = (idx - (a + b) / 2) / rate
+        trend.append((j, t))
+    idx = np.concatenate(rows)
+    if idx.size < 4 * basis.shape[1]:
+        return v
+    local = np.zeros((idx.size, 2 * len(regions)))
+    pos = 0
+    for j, t in trend:
+        local[pos : pos + t.size, 2 * j] = 1.0
+        local[pos : pos + t.size, 2 * j + 1] = t
+        pos += t.size
+    design = np.hstack([basis[idx], local])
+    # normal equations: columns are O(1) and few, and this avoids LAPACK's thread start-up cost
+    gram = design.T @ design
+    try:
+        coef = np.linalg.solve(gram, design.T @ v[idx])
+    except np.linalg.LinAlgError:
+        return v
+    return v - basis @ coef[: basis.shape[1]]
+
+
+def _windows(sweep: Sweep, epoch: StepEpoch, s: PassiveSettings) -> tuple[_Windows | None, str]:
+    """Measurement windows of a sweep, or None and the reason they do not fit in it."""
+    n, rate = sweep.n_samples, sweep.rate
+    on, off = epoch.onset_index, epoch.offset_index
+    if not 0 < on < off <= n:
+        return None, f"step edges {on}..{off} outside the sweep of {n} samples"
+    min_n = max(2, round(s.min_window_s * rate))
+    nb = min(round(s.baseline_window_s * rate), on)
+    if nb < min_n:
+        return None, f"too short: {on / rate * 1e3:.1f} ms before the step for the baseline"
+    nss = min(round(s.ss_window_s * rate), (off - on) // 2)
+    settle, jump = max(1, round(s.settle_s * rate)), max(4, round(s.jump_fit_s * rate))
+    if nss < min_n or off - on < 4 * (settle + jump):
+        return None, f"too short: step of {(off - on) / rate * 1e3:.1f} ms"
+    after = None
+    na = round(s.baseline_window_s * rate)
+    if n - na >= off + round(s.after_delay_s * rate):
+        after = (n - na, n)
+    return _Windows((on - nb, on), (off - nss, off), after, settle, jump), ""
+
+
+def _finite(v: np.ndarray, a: int, b: int) -> bool:
+    return bool(np.isfinite(v[a:b]).all())
+
+
+@functools.lru_cache(maxsize=32)
+def _extrapolation_weights(first: int, count: int, degree: int) -> np.ndarray:
+    """Weights ``w`` such that ``w @ y`` is the least-squares polynomial of ``degree`` through
+    ``y`` (samples ``first .. first+count-1`` after an edge) evaluated at the edge (sample 0)."""
+    x = (np.arange(first, first + count) - (first + count / 2)) / count
+    x0 = -(first + count / 2) / count
+    design = np.vander(x, degree + 1, increasing=True)
+    w = np.vander([x0], degree + 1, increasing=True) @ np.linalg.pinv(design)
+    w = w.ravel()
+    w.setflags(write=False)
+    return w
+
+
+def _edge_level(v: np.ndarray, edge: int, first: int, count: int, degree: int = 2) -> float:
+    """Level at sample ``edge`` (V) of a polynomial fitted to ``v[edge+first : edge+first+count]``
+    (``first`` may be negative: samples before the edge)."""
+    a, b = edge + first, edge + first + count
+    if a < 0 or b > v.size:
+        return NAN
+    y = v[a:b]
+    if not np.isfinite(y).all():
+        return NAN
+    return float(_extrapolation_weights(first, count, degree) @ y)
+
+
+def _boxcar(v: np.ndarray, k: int) -> np.ndarray:
+    """Moving average of ``k`` samples ('valid' part), via cumulative sums."""
+    k = max(1, min(k, v.size))
+    c = np.concatenate(([0.0], np.cumsum(v)))
+    return (c[k:] - c[:-k]) / k
+
+
+def _bin(
+    v: np.ndarray, start: int, stop: int, k: int, rate: float
+) -> tuple[np.ndarray, np.ndarray]:
+    """Means of ``k``-sample bins of ``v[start:stop]`` and their centre times (s from sweep start)."""
+    m = (stop - start) // k
+    y = v[start : start + m * k].reshape(m, k).mean(axis=1)
+    t = (start + k * np.arange(m) + (k - 1) / 2) / rate
+    return t, y
+
+
+def _exp(t: np.ndarray, v_inf: float, amp: float, tau: float) -> np.ndarray:
+    return v_inf + amp * np.exp(-t / tau)
+
+
+def _exp_jac(t: np.ndarray, v_inf: float, amp: float, tau: float) -> np.ndarray:
+    e = np.exp(-t / tau)
+    return np.column_stack([np.ones_like(t), e, amp * t * e / tau**2])
+
+
+def fit_exponential(t: np.ndarray, y: np.ndarray, tau_guess: float) -> ExpFit:
+    """Least-squares fit of ``y = v_inf + amp * exp(-(t - t[0]) / tau)``.
+
+    Parameters
+    ----------
+    t : numpy.ndarray
+        Times, s.
+    y : numpy.ndarray
+        Voltage, V.
+    tau_guess : float
+        Starting time constant, s.
+
+    Returns
+    -------
+    ExpFit
+        With NaN values if the fit did not converge.
+    """
+    t0 = float(t[0])
+    tt = t - t0
+    e = np.exp(-tt / tau_guess)
+    amp0, vinf0 = np.linalg.lstsq(np.column_stack([e, np.ones_like(e)]), y, rcond=None)[0]
+    try:
+        p, cov = curve_fit(_exp, tt, y, p0=(vinf0, amp0, tau_guess), jac=_exp_jac, maxfev=400)
+    except (RuntimeError, ValueError):
+        return ExpFit(t0=t0, t1=float(t[-1]))
+    if not (p[2] > 0 and np.isfinite(cov).all()):
+        return ExpFit(t0=t0, t1=float(t[-1]))
+    resid = y - _exp(tt, *p)
+    ss_tot = float(np.sum((y - y.mean()) ** 2))
+    return ExpFit(
+        t0=t0,
+        t1=float(t[-1]),
+        tau=float(p[2]),
+        amp=float(p[1]),
+        v_inf=float(p[0]),
+        r2=1.0 - float(resid @ resid) / ss_tot if ss_tot > 0 else NAN,
+        resid_rms=float(np.sqrt(np.mean(resid**2))),
+        tau_se=float(np.sqrt(cov[2, 2])),
+    )
+
+
+def _first_crossing(r: np.ndarray, level: float, start: int = 0) -> int:
+    """Index of the first element of ``r[start:]`` at or beyond ``level`` (same sign), or -1."""
+    hit = np.flatnonzero(r[start:] >= level)
+    return int(hit[0]) + start if hit.size else -1
+
+
+def _fast_tau(t: np.ndarray, resid: np.ndarray, noise: float) -> float:
+    """Time constant of the early excess over a slow exponential (one peel), s, or NaN."""
+    keep = resid > 3 * noise
+    if keep.sum() < 3:
+        return NAN
+    slope = np.polyfit(t[keep], np.log(resid[keep]), 1)[0]
+    return -1.0 / slope if slope < 0 else NAN
+
+
+def _charging_fit(
+    t: np.ndarray,
+    y: np.ndarray,
+    r: np.ndarray,
+    i_peak: int,
+    sagging: bool,
+    noise: float,
+    s: PassiveSettings,
+) -> tuple[ExpFit, float, str]:
+    """Single-exponential fit of the charging curve in an automatically chosen window.
+
+    ``t``, ``y`` are binned times and voltages from just after the onset settling; ``r`` is the
+    membrane response normalised to its peak (bridge jump removed), so it rises from ~0 to ~1;
+    ``i_peak`` is the bin of the peak. With sag the fit ends at the peak (or at
+    ``fit_end_fraction``); without, it runs ``fit_span_tau`` time constants. Returns the fit, the
+    fast (equalising) time constant found by peeling (or NaN), and a reason when there is no fit.
+    """
+    rs = np.convolve(r, np.ones(5) / 5, mode="same")  # crossings of a smoothed response
+    i0 = _first_crossing(rs, s.fit_start_fraction)
+    i1 = _first_crossing(rs, s.fit_end_fraction)
+    i1 = i_peak if i1 < 0 or (sagging and i1 > i_peak) else i1
+    if i0 < 0 or i1 - i0 + 1 < s.min_fit_bins:
+        return ExpFit(), NAN, "charging curve too short or too noisy to fit"
+    guess = (t[i1] - t[i0]) / math.log(
+        (1 - s.fit_start_fraction) / (1 - min(s.fit_end_fraction, 0.99))
+    )
+    fit = fit_exponential(t[i0 : i1 + 1], y[i0 : i1 + 1], max(guess, 1e-4))
+    if not fit.ok:
+        return fit, NAN, "charging-curve fit did not converge"
+    if not sagging:  # the plateau pins v_inf down: run the fit towards steady state
+        i1 = min(t.size - 1, int(np.searchsorted(t, t[0] + s.fit_span_tau * fit.tau)))
+        fit = _refit(fit, t, y, i0, i1)
+    # peel: a fit starting one tau in is free of the faster equalising components; the early
+    # excess of the data over it gives their time constant, and the fit starts after they decay
+    j_late = int(np.searchsorted(t, t[0] + fit.tau))
+    late = (
+        _refit(fit, t, y, j_late, i1) if j_late > i0 and i1 - j_late + 1 >= s.min_fit_bins else fit
+    )
+    excess = np.sign(late.amp) * (y[:j_late] - late.curve(t[:j_late]))
+    tau_fast = _fast_tau(t[:j_late], excess, noise)
+    if np.isfinite(tau_fast) and tau_fast < late.tau / 2:
+        j0 = int(np.searchsorted(t, t[0] + s.equalization_factor * tau_fast))
+        if j0 > i0 and i1 - j0 + 1 >= s.min_fit_bins:
+            fit, i0 = _refit(fit, t, y, j0, i1), j0
+    return fit, tau_fast, ""
+
+
+def _refit(fit: ExpFit, t: np.ndarray, y: np.ndarray, i0: int, i1: int) -> ExpFit:
+    """Refit on bins ``i0..i1``, keeping the previous fit if the new one fails."""
+    refit = fit_exponential(t[i0 : i1 + 1], y[i0 : i1 + 1], fit.tau)
+    return refit if refit.ok else fit
+
+
+def _biexp(t, v_inf, a0, tau0, a1, tau1):
+    return v_inf + a0 * np.exp(-t / tau0) + a1 * np.exp(-t / tau1)
+
+
+def fit_two_exponentials(t: np.ndarray, y: np.ndarray, slow: ExpFit, tau_fast: float) -> BiExpFit:
+    """Fit ``y = v_inf + a0 exp(-(t-t0)/tau0) + a1 exp(-(t-t0)/tau1)`` started from a slow fit.
+
+    Parameters
+    ----------
+    t, y : numpy.ndarray
+        Binned times (s) and voltages (V) from just after the onset settling.
+    slow : ExpFit
+        Single-exponential fit of the late part (starting values for v_inf, tau0).
+    tau_fast : float
+        Peeled fast time constant, s (starting value for tau1; NaN: tau0 / 10).
+
+    Returns
+    -------
+    BiExpFit
+        NaN values if the fit failed.
+    """
+    t0 = float(t[0])
+    tt = t - t0
+    tau1 = tau_fast if np.isfinite(tau_fast) else slow.tau / 10
+    a0 = slow.amp * math.exp(-(t0 - slow.t0) / slow.tau)
+    a1 = float(y[0] - slow.v_inf - a0)
+    try:
+        p, cov = curve_fit(_biexp, tt, y, p0=(slow.v_inf, a0, slow.tau, a1, tau1), maxfev=2000)
+    except (RuntimeError, ValueError):
+        return BiExpFit(t0=t0, t1=float(t[-1]))
+    if p[4] > p[2]:  # keep tau0 the slow one
+        p = p[[0, 3, 4, 1, 2]]
+        cov = cov[np.ix_([0, 3, 4, 1, 2], [0, 3, 4, 1, 2])]
+    if not (p[2] > 0 and p[4] > 0 and np.isfinite(cov).all()):
+        return BiExpFit(t0=t0, t1=float(t[-1]))
+    resid = y - _biexp(tt, *p)
+    return BiExpFit(
+        t0=t0,
+        t1=float(t[-1]),
+        v_inf=float(p[0]),
+        amp0=float(p[1]),
+        tau0=float(p[2]),
+        amp1=float(p[3]),
+        tau1=float(p[4]),
+        tau0_se=float(np.sqrt(cov[2, 2])),
+        tau1_se=float(np.sqrt(cov[4, 4])),
+        resid_rms=float(np.sqrt(np.mean(resid**2))),
+    )
+
+
+def _edge_jumps(v: np.ndarray, w: _Windows, on: int, off: int, base: float) -> tuple[float, float]:
+    """Fast jumps (V) at onset and offset: the membrane response extrapolated back to each edge
+    from just after the electrode settling, minus the level just before the edge (the baseline
+    mean; a line through the steady-state window at the offset)."""
+    j_on = _edge_level(v, on, w.settle, w.jump) - base
+    nss = w.ss[1] - w.ss[0]
+    pre = _edge_level(v, off, -nss, nss, degree=1)
+    j_off = _edge_level(v, off, w.settle, w.jump) - pre
+    return j_on, j_off
+
+
+def fit_sweep(sweep: Sweep, epoch: StepEpoch, settings: PassiveSettings) -> SweepFit:
+    """Passive measurements of one step sweep.
+
+    Parameters
+    ----------
+    sweep : Sweep
+        The recorded sweep (V, A, Hz).
+    epoch : StepEpoch
+        Its step epoch (from :func:`pipeline.steps.find_steps` or built by hand).
+    settings : PassiveSettings
+        Windows and fit options.
+
+    Returns
+    -------
+    SweepFit
+        Baseline (mean and RMS), steady-state and peak deflections, edge jumps, the charging fit
+        (hyperpolarizing steps only), sag ratio and rebound (hyperpolarizing steps), apparent
+        input resistance ``ss_dv / step_a`` (bridge error included). Values that could not be
+        measured are NaN and ``reason`` says why; bad input never raises.
+
+    Notes
+    -----
+    ``sag_ratio = (V_peak - V_ss) / (V_peak - V_base)``, 0 = no sag, with the bridge jump removed
+    from the peak deflection (*common practice* definition, one of several in use).
+    """
+    v = sweep.voltage
+    head = dict(
+        sweep=sweep.number,
+        step_a=float(epoch.amplitude),
+        holding_a=float(epoch.holding),
+        bias_a=_bias(sweep),
+        start_time_s=sweep.start_time,
+        onset_s=float(epoch.onset),
+        nonfinite_samples=count_nonfinite(v),
+        clipped_samples=count_clipped(v, settings.clip_run_samples),
+    )
+    if not epoch.usable:
+        return SweepFit(**head, reason=epoch.reason or f"not a single step ({epoch.kind})")
+    if not (math.isfinite(epoch.amplitude) and epoch.amplitude != 0):
+        return SweepFit(**head, reason="zero step amplitude")
+    w, why = _windows(sweep, epoch, settings)
+    if w is None:
+        return SweepFit(**head, reason=why)
+    return _measure(sweep, epoch, settings, w, head)
+
+
+def _bias(sweep: Sweep) -> float:
+    value = sweep.settings.get("bias_current_a", 0.0)
+    try:
+        return float(value)
+    except (TypeError, ValueError):
+        return NAN
+
+
+def _measure(
+    sweep: Sweep, epoch: StepEpoch, s: PassiveSettings, w: _Windows, head: dict
+) -> SweepFit:
+    """The measurements proper, once the windows are known to fit in the sweep."""
+    raw, rate = sweep.voltage, sweep.rate
+    on, off = epoch.onset_index, epoch.offset_index
+    reasons: list[str] = []
+    clipped = _clip_mask(raw, s.clip_run_samples) if head["clipped_samples"] else None
+
+    def usable(a: int, b: int, what: str) -> bool:
+        if not _finite(raw, a, b):
+            reasons.append(f"non-finite samples in the {what} window")
+            return False
+        if clipped is not None and clipped[a:b].any():
+            reasons.append(f"clipped samples in the {what} window")
+            return False
+        return True
+
+    if not usable(*w.base, "baseline"):
+        return SweepFit(**head, baseline_window=_secs(w.base, rate), reason="; ".join(reasons))
+    # hum is fitted before the step and late in it, where the membrane is flat; the after-step
+    # tail still relaxes (and rebounds) and would leak into the sinusoids
+    v = remove_hum(raw, rate, [(0, on), w.ss], s.hum_harmonics) if s.remove_hum else raw
+    base = float(v[slice(*w.base)].mean())
+    rms = float(raw[slice(*w.base)].std())
+    after = NAN
+    if w.after is None:
+        reasons.append("no relaxed window after the step for the 'after' baseline")
+    elif usable(*w.after, "after-step"):
+        after = float(v[slice(*w.after)].mean())
+    fit = dict(
+        baseline_v=base,
+        baseline_rms_v=rms,
+        baseline_after_v=after,
+        baseline_window=_secs(w.base, rate),
+        ss_window=_secs(w.ss, rate),
+    )
+    if not usable(on, off, "step"):
+        return SweepFit(**head, **fit, reason="; ".join(reasons))
+    ss_dv = float(v[slice(*w.ss)].mean()) - base
+    j_on, j_off = _edge_jumps(v, w, on, off, base)
+    sign = 1.0 if epoch.amplitude > 0 else -1.0
+    smooth = _boxcar(v[on + w.settle : off], round(s.peak_smooth_s * rate))
+    k_peak = int(np.argmax(sign * smooth))
+    peak_dv = float(smooth[k_peak]) - base
+    fit.update(ss_dv=ss_dv, peak_dv=peak_dv, onset_jump_v=j_on, offset_jump_v=j_off)
+    fit["rin_ohm"] = ss_dv / epoch.amplitude
+    if sign > 0:
+        reasons.append("depolarizing step: no charging fit, sag or rebound")
+        return SweepFit(**head, **fit, reason="; ".join(reasons))
+    jump = _mean_jump(j_on, j_off)
+    if not math.isfinite(jump):
+        reasons.append("edge jumps not measurable")
+        jump = 0.0
+    peak_m = peak_dv - jump
+    fit["sag_ratio"] = (peak_dv - ss_dv) / peak_m if peak_m < 0 else NAN
+    fit["rebound_v"] = _rebound(
+        v, off + w.settle, round(s.rebound_window_s * rate), s, rate, base, reasons
+    )
+    k = max(1, round(s.bin_s * rate))
+    t, y = _bin(v, on + w.settle, off, k, rate)
+    r = (y - base - jump) / peak_m
+    i_peak = min(int((k_peak + round(s.peak_smooth_s * rate) / 2) // k), t.size - 1)
+    noise = max(rms / math.sqrt(k), 1e-7)  # floor: noiseless traces still have rounding
+    ksm = round(s.peak_smooth_s * rate)
+    sagging = ss_dv - peak_dv > max(5 * rms / math.sqrt(ksm), 0.01 * abs(peak_m))
+    charging, tau_fast, why = _charging_fit(t, y, r, i_peak, sagging, noise, s)
+    if why:
+        reasons.append(why)
+    fit["charging"] = charging
+    if s.two_exp and charging.ok:
+        end = int(np.searchsorted(t, charging.t1, side="right"))
+        fit["charging2"] = fit_two_exponentials(t[:end], y[:end], charging, tau_fast)
+    return SweepFit(**head, **fit, reason="; ".join(reasons))
+
+
+def _mean_jump(j_on: float, j_off: float) -> float:
+    """Onset jump estimate (V) from both edges: the offset jump is the mirror of the onset one."""
+    vals = [x for x in (j_on, -j_off) if math.isfinite(x)]
+    return float(np.mean(vals)) if vals else NAN
+
+
+def _rebound(v, start, count, s, rate, base, reasons) -> float:
+    """Largest smoothed depolarization above baseline after a hyperpolarizing step, V."""
+    seg = v[start : start + count]
+    k = round(s.peak_smooth_s * rate)
+    if seg.size < 2 * k:
+        reasons.append("no room after the step for the rebound")
+        return NAN
+    if not np.isfinite(seg).all():
+        reasons.append("non-finite samples in the rebound window")
+        return NAN
+    return float(_boxcar(seg, k).max()) - base
+
+
+def _clip_mask(v: np.ndarray, min_run: int) -> np.ndarray:
+    """Boolean mask of samples in clipped runs."""
+    mask = np.zeros(v.size, dtype=bool)
+    for a, b in clipped_runs(v, min_run):
+        mask[a:b] = True
+    return mask
+
+
+def _secs(window: tuple[int, int], rate: float) -> tuple[float, float]:
+    return (window[0] / rate, window[1] / rate)
