@@ -424,8 +424,8 @@ class Nuisances:
     electrode_tau_s : float
         First-order electrode filter the bridge error passes through, s.
     drift_v : float
-        Slow linear drift, V from the first sweep's start to the last sweep's end, centred so its
-        mean over the recording is zero.
+        Slow linear drift, V from the first sweep's start (0 there: the cell is at ``vrest_v``
+        when the recording starts, the drift is the rig's) to the last sweep's end.
     current_noise_a : float
         White noise on the recorded current, A RMS.
     """
@@ -470,7 +470,7 @@ def add_nuisances(
     t_abs = start_s + np.arange(vm.size) / protocol.rate_hz
     v = vm + n.bridge_ohm * filtered_current(command, protocol.rate_hz, n.electrode_tau_s)
     v = v + n.hum_v * np.sin(2.0 * np.pi * n.hum_hz * t_abs)
-    v = v + n.drift_v * (t_abs / recording_s - 0.5)
+    v = v + n.drift_v * t_abs / recording_s
     v = v + rng.normal(0.0, n.noise_rms_v, vm.size) if n.noise_rms_v > 0 else v
     i = command + rng.normal(0.0, n.current_noise_a, vm.size) if n.current_noise_a > 0 else command
     return v, i
