@@ -62,12 +62,19 @@ def flat(level: float = V0) -> np.ndarray:
 A_FOOT, RISE, FALL = 1e5, 200.0, 100.0  # V/s^2, V/s, V/s
 
 
-def add_piecewise_spike(v: np.ndarray, t0: float) -> None:
-    """Overwrite ``v`` with the piecewise spike starting at ``t0`` (s, on the sample grid)."""
+def add_piecewise_spike(v: np.ndarray, t0: float, notch_s: float = 0.0) -> None:
+    """Overwrite ``v`` with the piecewise spike starting at ``t0`` (s, on the sample grid).
+
+    ``notch_s`` > 0 inserts a 10 V/s stretch of that length halfway up the upstroke.
+    """
     t = np.arange(v.size) * DT - t0
-    knots_t = [0.4e-3, 0.8e-3, 1.7e-3, 6.7e-3]
     top = V0 + A_FOOT * (0.4e-3) ** 2 / 2
-    knots_v = [top, top + RISE * 0.4e-3, top + RISE * 0.4e-3 - FALL * 0.9e-3, V0]
+    mid = top + RISE * 0.2e-3
+    knots_t = [0.4e-3, 0.6e-3, 0.6e-3 + notch_s, 0.8e-3 + notch_s, 1.7e-3 + notch_s]
+    peak = mid + 10.0 * notch_s + RISE * 0.2e-3
+    knots_v = [top, mid, mid + 10.0 * notch_s, peak, peak - FALL * 0.9e-3]
+    knots_t.append(knots_t[-1] + 5e-3)
+    knots_v.append(V0)
     foot = (t >= 0) & (t < knots_t[0])
     v[foot] = V0 + A_FOOT * t[foot] ** 2 / 2
     rest = (t >= knots_t[0]) & (t <= knots_t[-1])
@@ -149,15 +156,14 @@ def test_gaussian_spike_threshold_and_half_width():
 
 
 def test_notched_upstroke_is_one_spike():
+    # halfway up the upstroke dV/dt drops to 10 V/s for 0.3 ms (below threshold) and then rises
+    # through the threshold again: still one spike, with the first threshold
     v = flat()
-    add_piecewise_spike(v, 0.2)
-    # hold the voltage for 0.3 ms halfway up the upstroke: dV/dt drops below threshold and
-    # rises through it again, still one spike
-    i = int(round((0.2 + 0.6e-3) / DT))
-    v = np.concatenate([v[:i], np.full(15, v[i]), v[i:-15]])
+    add_piecewise_spike(v, 0.2, notch_s=0.3e-3)
     s = detect_spikes(sweep(v), epoch())
     assert len(s) == 1
     assert s[0].time_s == pytest.approx(piecewise_truth(0.2)["time_s"], abs=1e-9)
+    assert s[0].peak_time_s == pytest.approx(0.2 + 1.1e-3, abs=1e-9)
 
 
 def test_refractory_guard():
@@ -418,3 +424,87 @@ def test_bad_epochs_and_slow_sampling_give_reasons():
 def test_settings_validation_names_the_field(field, value):
     with pytest.raises(ValueError, match=rf"^{field} must be"):
         SpikeSettings(**{field: value})
+
+
+def test_spike_rising_out_of_a_large_step_uses_the_knee():
+    # a step with I/C = 40 V/s (twice the threshold) charging with tau = 2 ms: dV/dt stays above
+    # 20 V/s from the edge into the spike, so there is no crossing; the threshold is the dV/dt
+    # minimum before the upstroke, where the spike's foot starts
+    t = np.arange(int(round(END * RATE))) * DT
+    on = t >= ONSET
+    v = flat()
+    v[on] += 40.0 * 2e-3 * (1 - np.exp(-(t[on] - ONSET) / 2e-3))
+    spike = flat()
+    t0 = ONSET + 1e-3
+    add_piecewise_spike(spike, t0)
+    v += spike - V0
+    s = detect_spikes(sweep(v), epoch())
+    assert len(s) == 1 and "knee" in s[0].note
+    assert s[0].time_s == pytest.approx(t0, abs=1e-4)
+    # the smoothing window (0.2 ms) lets the minimum lead the foot by up to half a window,
+    # at 24 V/s about 2.4 mV
+    assert s[0].threshold_v == pytest.approx(np.interp(t0, t, v), abs=2.5e-3)
+    assert math.isfinite(s[0].width_s)
+
+
+def test_spike_whose_foot_lies_in_the_guard_counts_without_threshold():
+    v = flat()
+    add_piecewise_spike(v, ONSET - 0.2e-3)  # crosses 20 V/s exactly at the onset sample
+    r = measure_spiking(sweep(v), epoch())
+    assert r.spike_count == 1
+    s = r.spikes[0]
+    assert "threshold unknown" in s.note
+    assert math.isnan(s.threshold_v) and math.isnan(s.width_s) and math.isnan(s.amplitude_v)
+    assert s.peak_v == pytest.approx(piecewise_truth(0)["peak_v"])
+
+
+@pytest.mark.parametrize("seed", range(8))
+def test_random_trains_found_exactly(seed):
+    rng = np.random.default_rng(seed)
+    starts, t = [], ONSET + rng.uniform(2e-3, 30e-3)
+    while t < OFFSET - 10e-3:
+        starts.append(round(t / DT) * DT)
+        t += rng.uniform(3e-3, 60e-3)  # ISIs longer than the 1.7 ms spike plus 1 ms guard
+    v = flat()
+    for t0 in starts:
+        add_piecewise_spike(v, t0)
+    v += rng.normal(0, rng.uniform(0.05e-3, 0.3e-3), v.size)
+    r = measure_spiking(sweep(v), epoch())
+    assert r.spike_count == len(starts)
+    expected = [piecewise_truth(t0)["time_s"] for t0 in starts]
+    np.testing.assert_allclose([s.time_s for s in r.spikes], expected, atol=5e-5)
+    np.testing.assert_allclose(
+        [s.width_s for s in r.spikes], piecewise_truth(0)["width_s"], rtol=0.02
+    )
+
+
+def test_block_without_spikes_is_judged_against_the_rheobase_threshold():
+    rec, eps = cell([20, 40, 60, 80], [0, 2, 4, 0])
+    v = flat()
+    v[int(ONSET * RATE) : int(OFFSET * RATE)] = -0.03  # held far above threshold, silent
+    sweeps = (*rec.sweeps[:3], sweep(v, number=4, amp=80e-12))
+    fit = fit_spiking(Recording("c1", "c1.nwb", "e0", sweeps), eps)
+    last = fit.sweeps[-1]
+    assert last.block and math.isnan(last.rate_hz) and "block" in last.reason
+    assert fit.block_step_a == pytest.approx(80e-12)
+    # alone, the silent sweep has no threshold of its own to compare with
+    alone = measure_spiking(sweeps[3], eps[3])
+    assert not alone.block and alone.rate_hz == 0.0
+    ref = piecewise_truth(0)["threshold_v"]
+    assert measure_spiking(sweeps[3], eps[3], block_threshold_v=ref).block
+
+
+def test_cell_survives_a_nan_sweep_and_a_noisy_sweep():
+    rec, eps = cell([20, 40, 60, 80, 100], [0, 2, 4, 6, 8])
+    bad = rec.sweeps[2].voltage.copy()
+    bad[int(0.2 * RATE)] = np.nan
+    noisy = rec.sweeps[3].voltage + np.random.default_rng(5).normal(0, 3e-3, bad.size)
+    sweeps = list(rec.sweeps)
+    sweeps[2] = sweep(bad, number=3, amp=60e-12)
+    sweeps[3] = sweep(noisy, number=4, amp=80e-12)
+    fit = fit_spiking(Recording("c1", "c1.nwb", "e0", tuple(sweeps)), eps)
+    rows = {r["sweep"]: r for r in fit.sweep_rows()}
+    assert "NaN" in rows[3]["spiking_reason"] and math.isnan(rows[3]["spike_count"])
+    assert "noise" in rows[4]["spiking_reason"] and math.isnan(rows[4]["spike_rate_hz"])
+    assert fit.rheobase_a == pytest.approx(40e-12)
+    assert fit.fi_sweeps == (2, 5)  # the unreadable sweeps are not f-I points

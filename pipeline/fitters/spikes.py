@@ -348,6 +348,7 @@ def _locate(
     rise_n = max(2, int(round(s.max_rise_s * rate)))
     fall_n = max(2, int(round(s.max_fall_s * rate)))
     refr_n = int(round(s.refractory_s * rate))
+    guard_peak = _window_samples(s, rate) // 2 + 1  # the smoothed zero may lead the raw peak
     # vectorised pre-filter (noise makes many candidates): the largest V within max_rise_s ahead
     ahead = maximum_filter1d(v, size=rise_n, origin=-(rise_n // 2), mode="nearest")
     ok = (ahead[cand] - v[cand] >= s.min_amplitude_v) & (ahead[cand] >= s.min_peak_v)
@@ -356,7 +357,10 @@ def _locate(
     for c in cand[ok]:
         if c < resume:
             continue
-        p = c + int(np.argmax(v[c : min(c + rise_n, n)]))
+        # the peak: highest V up to where dV/dt first turns negative (not a later spike's)
+        falling = np.flatnonzero(dvdt[c : min(c + rise_n, n)] < 0)
+        stop = c + int(falling[0]) + guard_peak if falling.size else c + rise_n
+        p = c + int(np.argmax(v[c : min(stop, n)]))
         m = c + int(np.argmax(dvdt[c : p + 1]))
         c = int(cand[np.searchsorted(cand, m, side="right") - 1])  # last crossing before m
         knee = hidden = c in knees
