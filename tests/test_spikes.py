@@ -15,6 +15,7 @@ from scipy.optimize import brentq
 
 from pipeline.fitters.spikes import (
     SpikeSettings,
+    SweepSpiking,
     adaptation_index,
     detect_spikes,
     fit_spiking,
@@ -508,3 +509,32 @@ def test_cell_survives_a_nan_sweep_and_a_noisy_sweep():
     assert "noise" in rows[4]["spiking_reason"] and math.isnan(rows[4]["spike_rate_hz"])
     assert fit.rheobase_a == pytest.approx(40e-12)
     assert fit.fi_sweeps == (2, 5)  # the unreadable sweeps are not f-I points
+
+
+def test_repeated_steps_do_not_end_the_fi_line():
+    # two sweeps at 60 pA with 4 and 2 spikes: repeats of one step do not mean saturation
+    rec, eps = cell([40, 60, 60, 80, 100], [0, 4, 2, 6, 8])
+    fit = fit_spiking(rec, eps)
+    assert fit.fi_sweeps == (2, 3, 4, 5)
+    expected = np.polyfit([60, 60, 80, 100], [8, 4, 12, 16], 1)[0] * 1e12  # Hz/A
+    assert fit.fi_slope_hz_per_a == pytest.approx(expected)
+    assert fit.step_resolution_a == pytest.approx(20e-12)
+
+
+def test_slow_adapting_train_is_not_block():
+    # ISIs 40, 80, 160 ms; after the last spike the membrane sits 2 mV above the first spike's
+    # threshold for about 200 ms: longer than block_min_s, shorter than twice the last ISI
+    thr = piecewise_truth(0)["threshold_v"]
+
+    def train(starts: list[float]) -> SweepSpiking:
+        v = flat()
+        for t0 in starts:
+            add_piecewise_spike(v, t0)
+        v[int(round((starts[-1] + 0.01) * RATE)) : int(round(OFFSET * RATE))] = thr + 0.002
+        return measure_spiking(sweep(v), epoch())
+
+    slow = train([0.11, 0.15, 0.23, 0.39])
+    assert not slow.block and slow.rate_hz == pytest.approx(4 / 0.5)
+    # the same silence after a fast burst (ISIs 10 ms) is block
+    fast = train([0.11, 0.12, 0.13, 0.14])
+    assert fast.block and math.isnan(fast.rate_hz)

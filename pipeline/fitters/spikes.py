@@ -65,7 +65,7 @@ class SpikeSettings:
     noise_window_s: float = 0.02
     # sweeps whose baseline dV/dt noise (robust SD) exceeds this get NaN spike values, V/s
     max_dvdt_noise_v_per_s: float = 10.0
-    # no spikes for this long at the step end while above the first threshold = block, s
+    # no spikes for this long (and 2 x the longest ISI) at the step end, above threshold = block, s
     block_min_s: float = 0.05
     # sweeps sampled slower than this cannot resolve spikes, Hz
     min_sampling_rate_hz: float = 5000.0
@@ -528,8 +528,9 @@ def _with_block(
 ) -> SweepSpiking:
     """``r`` with depolarization block assessed against ``threshold_v`` (V).
 
-    Block: no spike for at least ``block_min_s`` before the step offset while the membrane sits
-    above the threshold; the sweep's rate is then NaN (it says nothing about the f-I relation).
+    Block: no spike for at least ``block_min_s`` (and twice the sweep's longest ISI) before the
+    step offset while the membrane sits above the threshold; the sweep's rate is then NaN (it
+    says nothing about the f-I relation).
     """
     if not r.analysed or r.step_a <= 0:
         return r
@@ -537,7 +538,9 @@ def _with_block(
     if not math.isfinite(threshold_v):
         threshold_v = next((sp.threshold_v for sp in step if math.isfinite(sp.threshold_v)), NAN)
     t_end, v_tail = _silent_tail(sweep.voltage, sweep.rate, epoch, step, s)
-    if not (epoch.offset - t_end >= s.block_min_s and v_tail >= threshold_v):
+    # silent for block_min_s and for twice the longest ISI: a slow, adapting train is not block
+    silence = max(s.block_min_s, 2 * max(r.isis_s, default=0.0))
+    if not (epoch.offset - t_end >= silence and v_tail >= threshold_v):
         return r
     since = f"after {(step[-1].time_s - epoch.onset) * 1e3:.0f} ms" if step else "at all"
     reason = (
@@ -628,14 +631,14 @@ def _distinct(values: Sequence[float], tol: float) -> np.ndarray:
 
 def _fi_slope(depol: list[SweepSpiking], rheobase: float, settings: SpikeSettings):
     """Slope (Hz/A), intercept (Hz) and sweeps of the f-I line below saturation or block."""
-    used, best = [], -math.inf
+    tol, used = settings.step_tolerance_a, []
     for r in sorted(depol, key=lambda r: r.step_a):
-        if r.step_a < rheobase - settings.step_tolerance_a:
+        if r.step_a < rheobase - tol:
             continue
-        if r.block or r.rate_hz < best:
-            break  # block or falling rate: the linear part is over
+        below = [u.rate_hz for u in used if u.step_a < r.step_a - tol]  # repeats don't compete
+        if r.block or (below and r.rate_hz < max(below)):
+            break  # block or a rate below a smaller step's: the linear part is over
         used.append(r)
-        best = r.rate_hz
     amps = _distinct([r.step_a for r in used], settings.step_tolerance_a)
     if len(used) < settings.fi_min_sweeps or amps.size < 2:
         return (
@@ -712,7 +715,10 @@ def _summarise(
         return SpikeFit(**base, status="no usable depolarizing sweeps")
     depol = [r for r in rows if r.analysed and r.step_a > 0]
     if not depol:
-        return SpikeFit(**base, status="no depolarizing sweep could be analysed")
+        why = sorted({r.reason for r in rows if r.step_a > 0})
+        return SpikeFit(
+            **base, status="no depolarizing sweep could be analysed: " + "; ".join(why[:3])
+        )
     amps = _distinct([r.step_a for r in depol], s.step_tolerance_a)
     resolution = float(np.diff(amps).min()) if amps.size > 1 else NAN
     fi = tuple(sorted((r.step_a, r.rate_hz) for r in depol if math.isfinite(r.rate_hz)))
