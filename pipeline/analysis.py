@@ -159,7 +159,25 @@ def _sweep_rows(recording, epochs, fits, spikes) -> list[dict[str, Any]]:
 def _derived(sweep_rows: list[dict[str, Any]]) -> dict[str, Any]:
     """Cell columns that QC rules read and that come from counting sweeps."""
     hyper = [r for r in sweep_rows if r["used"] and _finite(r.get("step_pa")) and r["step_pa"] < 0]
-    return {"n_hyperpolarizing_used": len(hyper)}
+    return {"n_hyperpolarizing_used": len(hyper), "rin_change_pct": _rin_change_pct(hyper)}
+
+
+def _rin_change_pct(hyper: list[dict[str, Any]]) -> float:
+    """Change of per-sweep ΔV/I between the first and last repeats of the same step, %.
+
+    Only steps given more than once say anything about stability (a single family of different
+    steps confounds time with amplitude, Ih and rectification), so this is NaN without repeats.
+    """
+    by_step: dict[float, list[float]] = {}
+    for row in hyper:  # rows are in recording order
+        if _finite(row.get("rin_mohm")):
+            by_step.setdefault(round(row["step_pa"], 1), []).append(row["rin_mohm"])
+    pairs = [(v[0], v[-1]) for v in by_step.values() if len(v) > 1]
+    if not pairs:
+        return math.nan
+    first = sum(p[0] for p in pairs) / len(pairs)
+    last = sum(p[1] for p in pairs) / len(pairs)
+    return 100.0 * (last - first) / first if first else math.nan
 
 
 def _figure(recording, epochs, cell_fit, verdict, spikes, figure_dir, config) -> str:

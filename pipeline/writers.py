@@ -72,6 +72,7 @@ def write_nwb(
     species: str | None = None,
     session_start_time: dt.datetime | None = None,
     identifier: str | None = None,
+    digitize: bool = False,
 ) -> Path:
     """Write recordings to one NWB file in the standard intracellular layout.
 
@@ -93,6 +94,9 @@ def write_nwb(
         Defaults to the first recording's ``session_start_time`` metadata, else now (UTC).
     identifier : str, optional
         NWB identifier; defaults to the first recording's ``identifier`` metadata, else a UUID.
+    digitize : bool
+        Store the data as an acquisition system does: int16 samples with a ``conversion``
+        (10 µV and 0.1 pA per step), gzip-compressed. Default: float32 volts and amperes.
 
     Returns
     -------
@@ -135,7 +139,7 @@ def write_nwb(
             if sweep.current is not None:
                 stimulus = CurrentClampStimulusSeries(
                     name=f"{el_name}_stimulus_{sweep.number:04d}",
-                    data=sweep.current.astype(np.float32),
+                    **_nwb_data(sweep.current, _ADC_STEP_A if digitize else None),
                     unit="amperes",
                     **common,
                 )
@@ -146,7 +150,7 @@ def write_nwb(
             }
             response = CurrentClampSeries(
                 name=f"{el_name}_response_{sweep.number:04d}",
-                data=sweep.voltage.astype(np.float32),
+                **_nwb_data(sweep.voltage, _ADC_STEP_V if digitize else None),
                 unit="volts",
                 **common,
                 **settings,
@@ -158,6 +162,20 @@ def write_nwb(
         with NWBHDF5IO(tmp, mode="w") as io:
             io.write(nwbfile)
     return Path(path)
+
+
+_ADC_STEP_V = 1e-5  # 10 µV per int16 step: ±327 mV range
+_ADC_STEP_A = 1e-13  # 0.1 pA per int16 step: ±3.2 nA range
+
+
+def _nwb_data(values: np.ndarray, step: float | None) -> dict:
+    """Series data as float32, or as compressed int16 counts with their ``conversion``."""
+    if step is None:
+        return {"data": values.astype(np.float32)}
+    from hdmf.backends.hdf5.h5_utils import H5DataIO
+
+    counts = np.clip(np.round(values / step), -32768, 32767).astype(np.int16)
+    return {"data": H5DataIO(counts, compression="gzip", shuffle=True), "conversion": step}
 
 
 def write_nix(recordings: Sequence[Recording], path: str | os.PathLike) -> Path:
@@ -227,7 +245,9 @@ def write_nix(recordings: Sequence[Recording], path: str | os.PathLike) -> Path:
     return Path(path)
 
 
-def write_csv(recording: Recording, path: str | os.PathLike) -> Path:
+def write_csv(
+    recording: Recording, path: str | os.PathLike, *, decimals: int | None = None
+) -> Path:
     """Write one recording in the plain-text layout of :mod:`pipeline.readers.text`.
 
     Columns ``sweep,time_s,voltage_mv,current_pa`` (``current_pa`` left out when no sweep
@@ -239,6 +259,9 @@ def write_csv(recording: Recording, path: str | os.PathLike) -> Path:
         The cell to write.
     path : str or os.PathLike
         Target ``.csv`` file (replaced if it exists).
+    decimals : int, optional
+        Round voltage (mV) and current (pA) to this many decimals to keep the file small; the
+        default writes every float exactly.
 
     Returns
     -------
@@ -258,6 +281,9 @@ def write_csv(recording: Recording, path: str | os.PathLike) -> Path:
         if with_current:
             current = sweep.current if sweep.current is not None else np.nan
             cols["current_pa"] = np.broadcast_to(current, (sweep.n_samples,)) * 1e12
+        if decimals is not None:
+            cols = {k: np.round(v, decimals) if k != "sweep" else v for k, v in cols.items()}
+            cols["time_s"] = sweep.start_time + np.round(sweep.time(), 6)
         frames.append(pd.DataFrame(cols))
     table = pd.concat(frames, ignore_index=True) if frames else pd.DataFrame(columns=["sweep"])
     with _atomic(path) as tmp:
