@@ -147,3 +147,17 @@ def test_fi_and_depolarization_block(cell):
     assert max(fi_amps) < fit.block_step_a and min(fi_amps) == fit.rheobase_a
     assert fit.fi_slope_hz_per_a > 0
     assert fit.max_rate_hz == pytest.approx(max(rate for _, rate in fit.fi))
+
+
+def test_counts_survive_bridge_error_and_noise(cell):
+    # rig nuisances on top of the simulation: an unbalanced bridge (20 Mohm: a jump of I * R at
+    # both edges, common practice) and 0.2 mV white noise; counts and times stay NetCon's
+    run = cell.run(cell.density_to_amps(10.0))
+    rng = np.random.default_rng(2)
+    v = run.sweep.voltage + run.sweep.current * 20e6 + rng.normal(0, 0.2e-3, run.sweep.n_samples)
+    noisy = Sweep(voltage=v, current=run.sweep.current, rate=run.sweep.rate, number=0)
+    r = measure_spiking(noisy, run.epoch, SETTINGS)
+    assert r.analysed and r.spike_count == in_step(run.v_spike_times_s, run).size
+    ref = in_step(run.dvdt_times_s, run)
+    ref = ref[ref > run.epoch.onset + SETTINGS.edge_guard_s]
+    np.testing.assert_allclose([s.time_s for s in r.spikes if s.in_step], ref, atol=2e-4)
