@@ -319,7 +319,7 @@ def _from_current(sweep: Sweep, current: np.ndarray, settings: StepSettings) -> 
                 "ramp",
                 f"the current drifts by {change * 1e12:.3g} pA between {s0 / rate * 1e3:.4g} "
                 f"and {s1 / rate * 1e3:.4g} ms",
-                holding=levels[0],
+                holding=_level(current[:k]),  # the current at the sweep start
                 noise_a=sigma,
             )
     return _classify(sweep, settings, current, runs, levels, threshold, sigma)
