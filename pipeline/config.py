@@ -211,13 +211,43 @@ def _check_cross_fields(config: Config, where: str) -> None:
             value = getattr(section, f.name)
             if f.name.endswith(("_s", "_ms")) and isinstance(value, float) and value < 0:
                 raise ConfigError(f"{where}: [{name}] {f.name} must be >= 0, got {value}")
-    problems = getattr(config.passive, "problems", None)
-    for problem in problems() if callable(problems) else ():
-        raise ConfigError(f"{where}: [passive] {problem}")
+    for problem in _contradictions(config):
+        raise ConfigError(f"{where}: {problem}")
     if config.run.workers < 0:
         raise ConfigError(f"{where}: [run] workers must be >= 0 (0 = all cores)")
     if config.report.figure_dpi < 20 or config.report.figure_dpi > 600:
         raise ConfigError(f"{where}: [report] figure_dpi must be within 20..600")
+
+
+def _contradictions(config: Config) -> list[str]:
+    """Settings that cannot all hold at once (each message names the keys)."""
+    p, st = config.passive, config.steps
+    out = []
+    if p.min_window_s > min(p.baseline_window_s, p.ss_window_s):
+        out.append(
+            "[passive] min_window_s is longer than baseline_window_s or ss_window_s: "
+            "no window could ever be accepted"
+        )
+    if not 0.0 < p.fit_start_fraction < p.fit_end_fraction <= 1.0:
+        out.append("[passive] need 0 < fit_start_fraction < fit_end_fraction <= 1")
+    if not 0.0 < p.confidence < 1.0:
+        out.append("[passive] confidence must be between 0 and 1 (e.g. 0.95)")
+    if p.bin_s >= p.ss_window_s:
+        out.append("[passive] bin_s must be much shorter than ss_window_s")
+    schedule = [
+        st.schedule_onset_s,
+        st.schedule_duration_s,
+        st.schedule_first_a,
+        st.schedule_increment_a,
+    ]
+    if any(v is not None for v in schedule) and any(v is None for v in schedule):
+        out.append(
+            "[steps] give all four schedule keys (schedule_onset_s, schedule_duration_s, "
+            "schedule_first_a, schedule_increment_a) or none"
+        )
+    if st.schedule_duration_s is not None and st.schedule_duration_s <= 0:
+        out.append("[steps] schedule_duration_s must be > 0")
+    return out
 
 
 def _is_union(hint: Any) -> bool:

@@ -54,7 +54,8 @@ class Rule:
     abs : bool
         Compare the magnitude of the value.
     message : str
-        Shown when the rule fires; ``{value}``, ``{min}``, ``{max}``, ``{column}`` are filled in.
+        Shown when the rule fires; ``{value}``, ``{min}``, ``{max}``, ``{column}``, ``{bounds}``
+        are filled in (a value that could not be measured gets a fixed message instead).
     steps : str
         Sweep rules only: apply to ``"all"``, ``"hyperpolarizing"`` or ``"depolarizing"`` sweeps.
     if_missing : str
@@ -89,13 +90,21 @@ class Rule:
     def describe(self, value: Any) -> str:
         """The rule's message for ``value``."""
         number = _as_number(value)
-        shown = "missing" if number is None or math.isnan(number) else number
-        template = self.message or "{column} = {value} outside [{min}, {max}]"
+        if number is None or math.isnan(number):
+            return f"{self.column} could not be measured (QC rule {self.name!r})"
+        template = self.message or "{column} = {value:g} outside the allowed {bounds}"
         try:
-            return template.format(value=shown, min=self.min, max=self.max, column=self.column)
-        except (ValueError, TypeError, KeyError, IndexError):
-            # e.g. "{value:.1f}" with a missing value: fall back to the plain form.
-            return f"{self.name}: {self.column} = {shown} outside [{self.min}, {self.max}]"
+            return template.format(
+                value=number, min=self.min, max=self.max, column=self.column, bounds=self._bounds()
+            )
+        except (ValueError, TypeError, KeyError, IndexError, AttributeError):
+            # A lab's message with a bad placeholder still says what fired.
+            return f"{self.name}: {self.column} = {number:g} outside the allowed {self._bounds()}"
+
+    def _bounds(self) -> str:
+        low = "-inf" if self.min is None else f"{self.min:g}"
+        high = "inf" if self.max is None else f"{self.max:g}"
+        return f"range [{low}, {high}]" + (" (magnitude)" if self.abs else "")
 
 
 @dataclass(frozen=True)
@@ -253,11 +262,12 @@ def judge_cell(
 
     A cell whose ``status`` is not ``ok`` fails with its status as the reason.
     """
-    reasons: list[str] = []
-    flags: list[str] = []
     status = str(cell_row.get("status", "ok"))
     if status != "ok":
-        reasons.append(status)
+        # Rules would only repeat that the values are missing: the status says why.
+        return CellVerdict(False, (status,), (), dict(excluded or {}))
+    reasons: list[str] = []
+    flags: list[str] = []
     for rule in rules:
         if rule.column not in cell_row:
             reasons.append(

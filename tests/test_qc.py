@@ -31,7 +31,10 @@ def test_missing_values_pass_unless_asked():
 def test_message_is_filled_and_survives_missing_value():
     rule = _rule(message="x is {value:.1f} (max {max:g})", if_missing="act")
     assert rule.describe(3.14159) == "x is 3.1 (max 1)"
-    assert "missing" in rule.describe(math.nan)
+    assert rule.describe(math.nan) == "x could not be measured (QC rule 'r')"
+    assert _rule(message="bad {placeholder}").describe(2.0) == (
+        "r: x = 2 outside the allowed range [-inf, 1]"
+    )
 
 
 def test_cell_verdict_fail_flag_and_status():
