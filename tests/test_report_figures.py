@@ -14,7 +14,14 @@ from matplotlib.image import imread
 from pipeline.fitters.results import CellFit, ExpFit, SweepFit
 from pipeline.qc import CellVerdict
 from pipeline.recording import Recording, Sweep
-from pipeline.report.figures import cell_figure, envelope, figure_names, safe_name
+from pipeline.report.figures import (
+    FAIL_COLOUR,
+    PASS_COLOUR,
+    cell_figure,
+    envelope,
+    figure_names,
+    safe_name,
+)
 from pipeline.steps import StepEpoch
 
 RATE = 20_000.0
@@ -72,7 +79,7 @@ def fake_cell(
         rin_ohm=RIN,
         rin_ci_ohm=(RIN * 0.96, RIN * 1.04),
         iv_slope_ohm=RIN,
-        iv_intercept_v=0.0,
+        iv_intercept_v=float(np.mean([f.baseline_v for f in fits if f.sweep in used])),
         tau_s=TAU,
         tau_ci_s=(TAU * 0.97, TAU * 1.03),
         cm_f=TAU / RIN,
@@ -84,6 +91,11 @@ def fake_cell(
     verdict = CellVerdict(True, flags=("tau from 4 sweeps only",), excluded=dict(cell.excluded))
     recording = Recording(cell_id, f"/data/day/{cell_id}.nwb", "e0", tuple(sweeps))
     return recording, epochs, cell, verdict
+
+
+def _colour_pixels(img: np.ndarray, hex_colour: str, tol: float = 0.04) -> int:
+    rgb = np.array([int(hex_colour[i : i + 2], 16) for i in (1, 3, 5)]) / 255
+    return int(np.all(np.abs(img[..., :3] - rgb) < tol, axis=-1).sum())
 
 
 def _png(path: Path) -> np.ndarray:
@@ -99,8 +111,8 @@ def test_normal_cell_figure(tmp_path):
     # 15 x 8.6 in at 100 dpi
     assert img.shape[:2] == (860, 1500)
     # the PASS colour (#1a7f37) is on the page: the verdict was drawn
-    green = np.all(np.abs(img[..., :3] - np.array([0x1A, 0x7F, 0x37]) / 255) < 0.02, axis=-1)
-    assert green.sum() > 50
+    # the verdict is drawn in the PASS colour, and nothing in the FAIL colour
+    assert _colour_pixels(img, PASS_COLOUR) > 50 and _colour_pixels(img, FAIL_COLOUR) == 0
     assert not [p for p in tmp_path.iterdir() if p.name.startswith(".")]
 
 
@@ -128,6 +140,39 @@ def test_figure_with_spikes_is_taller(tmp_path):
     _png(tmp_path / "s2.png")
 
 
+def test_iv_line_starts_at_zero_deflection():
+    """The fitter's intercept is the membrane potential at zero current (the mean baseline);
+    on the ΔV axis the line must start at 0."""
+    from pipeline.report.figures import _iv_offset_v, _sweep_views
+
+    rec, epochs, fit, verdict = fake_cell()
+    views = _sweep_views(rec, {e.sweep: e for e in epochs}, fit, verdict, "viridis")
+    assert abs(_iv_offset_v(views, fit.iv_intercept_v)) < 1e-12
+    assert _iv_offset_v(views, fit.iv_intercept_v + 1e-3) == pytest.approx(1e-3)
+
+
+def test_figure_with_spike_fit_record(tmp_path):
+    """The spiking panels read the real SpikeFit record (duck-typed), spikes marked."""
+    from pipeline.fitters.spikes import Spike, SpikeFit, SweepSpiking
+
+    rec, epochs, fit, verdict = fake_cell()
+    spike = Spike(0.25, -0.045, 0.03, 0.2505, 0.075, 8e-4, 0.01, 2e-3, 300.0, -150.0, True)
+    rheo = SweepSpiking(sweep=12, step_a=120e-12, analysed=True, spikes=(spike,) * 3, rate_hz=12.5)
+    spikes = SpikeFit(
+        cell_id="cell01", sweeps=(rheo,), rheobase_a=120e-12, rheobase_sweep=12,
+        fi=((120e-12, 12.5), (140e-12, 25.0), (160e-12, 37.5)), fi_slope_hz_per_a=6.25e11,
+        fi_intercept_hz=-62.5, fi_sweeps=(12, 13, 14),
+    )  # fmt: skip
+    cell_figure(rec, epochs, fit, verdict, tmp_path / "spk.png", spikes=spikes, dpi=60)
+    img = _png(tmp_path / "spk.png")
+    assert img.shape[0] == round((8.6 + 3.6) * 60)
+    # the f-I slope line is drawn in the FAIL colour (dashed red)
+    assert _colour_pixels(img, FAIL_COLOUR, 0.08) > 10
+    silent = SpikeFit(cell_id="cell01", status="no depolarizing sweep")
+    cell_figure(rec, epochs, fit, verdict, tmp_path / "silent.png", spikes=silent, dpi=40)
+    _png(tmp_path / "silent.png")
+
+
 def test_failed_fits_figure(tmp_path):
     rec, epochs, fit, _ = fake_cell("nofit")
     nan_sweeps = tuple(
@@ -142,10 +187,9 @@ def test_failed_fits_figure(tmp_path):
         False, reasons=("no usable hyperpolarizing sweep",), excluded=failed.excluded
     )
     out = tmp_path / "nofit.png"
-    cell_figure(rec, epochs, failed, verdict, out, dpi=50)
+    cell_figure(rec, epochs, failed, verdict, out, dpi=80)
     img = _png(out)
-    red = np.all(np.abs(img[..., :3] - np.array([0xC6, 0x28, 0x28]) / 255) < 0.03, axis=-1)
-    assert red.sum() > 20  # the FAIL verdict is drawn
+    assert _colour_pixels(img, FAIL_COLOUR) > 50 and _colour_pixels(img, PASS_COLOUR) == 0
 
 
 def test_error_cell_figure(tmp_path):

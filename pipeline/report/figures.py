@@ -40,7 +40,7 @@ _MAX_STEM = 80
 PASS_COLOUR = "#1a7f37"
 FAIL_COLOUR = "#c62828"
 EXCLUDED_COLOUR = "0.65"
-DEPOLARIZING_COLOUR = "0.45"
+DEPOLARIZING_COLOUR = "0.62"
 SS_COLOUR = "tab:blue"
 PEAK_COLOUR = "tab:orange"
 FIT_COLOUR = "black"
@@ -251,7 +251,7 @@ def _draw_traces(ax, fig, views: list[_SweepView], cell_fit: CellFit | None, dpi
         return
     longest = max(v.sweep.duration for v in drawn)
     columns = _axis_columns(ax, fig, dpi)
-    spans = []
+    spans, lines = [], []
     for v in drawn:
         t, y = envelope(
             v.sweep.time() * 1e3,
@@ -265,10 +265,15 @@ def _draw_traces(ax, fig, views: list[_SweepView], cell_fit: CellFit | None, dpi
                 style["ls"] = ":"
         else:
             style = {"color": v.colour, "lw": 0.9}
-        ax.plot(t, y, zorder=2 if hyper else 1, **style)
+        (line,) = ax.plot(t, y, zorder=2 if hyper else 1, **style)
         spans.append((np.nanmin(y), np.nanmax(y), hyper))
+        lines.append(line)
     _draw_fits_and_windows(ax, views)
     cap = _trace_limits(ax, spans, views)
+    if cap is not None:
+        for line, (_, top, hyper) in zip(lines, spans, strict=True):
+            if not hyper and top > cap:
+                line.set_alpha(0.35)  # spiking sweeps: shown in the spiking panels
     _label_traces(ax, f"; clipped above {cap:.0f} mV" if cap is not None else "")
 
 
@@ -313,18 +318,16 @@ def _draw_fits_and_windows(ax, views: list[_SweepView]) -> None:
 
 
 def _trace_limits(ax, spans, views: list[_SweepView]) -> float | None:
-    """Keep the passive responses readable: clip spikes of depolarizing sweeps; returns the cap.
+    """Keep the passive responses readable: clip spikes (in-step or rebound); returns the cap.
 
-    The top is set a margin above the highest median voltage during a step: a spiking sweep's
-    median sits between its spikes, a subthreshold sweep's at its plateau.
+    The top is a margin above the highest median level of any sweep before or during its
+    step: a spiking sweep's median sits between its spikes, a subthreshold one's on its plateau.
     """
     lo, hi = min(s[0] for s in spans), max(s[1] for s in spans)
-    plateaus = [m for v in views if (m := _step_median_mv(v)) is not None]
-    if plateaus:
-        top = max(
-            max(plateaus), max(s[1] for s in spans if s[2]) if any(s[2] for s in spans) else -np.inf
-        )
-        cap = top + max(0.3 * (top - lo), 8.0)
+    levels = [m for v in views for m in _levels_mv(v)]
+    if levels:
+        top = max(levels)
+        cap = top + max(0.15 * (top - lo), 8.0)
         if hi > cap:
             ax.set_ylim(lo - 0.04 * (cap - lo), cap)
             return cap
@@ -333,12 +336,21 @@ def _trace_limits(ax, spans, views: list[_SweepView]) -> float | None:
     return None
 
 
-def _step_median_mv(v: _SweepView) -> float | None:
-    if v.sweep is None or v.epoch is None or not v.epoch.usable:
-        return None
-    seg = v.sweep.voltage[v.epoch.onset_index : v.epoch.offset_index]
-    seg = seg[np.isfinite(seg)]
-    return float(np.median(seg)) * 1e3 if seg.size else None
+def _levels_mv(v: _SweepView) -> list[float]:
+    """Median voltage before and during the step (whole sweep when the step is unknown), mV."""
+    if v.sweep is None:
+        return []
+    volts = v.sweep.voltage
+    if v.epoch is not None and v.epoch.usable and 0 < v.epoch.onset_index < v.epoch.offset_index:
+        parts = [volts[: v.epoch.onset_index], volts[v.epoch.onset_index : v.epoch.offset_index]]
+    else:
+        parts = [volts]
+    out = []
+    for part in parts:
+        part = part[np.isfinite(part)]
+        if part.size:
+            out.append(float(np.median(part)) * 1e3)
+    return out
 
 
 def _draw_colourbar(fig: Figure, ax, views: list[_SweepView], cmap_name: str) -> None:
@@ -350,6 +362,9 @@ def _draw_colourbar(fig: Figure, ax, views: list[_SweepView], cmap_name: str) ->
     colours = cmap(np.linspace(0, 0.9, 256))
     sm = ScalarMappable(norm=norm, cmap=matplotlib.colors.ListedColormap(colours))
     bar = fig.colorbar(sm, ax=ax, pad=0.01, fraction=0.035)
+    steps = sorted({round(h * 1e12, 1) for h in hyper})
+    if len(steps) <= 10:
+        bar.set_ticks(steps, labels=[f"{x:.0f}" for x in steps])
     bar.set_label("step current (pA)", fontsize=8)
     bar.ax.tick_params(labelsize=7)
 
@@ -379,30 +394,37 @@ def _draw_iv(ax, views: list[_SweepView], cell_fit: CellFit | None) -> None:
     _draw_iv_fit(ax, points, cell_fit)
 
 
+def _iv_offset_v(points: list[_SweepView], intercept_v: float) -> float:
+    """The fit line's value at zero current on the ΔV axis.
+
+    ``iv_intercept_v`` is the membrane potential at zero step current (the fitter gives the
+    mean baseline of its sweeps); the plot shows deflections from each sweep's baseline, so the
+    line starts at the intercept minus the mean baseline of the sweeps used.
+    """
+    base = [v.fit.baseline_v for v in points if v.used and _finite(v.fit.baseline_v)]
+    if not base:
+        return intercept_v if abs(intercept_v) < 5e-3 else 0.0
+    return intercept_v - float(np.mean(base))
+
+
 def _draw_iv_fit(ax, points: list[_SweepView], cell_fit: CellFit | None) -> None:
-    if cell_fit is None or not (
-        _finite(cell_fit.iv_slope_ohm) and _finite(cell_fit.iv_intercept_v)
-    ):
-        ax.text(
-            0.03,
-            0.95,
-            "no I-V fit",
-            transform=ax.transAxes,
-            va="top",
-            fontsize=8,
-            color=MISSING_COLOUR,
-        )
+    f = cell_fit
+    if f is None or not (_finite(f.iv_slope_ohm) and _finite(f.iv_intercept_v)):
+        ax.text(0.03, 0.95, "no I-V fit", transform=ax.transAxes, va="top", color=MISSING_COLOUR)
         return
     xs = [v.step_a for v in points if v.used] or [v.step_a for v in points]
     x = np.linspace(min(min(xs), 0.0), max(max(xs), 0.0), 50)
-    b, slope = cell_fit.iv_intercept_v, cell_fit.iv_slope_ohm
-    label = f"fit: slope {slope / 1e6:.0f} MΩ"
-    lo, hi = cell_fit.rin_ci_ohm
-    if _finite(lo) and _finite(hi):
-        # band of lines through the fitted intercept with slopes across the 95% interval
-        y1, y2 = (b + lo * x) * 1e3, (b + hi * x) * 1e3
-        ax.fill_between(
-            x * 1e12, y1, y2, color=FIT_COLOUR, alpha=0.12, lw=0, label="95% interval of slope"
+    b, slope = _iv_offset_v(points, f.iv_intercept_v), f.iv_slope_ohm
+    lo, hi = f.rin_ci_ohm
+    if _finite(lo) and _finite(hi) and _finite(f.rin_ohm):
+        # the slope's 95% band: Rin's interval moved onto the slope (slope = Rin + bridge error)
+        y1 = (b + (slope + lo - f.rin_ohm) * x) * 1e3
+        y2 = (b + (slope + hi - f.rin_ohm) * x) * 1e3
+        ax.fill_between(x * 1e12, y1, y2, color=FIT_COLOUR, alpha=0.15, lw=0, label="95% interval")
+    label = f"steady-state fit: {slope / 1e6:.0f} MΩ"
+    if _finite(f.bridge_error_ohm) and f.bridge_error_ohm != 0 and _finite(f.rin_ohm):
+        label += (
+            f"\n(Rin {f.rin_ohm / 1e6:.0f} MΩ after {f.bridge_error_ohm / 1e6:.1f} MΩ bridge error)"
         )
     ax.plot(x * 1e12, (b + slope * x) * 1e3, color=FIT_COLOUR, lw=1.2, label=label)
     ax.scatter(
@@ -413,7 +435,7 @@ def _draw_iv_fit(ax, points: list[_SweepView], cell_fit: CellFit | None) -> None
         edgecolors=EXCLUDED_COLOUR,
         label="not used in the fit",
     )
-    ax.legend(fontsize=7, loc="upper left", framealpha=0.85)
+    ax.legend(fontsize=7, loc="best", framealpha=0.85)
 
 
 def _draw_residuals(ax, views: list[_SweepView]) -> None:
@@ -450,6 +472,7 @@ def _draw_residuals(ax, views: list[_SweepView]) -> None:
 def _draw_baselines(ax, views: list[_SweepView]) -> None:
     """Baseline of each sweep in recording order: drift and jumps at a glance."""
     ax.set_xlabel("sweep number")
+    ax.xaxis.set_major_locator(MaxNLocator(8, integer=True))
     ax.set_ylabel("baseline (mV)")
     _title(ax, "baseline before each step")
     sel = [v for v in views if v.fit is not None and _finite(v.fit.baseline_v)]
@@ -595,36 +618,69 @@ def _spike_fields(spikes: Any) -> tuple[Any, list[tuple[float, float]]]:
     return rheobase, sorted(points)
 
 
-def _draw_spikes(ax_sweep, ax_fi, views: list[_SweepView], spikes: Any, dpi: float, fig) -> None:
-    rheobase, points = _spike_fields(spikes)
-    ax_sweep.set_xlabel("time from sweep start (ms)")
-    ax_sweep.set_ylabel("membrane potential (mV)")
-    by_number = {v.number: v for v in views}
-    view = by_number.get(int(rheobase)) if _finite(rheobase) else None
-    if view is not None and view.sweep is not None:
-        t, y = envelope(
-            view.sweep.time() * 1e3, view.sweep.voltage * 1e3, _axis_columns(ax_sweep, fig, dpi)
+def _spike_marks(spikes: Any, sweep: int) -> list[Any]:
+    """Detected spikes of one sweep, if the result carries them (``sweeps[*].spikes``)."""
+    for r in getattr(spikes, "sweeps", None) or ():
+        if getattr(r, "sweep", None) == sweep:
+            return list(getattr(r, "spikes", None) or ())
+    return []
+
+
+def _draw_rheobase(ax, fig, views: list[_SweepView], spikes: Any, dpi: float) -> None:
+    rheobase, _ = _spike_fields(spikes)
+    ax.set_xlabel("time from sweep start (ms)")
+    ax.set_ylabel("membrane potential (mV)")
+    view = {v.number: v for v in views}.get(int(rheobase)) if _finite(rheobase) else None
+    if view is None or view.sweep is None:
+        _title(ax, "rheobase sweep")
+        why = getattr(spikes, "status", "ok")
+        _note(ax, "no sweep evoked a spike" if why == "ok" else f"no spiking values: {why}")
+        return
+    t, y = envelope(view.sweep.time() * 1e3, view.sweep.voltage * 1e3, _axis_columns(ax, fig, dpi))
+    ax.plot(t, y, color="black", lw=0.7)
+    marks = _spike_marks(spikes, view.number)
+    thr = [
+        (m.time_s * 1e3, m.threshold_v * 1e3)
+        for m in marks
+        if _finite(getattr(m, "threshold_v", None))
+    ]
+    if thr:
+        ax.plot(
+            *zip(*thr, strict=True),
+            ls="none",
+            marker="o",
+            ms=3.5,
+            color=PEAK_COLOUR,
+            label="threshold",
         )
-        ax_sweep.plot(t, y, color="black", lw=0.7)
-        step = f"{view.step_a * 1e12:.0f} pA" if _finite(view.step_a) else "step unknown"
-        _title(ax_sweep, f"rheobase sweep {view.number} ({step})")
-    else:
-        _title(ax_sweep, "rheobase sweep")
-        _note(
-            ax_sweep,
-            "no sweep evoked a spike"
-            if rheobase is None
-            else f"rheobase sweep {rheobase} not in the recording",
+        ax.legend(fontsize=7, loc="upper right", framealpha=0.85)
+    step = getattr(spikes, "rheobase_a", view.step_a)
+    step_text = f"{step * 1e12:.0f} pA" if _finite(step) else "step unknown"
+    _title(ax, f"rheobase sweep {view.number} ({step_text}), {len(marks)} spikes detected")
+
+
+def _draw_fi(ax, views: list[_SweepView], spikes: Any) -> None:
+    _, points = _spike_fields(spikes)
+    ax.set_xlabel("step current (pA)")
+    ax.set_ylabel("firing rate (Hz)")
+    if not points:
+        _title(ax, "f–I")
+        _note(ax, "no f–I points")
+        return
+    ax.plot([p[0] * 1e12 for p in points], [p[1] for p in points], "o-", color="black", ms=4, lw=1)
+    slope = getattr(spikes, "fi_slope_hz_per_a", math.nan)
+    intercept = getattr(spikes, "fi_intercept_hz", math.nan)
+    steps = {v.number: v.step_a for v in views}
+    fitted = [steps[n] for n in getattr(spikes, "fi_sweeps", ()) if _finite(steps.get(n))]
+    title = "f–I"
+    if _finite(slope) and _finite(intercept) and len(fitted) >= 2:
+        x = np.array([min(fitted), max(fitted)])
+        ax.plot(
+            x * 1e12, intercept + slope * x, color=FAIL_COLOUR, lw=1.2, ls="--", label="slope fit"
         )
-    ax_fi.set_xlabel("step current (pA)")
-    ax_fi.set_ylabel("firing rate (Hz)")
-    _title(ax_fi, "f–I")
-    if points:
-        ax_fi.plot(
-            [p[0] * 1e12 for p in points], [p[1] for p in points], "o-", color="black", ms=4, lw=1
-        )
-    else:
-        _note(ax_fi, "no f–I points")
+        ax.legend(fontsize=7, loc="lower right")
+        title += f": slope {slope * 1e-9:.0f} Hz/nA over {len(fitted)} steps"
+    _title(ax, title)
 
 
 def _layout(fig: Figure, with_spikes: bool) -> dict[str, Any]:
@@ -633,7 +689,7 @@ def _layout(fig: Figure, with_spikes: bool) -> dict[str, Any]:
     gs = fig.add_gridspec(
         rows, 3, width_ratios=[2.1, 1.25, 1.15], height_ratios=heights,
         left=0.055, right=0.99, top=0.93, bottom=0.07 if not with_spikes else 0.05,
-        wspace=0.28, hspace=0.42,
+        wspace=0.34, hspace=0.42,
     )  # fmt: skip
     axes = {
         "traces": fig.add_subplot(gs[0, 0]),
@@ -712,7 +768,8 @@ def cell_figure(
         _draw_baselines(axes["baseline"], views)
         _draw_text(axes["text"], fig, recording, cell_fit, verdict, views, cell_id)
         if spikes is not None:
-            _draw_spikes(axes["spike_sweep"], axes["fi"], views, spikes, cfg.dpi, fig)
+            _draw_rheobase(axes["spike_sweep"], fig, views, spikes, cfg.dpi)
+            _draw_fi(axes["fi"], views, spikes)
         with atomic_path(path) as tmp:
             fig.savefig(
                 tmp,
