@@ -369,7 +369,7 @@ def _locate(
             hidden, c = k == 0, c + k
             x, v_thr = float(c), float(v[c])
         else:
-            x = _interp_cross(dvdt, c, thr)
+            x = float(_interp_cross(dvdt, c, thr))
             v_thr = float(np.interp(x, (c - 1, c), v[c - 1 : c + 1]))
         amp = v[p] - v_thr
         if amp < s.min_amplitude_v or v[p] < s.min_peak_v:
@@ -391,17 +391,17 @@ def _shape(
     amp = float(v[f.peak] - f.v_thr)
     half = f.v_thr + amp / 2
     up = f.peak - int(np.flatnonzero(v[f.start - 1 : f.peak + 1][::-1] < half)[0])
-    width = (_interp_cross(v, f.down, half) - _interp_cross(v, up + 1, half)) * dt
+    width = float(_interp_cross(v, f.down, half) - _interp_cross(v, up + 1, half)) * dt
     unknown = NAN if f.hidden else 1.0  # threshold-based values of a hidden foot are NaN
     return Spike(
-        time_s=t0 + f.x * dt,
+        time_s=float(t0 + f.x * dt),
         threshold_v=f.v_thr * unknown,
         peak_v=float(v[f.peak]),
-        peak_time_s=t0 + f.peak * dt,
+        peak_time_s=float(t0 + f.peak * dt),
         amplitude_v=amp * unknown,
         width_s=width * unknown,
         ahp_v=float(f.v_thr - v[trough]) * unknown,
-        ahp_time_s=(trough - f.x) * dt,
+        ahp_time_s=float((trough - f.x) * dt),
         max_rise_v_per_s=float(raw[f.start - 1 : f.peak + 1].max()),
         max_fall_v_per_s=float(raw[f.peak : trough + 1].min()),
         in_step=in_step,
