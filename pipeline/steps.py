@@ -234,7 +234,7 @@ def _check_step(
 
 def _window_noise(current: np.ndarray, width: int) -> np.ndarray:
     """Robust RMS noise per window of ``width`` samples from second differences, A."""
-    d2 = np.abs(current[2:] - 2.0 * current[1:-1] + current[:-2])
+    d2 = np.abs(np.diff(current, 2))
     n_win = d2.size // width
     windows = np.sort(d2[: n_win * width].reshape(n_win, width), axis=1)  # faster than median
     return windows[:, width // 2] * _SIGMA_PER_MAD2
@@ -242,10 +242,14 @@ def _window_noise(current: np.ndarray, width: int) -> np.ndarray:
 
 def _level(part: np.ndarray, spread: float | None = None) -> float:
     """Level of a plateau, A: the median of at most ~1000 evenly spread samples (robust and
-    fast); with ``spread`` (A), refined by the mean of the samples within ``spread`` of it."""
+    fast); with ``spread`` (A), the plateau's mean instead (more precise), taken over the
+    samples within ``spread`` of the median when outliers pull the plain mean away."""
     level = float(np.median(part[:: 1 + part.size // 1024]))
     if spread is None:
         return level
+    mean = float(part.mean())
+    if abs(mean - level) <= spread / 20:  # no outliers: the usual case, and the fast one
+        return mean
     near = np.abs(part - level) <= spread
     return float(part.mean(where=near)) if near.any() else level
 
@@ -253,13 +257,15 @@ def _level(part: np.ndarray, spread: float | None = None) -> float:
 def _edges(d: np.ndarray, threshold: float) -> list[tuple[int, int]]:
     """Runs (start, stop) of the edge detector above half the threshold with one sign that
     peak above the threshold."""
-    sign = np.sign(d) * (np.abs(d) > 0.5 * threshold)
-    change = np.flatnonzero(np.diff(sign)) + 1
-    bounds = np.concatenate(([0], change, [d.size]))
+    idx = np.flatnonzero(np.abs(d) > 0.5 * threshold)
+    if idx.size == 0:
+        return []
+    rising = d[idx] > 0
+    breaks = np.flatnonzero((np.diff(idx) > 1) | (rising[1:] != rising[:-1])) + 1
     runs = []
-    for a, b in zip(bounds[:-1], bounds[1:], strict=True):
-        if sign[a] != 0 and np.abs(d[a:b]).max() > threshold:
-            runs.append((int(a), int(b)))
+    for part in np.split(np.arange(idx.size), breaks):
+        if np.abs(d[idx[part]]).max() > threshold:
+            runs.append((int(idx[part[0]]), int(idx[part[-1]]) + 1))
     return runs
 
 
@@ -296,7 +302,9 @@ def _from_current(sweep: Sweep, current: np.ndarray, settings: StepSettings) -> 
             noise_a=sigma,
         )
 
-    cum = np.concatenate(([0.0], np.cumsum(current)))
+    cum = np.empty(n + 1)
+    cum[0] = 0.0
+    np.cumsum(current, out=cum[1:])
     d = (cum[2 * k :] - 2.0 * cum[k:-k] + cum[: -2 * k]) / k  # mean after - mean before sample i+k
     threshold = max(settings.min_amplitude_a, 6.0 * sigma * math.sqrt(2.0 / k))
     runs = [(a + k, b + k) for a, b in _edges(d, threshold)]  # as sample indices
