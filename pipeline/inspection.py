@@ -29,14 +29,21 @@ COLUMNS = (
     "baseline_mv",
     "status",
 )
+
+
+def _fixed(decimals: int):
+    """Format with ``decimals`` decimals, never showing ``-0.0``."""
+    return lambda value: f"{round(value, decimals) + 0.0:.{decimals}f}"
+
+
 _FORMATS = {
     "rate_khz": "{:.4g}".format,
-    "duration_ms": "{:.1f}".format,
-    "holding_pa": "{:.1f}".format,
-    "onset_ms": "{:.2f}".format,
-    "step_ms": "{:.2f}".format,
-    "amplitude_pa": "{:.1f}".format,
-    "baseline_mv": "{:.2f}".format,
+    "duration_ms": _fixed(1),
+    "holding_pa": _fixed(1),
+    "onset_ms": _fixed(2),
+    "step_ms": _fixed(2),
+    "amplitude_pa": _fixed(1),
+    "baseline_mv": _fixed(2),
 }
 
 
