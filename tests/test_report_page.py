@@ -35,6 +35,7 @@ def fake_cells(n: int = 9, seed: int = 4, condition: bool = True):
             "qc_pass": k not in (1, 2),
             "qc_reasons": "Vrest -41 mV above -50 mV" if k == 1 else "",
             "status": "error: no usable sweep" if k == 2 else "ok",
+            "qc_flags": "tau from 2 sweeps only" if k == 4 else "",
         }
         if condition:
             row["condition"] = "control" if k % 2 else "drug"
@@ -131,6 +132,9 @@ def test_every_cell_in_table_and_marked(page_text):
     assert re.search(r'<tr class="error" data-cell-id="cell02"', page_text)
     assert "Vrest -41 mV above -50 mV" in page_text and "error: no usable sweep" in page_text
     assert page_text.count('class="badge pass"') == len(cells) - 2
+    # reasons and flags are shown under the verdict, not as separate columns
+    assert "flagged: tau from 2 sweeps only" in page_text
+    assert ">qc_reasons</th>" not in page_text and ">qc_flags</th>" not in page_text
 
 
 def test_caution_errors_config_counts(page_text):
@@ -156,6 +160,14 @@ def test_figure_links_are_relative_and_quoted(tmp_path):
     assert "figures/a%20b.png" in refs
     assert all(":" not in r and not r.startswith(("/", "..")) for r in refs), refs
     assert "../outside.png" not in text
+
+
+def test_number_display():
+    from pipeline.report.page import _display
+
+    assert [_display(v) for v in (-68.2345, 152.04, 0.000634, 7.4e-05, 12345.6, np.nan, True)] == [
+        "-68.23", "152", "0.000634", "7.400e-05", "12346", "—", "true"
+    ]  # fmt: skip
 
 
 def _png_size(png: bytes) -> tuple[int, int]:

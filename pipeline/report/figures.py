@@ -509,9 +509,11 @@ def _fmt_ci(value: float, ci: tuple[float, float], scale: float, unit: str) -> s
     return text
 
 
-def _property_lines(cell_fit: CellFit | None, views: list[_SweepView]) -> list[str]:
+def _property_lines(
+    cell_fit: CellFit | None, views: list[_SweepView], spikes: Any = None
+) -> list[str]:
     if cell_fit is None:
-        return ["no passive fit for this cell"]
+        return ["no passive fit for this cell", *_spiking_lines(spikes)]
     f = cell_fit
     sag = f"{f.sag_ratio:.2f}" if _finite(f.sag_ratio) else "not measured"
     if _finite(f.sag_ratio) and _finite(f.sag_step_a):
@@ -525,8 +527,26 @@ def _property_lines(cell_fit: CellFit | None, views: list[_SweepView]) -> list[s
         f"rebound    {_fmt(f.rebound_v, 1e3, 'mV')}",
         f"bridge err {_fmt(f.bridge_error_ohm, 1e-6, 'MΩ')}",
         f"sweeps     {len(f.used)} used of {len(views)}",
+        *_spiking_lines(spikes),
         "[ ] = 95% interval",
     ]  # fmt: skip
+
+
+def _spiking_lines(spikes: Any) -> list[str]:
+    """Rheobase, rates and first-spike shape from a spiking result (duck-typed), if given."""
+    if spikes is None:
+        return []
+    rheo, sweep = getattr(spikes, "rheobase_a", math.nan), getattr(spikes, "rheobase_sweep", None)
+    lines = [
+        f"rheobase   {_fmt(rheo, 1e12, 'pA')}" + (f" (sweep {sweep})" if sweep is not None else "")
+    ]
+    lines.append(f"max rate   {_fmt(getattr(spikes, 'max_rate_hz', math.nan), 1, 'Hz')}")
+    first = getattr(spikes, "first_spike", None)
+    if first is not None:
+        thr = _fmt(getattr(first, "threshold_v", math.nan), 1e3, "mV")
+        width = _fmt(getattr(first, "width_s", math.nan), 1e3, "ms", 2)
+        lines += [f"1st spike  threshold {thr}", f"           width {width}"]
+    return lines
 
 
 def _wrapped(items: Iterable[str], width: int, limit: int) -> list[str]:
@@ -576,7 +596,7 @@ class _TextColumn:
         return max(int(self.y * self.height_pt / (1.2 * size)), 0)
 
 
-def _draw_text(ax, fig, recording, cell_fit, verdict, views, cell_id: str) -> None:
+def _draw_text(ax, fig, recording, cell_fit, verdict, views, cell_id: str, spikes: Any) -> None:
     ax.axis("off")
     col = _TextColumn(ax, fig)
     header = textwrap.wrap(f"cell {cell_id}", 44)
@@ -586,7 +606,7 @@ def _draw_text(ax, fig, recording, cell_fit, verdict, views, cell_id: str) -> No
     status = cell_fit.status if cell_fit is not None else "no passive results"
     if status != "ok":
         col.add(textwrap.wrap(f"status: {status}", 44), 8.5, family="monospace", color=FAIL_COLOUR)
-    col.add(_property_lines(cell_fit, views), 8.5, gap=1.0, family="monospace")
+    col.add(_property_lines(cell_fit, views, spikes), 8.5, gap=1.0, family="monospace")
     passed = verdict is not None and verdict.qc_pass and status == "ok"
     word = "QC PASS" if passed else ("QC FAIL" if verdict is not None else "QC: no verdict")
     col.add([word], 13, gap=0.4, weight="bold", color=PASS_COLOUR if passed else FAIL_COLOUR)
@@ -668,6 +688,7 @@ def _draw_fi(ax, views: list[_SweepView], spikes: Any) -> None:
         _note(ax, "no f–I points")
         return
     ax.plot([p[0] * 1e12 for p in points], [p[1] for p in points], "o-", color="black", ms=4, lw=1)
+    ax.set_ylim(0, max(max(p[1] for p in points) * 1.08, 5.0))  # rates start at 0 Hz
     slope = getattr(spikes, "fi_slope_hz_per_a", math.nan)
     intercept = getattr(spikes, "fi_intercept_hz", math.nan)
     steps = {v.number: v.step_a for v in views}
@@ -766,7 +787,7 @@ def cell_figure(
         _draw_iv(axes["iv"], views, cell_fit)
         _draw_residuals(axes["resid"], views)
         _draw_baselines(axes["baseline"], views)
-        _draw_text(axes["text"], fig, recording, cell_fit, verdict, views, cell_id)
+        _draw_text(axes["text"], fig, recording, cell_fit, verdict, views, cell_id, spikes)
         if spikes is not None:
             _draw_rheobase(axes["spike_sweep"], fig, views, spikes, cfg.dpi)
             _draw_fi(axes["fi"], views, spikes)

@@ -70,7 +70,7 @@ def _display(value: Any) -> str:
     if isinstance(value, bool | np.bool_):
         return "true" if value else "false"
     if isinstance(value, float | np.floating):
-        if value != 0 and (abs(value) >= 1e5 or abs(value) < 1e-3):
+        if value != 0 and (abs(value) >= 1e5 or abs(value) < 1e-4):
             return f"{value:.3e}"
         return f"{value:.4g}" if abs(value) < 1000 else f"{value:.0f}"
     return str(value)
@@ -107,16 +107,19 @@ def _display_columns(cells: pd.DataFrame, first: Sequence[str]) -> list[str]:
     """cell id, QC, then ``first`` (group, main properties), then the rest in table order."""
     lead = ["cell_id", "qc_pass", *first]
     cols = [c for c in dict.fromkeys(lead) if c in cells.columns]
-    return cols + [c for c in cells.columns if c not in cols and c != "qc_reasons"]
+    shown_with_qc = ("qc_reasons", "qc_flags")
+    return cols + [c for c in cells.columns if c not in cols and c not in shown_with_qc]
 
 
-def _qc_text(record: Mapping[str, Any], state: str) -> str:
-    """The reasons shown under the verdict: QC reasons, or the error for cells not analysed."""
+def _qc_text(record: Mapping[str, Any], state: str) -> tuple[str, str]:
+    """What is shown under the verdict: the reasons (QC, or the error of a cell not analysed)
+    and the flags (rules that only flag; the cell still passes)."""
     parts = [record.get("qc_reasons")]
     if state == "error":
         parts.append(record.get("status"))
     seen = dict.fromkeys(str(p) for p in parts if not _missing(p) and str(p))
-    return "; ".join(seen)
+    flags = record.get("qc_flags")
+    return "; ".join(seen), "" if _missing(flags) else str(flags)
 
 
 def _table(cells: pd.DataFrame, figures: Mapping[str, str], first: Sequence[str]) -> dict[str, Any]:
@@ -135,14 +138,9 @@ def _table(cells: pd.DataFrame, figures: Mapping[str, str], first: Sequence[str]
             v = record[c]
             if c == "qc_pass":
                 label = {"pass": "PASS", "fail": "FAIL", "error": "ERROR"}[state]
-                values.append(
-                    {
-                        "kind": "qc",
-                        "text": label,
-                        "key": rank[state],
-                        "note": _qc_text(record, state),
-                    }
-                )
+                why, flags = _qc_text(record, state)
+                qc = {"kind": "qc", "text": label, "key": rank[state], "note": why, "flags": flags}
+                values.append(qc)
             else:
                 kind = "num" if numeric[c] else ("wrap" if c == "status" else "text")
                 values.append({"kind": kind, "text": _display(v), "key": _sort_key(v, numeric[c])})
@@ -266,7 +264,8 @@ def _counts(cells: pd.DataFrame, run_info: Mapping[str, Any]) -> dict[str, Any]:
         "not analysed": states.count("error"),
     }
     for key, value in (run_info.get("counts") or {}).items():
-        counts.setdefault(str(key).replace("_", " "), value)
+        if key not in ("cells", "cells_pass"):  # already counted from the table itself
+            counts.setdefault(str(key).replace("_", " "), value)
     return counts
 
 
