@@ -101,9 +101,13 @@ def _analyse(
 
     t0 = time.perf_counter()
     excluded = {e.sweep: f"not a usable step: {e.reason}" for e in epochs if not e.usable}
-    excluded.update(qc.sweep_exclusions(config.qc.for_scope("sweep"), sweep_rows))
+    by_qc = qc.sweep_exclusions(config.qc.for_scope("sweep"), sweep_rows)
+    excluded.update(by_qc)
     cell_fit = summarize_cell(recording.cell_id, fits, config.passive, exclude=excluded)
-    spikes = fit_spiking(recording, epochs, config.spikes, exclude=excluded)
+    # The fitters already skip unusable steps; re-fit spiking only when QC left sweeps out.
+    spikes = (
+        fit_spiking(recording, epochs, config.spikes, exclude=excluded) if by_qc else spikes_all
+    )
     for row in sweep_rows:
         reason = excluded.get(row["sweep"], "")
         row["used"] = not reason

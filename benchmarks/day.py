@@ -1,0 +1,247 @@
+"""Benchmark: a day's batch at full speed (a benchmark, not a test).
+
+Generates a day of 40 cells x 15 sweeps x 1.5 s at 20 kHz as NWB files (simulated: passive,
+Ih and spiking cells with rig noise), then times whole processes, as a user would run them:
+
+* the floor: reading every sample of every file with plain h5py;
+* a straightforward script: pynwb read, scipy ``curve_fit`` per sweep from step onset to step
+  end, ΔV/I, no parallelism;
+* ``patchbatch run`` tables only with ``-j 1``; the full run (figures and page) with ``-j 1`` and
+  ``-j 2``; a re-run over unchanged inputs;
+* peak memory per worker for 40 and for 400 cells.
+
+It prints the time in each stage (from run.json), cells per second, and PASS/MISS for each
+target. Run: ``python benchmarks/day.py [--cells 40] [--skip-400] [--keep DIR]``.
+"""
+
+from __future__ import annotations
+
+import argparse
+import json
+import os
+import resource
+import subprocess
+import sys
+import tempfile
+import textwrap
+import time
+from pathlib import Path
+
+ROOT = Path(__file__).resolve().parents[1]
+sys.path.insert(0, str(ROOT))
+
+from pipeline.simulate import (  # noqa: E402
+    CellModel,
+    IhChannel,
+    Nuisance,
+    SpikingChannels,
+    StepProtocol,
+    simulate_cell,
+)
+from pipeline.writers import write_nwb  # noqa: E402
+
+PROTOCOL = StepProtocol(
+    rate_hz=20_000.0,
+    sweep_s=1.5,
+    onset_s=0.2,
+    step_s=1.0,
+    amplitudes_a=tuple(a * 1e-12 for a in range(-100, 181, 20)),  # 15 sweeps
+)
+RIG = Nuisance(noise_rms_v=0.2e-3, hum_rms_v=0.1e-3, bridge_error_ohm=8e6, electrode_tau_s=40e-6)
+
+
+def make_day(folder: Path, n_cells: int, *, passive_only: bool = False) -> None:
+    """Write ``n_cells`` NWB files (one cell each) into ``folder``."""
+    folder.mkdir(parents=True, exist_ok=True)
+    for i in range(n_cells):
+        kind = 0 if passive_only else i % 3
+        model = CellModel(
+            soma_area_m2=(8000 + 150 * (i % 20)) * 1e-12,
+            rm_ohm_m2=1.5 + 0.05 * (i % 10),
+            ih=IhChannel(g_s_per_m2=0.5) if kind >= 1 else None,
+            spiking=SpikingChannels() if kind == 2 else None,
+        )
+        path = folder / f"cell{i:03d}.nwb"
+        rec = simulate_cell(model, PROTOCOL, RIG, seed=i, cell_id=path.stem, source_file=str(path))
+        write_nwb([rec], path, identifier=f"bench-{i}", subject_id="bench")
+
+
+H5PY_FLOOR = textwrap.dedent(
+    """
+    import sys, h5py
+    from pathlib import Path
+    total = 0
+    for path in sorted(Path(sys.argv[1]).glob("*.nwb")):
+        with h5py.File(path, "r") as f:
+            def visit(name, obj):
+                global total
+                if isinstance(obj, h5py.Dataset) and name.endswith("/data"):
+                    total += obj[()].size
+            f.visititems(visit)
+    print(total)
+    """
+)
+
+STRAIGHTFORWARD = textwrap.dedent(
+    """
+    import sys
+    from pathlib import Path
+    import numpy as np
+    from pynwb import NWBHDF5IO
+    from scipy.optimize import curve_fit
+
+    def exp(t, v_inf, amp, tau):
+        return v_inf + amp * np.exp(-t / tau)
+
+    rows = []
+    for path in sorted(Path(sys.argv[1]).glob("*.nwb")):
+        with NWBHDF5IO(str(path), "r") as io:
+            nwb = io.read()
+            responses = {s.sweep_number: s for s in nwb.acquisition.values()}
+            stimuli = {s.sweep_number: s for s in nwb.stimulus.values()}
+            for number, resp in responses.items():
+                v = resp.data[:] * resp.conversion
+                i = stimuli[number].data[:] * stimuli[number].conversion
+                rate = resp.rate
+                step = np.flatnonzero(np.abs(i - i[0]) > 1e-12)
+                if step.size == 0:
+                    continue
+                on, off = step[0], step[-1] + 1
+                amp_i = np.median(i[on:off]) - i[0]
+                base = v[:on].mean()
+                t = np.arange(off - on) / rate
+                try:
+                    p, _ = curve_fit(exp, t, v[on:off], p0=(v[off - 1], base - v[off - 1], 0.02))
+                except RuntimeError:
+                    continue
+                rows.append((path.stem, number, (v[off - 100:off].mean() - base) / amp_i, p[2]))
+    print(len(rows))
+    """
+)
+
+
+def timed(cmd: list[str], **kwargs) -> tuple[float, int]:
+    """Wall time of a whole process and the peak RSS (kB) of it or any of its workers."""
+    probe = textwrap.dedent(
+        """
+        import resource, subprocess, sys, time
+        t = time.perf_counter()
+        subprocess.run(sys.argv[1:], check=True, stdout=subprocess.DEVNULL)
+        dt = time.perf_counter() - t
+        print(dt, resource.getrusage(resource.RUSAGE_CHILDREN).ru_maxrss)
+        """
+    )
+    out = subprocess.run(
+        [sys.executable, "-c", probe, *cmd], check=True, capture_output=True, text=True, **kwargs
+    ).stdout.split()
+    return float(out[0]), int(out[1])
+
+
+def patchbatch(day: Path, out: Path, *args: str) -> list[str]:
+    return [sys.executable, "-m", "pipeline", "run", str(day), "-o", str(out), "-q", *args]
+
+
+def stage_times(out: Path) -> dict[str, float]:
+    return json.loads((out / "run.json").read_text())["seconds"]
+
+
+def verdict(ok: bool) -> str:
+    return "PASS" if ok else "MISS"
+
+
+def main() -> int:
+    parser = argparse.ArgumentParser(description=__doc__.splitlines()[0])
+    parser.add_argument("--cells", type=int, default=40)
+    parser.add_argument("--skip-400", action="store_true", help="skip the 400-cell memory run")
+    parser.add_argument("--keep", help="folder for the generated days (reused when present)")
+    args = parser.parse_args()
+    base = Path(args.keep) if args.keep else Path(tempfile.mkdtemp(prefix="patchbatch-bench-"))
+    day = base / f"day{args.cells}"
+    if not day.exists():
+        t0 = time.perf_counter()
+        make_day(day, args.cells)
+        print(f"generated {args.cells} cells in {time.perf_counter() - t0:.1f} s -> {day}")
+    n = args.cells
+    env = {**os.environ, "PYTHONPATH": str(ROOT)}
+    results: dict[str, tuple[float, int]] = {}
+    results["h5py floor"] = timed([sys.executable, "-c", H5PY_FLOOR, str(day)], env=env)
+    results["straightforward script"] = timed(
+        [sys.executable, "-c", STRAIGHTFORWARD, str(day)], env=env
+    )
+    runs = {
+        "tables only -j 1": (base / "out-t1", ["-j", "1", "--no-figures"]),
+        "full -j 1": (base / "out-f1", ["-j", "1"]),
+        "full -j 2": (base / "out-f2", ["-j", "2"]),
+    }
+    for label, (out, extra) in runs.items():
+        results[label] = timed(patchbatch(day, out, "--force", *extra), env=env)
+    results["re-run unchanged -j 2"] = timed(patchbatch(day, base / "out-f2", "-j", "2"), env=env)
+
+    print(
+        f"\n{n} cells x {len(PROTOCOL.amplitudes_a)} sweeps x {PROTOCOL.sweep_s} s at "
+        f"{PROTOCOL.rate_hz / 1e3:g} kHz; whole processes, imports included"
+    )
+    print(f"{'run':28s} {'seconds':>8s} {'s/cell':>8s} {'cells/s':>8s} {'peak MB':>8s}")
+    for label, (secs, rss) in results.items():
+        print(f"{label:28s} {secs:8.2f} {secs / n:8.3f} {n / secs:8.1f} {rss / 1024:8.0f}")
+
+    print("\ntime in each stage (summed over workers, s), full -j 1:")
+    for stage, secs in stage_times(base / "out-f1").items():
+        print(f"  {stage:10s} {secs:7.2f}  ({1e3 * secs / n:6.1f} ms/cell)")
+
+    floor = results["h5py floor"][0]
+    script = results["straightforward script"][0]
+    tables = results["tables only -j 1"][0]
+    full1, full2 = results["full -j 1"][0], results["full -j 2"][0]
+    rerun = results["re-run unchanged -j 2"][0]
+    rss40 = max(results["full -j 1"][1], results["full -j 2"][1]) / 1024
+    print("\ntargets:")
+    print(
+        f"  tables-only -j 1 >= 5x faster than the script: {script / tables:5.1f}x  "
+        f"{verdict(script / tables >= 5)}"
+    )
+    print(
+        f"  tables-only -j 1 within 10x of the h5py floor: {tables / floor:5.1f}x  "
+        f"{verdict(tables / floor <= 10)}"
+    )
+    print(
+        f"  full -j 2 >= 1.5x faster than -j 1:            {full1 / full2:5.2f}x  "
+        f"{verdict(full1 / full2 >= 1.5)}"
+    )
+    print(
+        f"  full -j 1 under 0.3 s per cell:                {full1 / n:5.3f} s  "
+        f"{verdict(full1 / n < 0.3)}"
+    )
+    print(
+        f"  re-run >= 5x faster than the first run:        {full2 / rerun:5.1f}x  "
+        f"{verdict(full2 / rerun >= 5)}"
+    )
+    print(
+        f"  peak memory per worker < 400 MB ({n} cells):    {rss40:5.0f} MB  {verdict(rss40 < 400)}"
+    )
+    if not args.skip_400:
+        big = base / "day400"
+        if not big.exists():
+            make_day(big, 400, passive_only=True)
+        small = base / "day40p"
+        if not small.exists():
+            make_day(small, 40, passive_only=True)
+        mem = {}
+        for label, folder in (("40", small), ("400", big)):
+            out = base / f"out-mem{label}"
+            mem[label] = (
+                timed(patchbatch(folder, out, "--force", "-j", "2", "--no-figures"), env=env)[1]
+                / 1024
+            )
+        same = abs(mem["400"] - mem["40"]) <= 0.15 * mem["40"]
+        print(
+            f"  peak memory per worker, 40 vs 400 cells:      {mem['40']:.0f} vs "
+            f"{mem['400']:.0f} MB  {verdict(same and mem['400'] < 400)}"
+        )
+    print(f"\n(outputs in {base})")
+    return 0
+
+
+if __name__ == "__main__":
+    resource.setrlimit(resource.RLIMIT_CORE, (0, 0))
+    sys.exit(main())

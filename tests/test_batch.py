@@ -1,0 +1,145 @@
+"""The day's batch: executors agree, the cache is used, runs resume, the sheet joins, exit codes."""
+
+from __future__ import annotations
+
+import json
+import shutil
+
+import pandas as pd
+import pytest
+from day_factory import write_day
+
+from pipeline import cache, cli
+from pipeline.batch import OutputFolderError, run_batch
+
+
+@pytest.fixture(scope="module")
+def day(tmp_path_factory):
+    folder = tmp_path_factory.mktemp("day")
+    write_day(folder, 3)
+    return folder
+
+
+def _cells(out):
+    return pd.read_csv(out / "cells.csv")
+
+
+def test_run_writes_every_output_and_joins_the_sheet(day, tmp_path):
+    out = tmp_path / "out"
+    result = run_batch([day], out=out, workers=1, progress=False)
+    assert result.exit_status == 0
+    for name in (
+        "cells.csv",
+        "cells.parquet",
+        "sweeps.csv",
+        "spikes.csv",
+        "index.html",
+        "run.json",
+        "patchbatch.log",
+    ):
+        assert (out / name).is_file(), name
+    cells = _cells(out)
+    assert list(cells["cell_id"]) == ["c00", "c01", "c02"]
+    assert list(cells["condition"]) == ["ctrl", "drug", "ctrl"]
+    assert cells["status"].eq("ok").all()
+    # The depolarized cell (leak -45 mV) fails on its resting potential, with the reason.
+    by_id = cells.set_index("cell_id")
+    assert not by_id.loc["c02", "qc_pass"]
+    assert "resting potential" in by_id.loc["c02", "qc_reasons"]
+    assert by_id.loc["c00", "qc_pass"], by_id.loc["c00", "qc_reasons"]
+    assert (out / "figures" / "c00.png").stat().st_size > 10_000
+    info = json.loads((out / "run.json").read_text())
+    assert info["counts"]["cells"] == 3 and len(info["inputs"]) == 3
+    assert all(len(i["sha256"]) == 64 for i in info["inputs"])
+    assert info["warnings"] == []
+
+
+def test_pool_and_dask_give_identical_tables(day, tmp_path):
+    pytest.importorskip("distributed")
+    one = tmp_path / "one"
+    two = tmp_path / "two"
+    dask = tmp_path / "dask"
+    run_batch([day], out=one, workers=1, figures=False, progress=False)
+    run_batch([day], out=two, workers=2, figures=False, progress=False)
+    run_batch([day], out=dask, workers=2, scheduler="local", figures=False, progress=False)
+    for name in ("cells.csv", "sweeps.csv", "spikes.csv"):
+        reference = (one / name).read_bytes()
+        assert (two / name).read_bytes() == reference, name
+        assert (dask / name).read_bytes() == reference, name
+
+
+def test_second_run_uses_the_cache_and_writes_identical_tables(day, tmp_path, monkeypatch):
+    out = tmp_path / "out"
+    run_batch([day], out=out, workers=1, figures=False, progress=False)
+    first = {n: (out / n).read_bytes() for n in ("cells.csv", "sweeps.csv")}
+
+    def boom(*args, **kwargs):
+        raise AssertionError("re-analysed a cached file")
+
+    monkeypatch.setattr("pipeline.batch.analyse_file", boom)
+    result = run_batch([day], out=out, workers=1, figures=False, progress=False)
+    assert result.info["counts"]["cached"] == 3 and result.info["counts"]["analysed"] == 0
+    for name, data in first.items():
+        assert (out / name).read_bytes() == data
+
+
+def test_killed_run_resumes_from_what_was_cached(day, tmp_path, monkeypatch):
+    out = tmp_path / "out"
+    from pipeline import analysis
+
+    real = analysis.analyse_file
+    calls = []
+
+    def dies_on_third(path, config, figure_dir=None):
+        calls.append(path)
+        if len(calls) == 3:
+            raise KeyboardInterrupt  # the user pressed Ctrl-C (or the machine went down)
+        return real(path, config, figure_dir)
+
+    monkeypatch.setattr("pipeline.batch.analyse_file", dies_on_third)
+    with pytest.raises(KeyboardInterrupt):
+        run_batch([day], out=out, workers=1, figures=False, progress=False)
+    assert len(list((out / cache.CACHE_DIR).glob("*.json"))) == 2
+    assert not (out / "cells.csv").exists()
+    monkeypatch.setattr("pipeline.batch.analyse_file", real)
+    result = run_batch([day], out=out, workers=1, figures=False, progress=False)
+    assert result.info["counts"]["cached"] == 2 and result.info["counts"]["analysed"] == 1
+    assert len(_cells(out)) == 3
+
+
+def test_changed_config_needs_force(day, tmp_path):
+    out = tmp_path / "out"
+    run_batch([day], out=out, workers=1, figures=False, progress=False)
+    lab = tmp_path / "lab.toml"
+    lab.write_text("[passive]\nss_window_s = 0.1\n")
+    with pytest.raises(OutputFolderError, match="other inputs or another config"):
+        run_batch([day], config=lab, out=out, workers=1, figures=False, progress=False)
+    result = run_batch(
+        [day], config=lab, out=out, workers=1, figures=False, force=True, progress=False
+    )
+    assert result.info["counts"]["analysed"] == 3
+
+
+def test_sheet_mismatches_are_reported(day, tmp_path):
+    folder = tmp_path / "day"
+    shutil.copytree(day, folder)
+    (folder / "metadata.csv").write_text("file,condition\nc00.nwb,ctrl\nghost.nwb,drug\n")
+    result = run_batch([folder], out=tmp_path / "out", workers=1, figures=False, progress=False)
+    warnings = result.info["warnings"]
+    assert any("no row for cell c01" in w for w in warnings)
+    assert any("ghost.nwb" in w and "matches no input file" in w for w in warnings)
+    assert result.exit_status == 0
+
+
+def test_unreadable_file_is_a_row_and_exit_1(day, tmp_path, capsys):
+    folder = tmp_path / "day"
+    shutil.copytree(day, folder)
+    (folder / "broken.nwb").write_bytes(b"not an hdf5 file at all")
+    out = tmp_path / "out"
+    status = cli.main(["run", str(folder), "-o", str(out), "-j", "1", "--no-figures", "-q"])
+    assert status == 1
+    cells = _cells(out).set_index("cell_id")
+    assert "broken.nwb" in cells.loc["broken", "status"]
+    assert not cells.loc["broken", "qc_pass"]
+    assert (cells.drop(index="broken")["status"] == "ok").all()
+    assert "Traceback" not in capsys.readouterr().err
