@@ -563,6 +563,57 @@ def _first_order(x: np.ndarray, rate: float, tau: float) -> np.ndarray:
     return y
 
 
+def _positive(**values: float) -> None:
+    for name, value in values.items():
+        if not (math.isfinite(value) and value > 0):
+            raise ValueError(f"{name} must be a positive number, got {value!r}")
+
+
+def _non_negative(**values: float) -> None:
+    for name, value in values.items():
+        if not (math.isfinite(value) and value >= 0):
+            raise ValueError(f"{name} must be zero or positive, got {value!r}")
+
+
+def validate(cell: CellModel, protocol: StepProtocol, nuisance: Nuisance) -> None:
+    """Check a simulation's inputs; raise ValueError naming the first bad parameter."""
+    _positive(
+        soma_area=cell.soma_area,
+        rm_ohm_m2=cell.rm_ohm_m2,
+        cm_f_per_m2=cell.cm_f_per_m2,
+        rate_hz=protocol.rate_hz,
+        sweep_s=protocol.sweep_s,
+        step_s=protocol.step_s,
+    )
+    if cell.dendrite is not None:
+        den = cell.dendrite
+        _positive(length_m=den.length_m, diameter_m=den.diameter_m, ri_ohm_m=den.ri_ohm_m)
+        if den.n_compartments < 1:
+            raise ValueError(f"n_compartments must be at least 1, got {den.n_compartments}")
+    if cell.ih is not None:
+        _positive(slope_v=cell.ih.slope_v, tau_s=cell.ih.tau_s)
+        _non_negative(g_s_per_m2=cell.ih.g_s_per_m2)
+    _non_negative(onset_s=protocol.onset_s, interval_s=protocol.interval_s)
+    if protocol.onset_index >= protocol.n_samples:
+        raise ValueError(
+            f"onset_s ({protocol.onset_s} s) must fall inside the sweep ({protocol.sweep_s} s)"
+        )
+    if not protocol.amplitudes_a or not all(map(math.isfinite, protocol.amplitudes_a)):
+        raise ValueError(
+            f"amplitudes_a must be one or more finite currents, got {protocol.amplitudes_a!r}"
+        )
+    _non_negative(
+        noise_rms_v=nuisance.noise_rms_v,
+        hum_rms_v=nuisance.hum_rms_v,
+        hum_hz=nuisance.hum_hz,
+        bridge_error_ohm=nuisance.bridge_error_ohm,
+        electrode_tau_s=nuisance.electrode_tau_s,
+        current_noise_a=nuisance.current_noise_a,
+        current_tau_s=nuisance.current_tau_s,
+        nan_run_s=nuisance.nan_run_s,
+    )
+
+
 def simulate_cell(
     cell: CellModel,
     protocol: StepProtocol,
@@ -592,7 +643,13 @@ def simulate_cell(
     Recording
         Voltage in V, current in A (or None), one sweep per amplitude, numbered from 0, with
         ``start_time = index * interval_s``.
+
+    Raises
+    ------
+    ValueError
+        For a parameter out of range (the message names it).
     """
+    validate(cell, protocol, nuisance)
     rng = np.random.default_rng(seed)
     rate, n = protocol.rate_hz, protocol.n_samples
     vm = _passive_voltage(cell, protocol) if cell.is_linear else _integrate(cell, protocol)
@@ -637,3 +694,55 @@ def simulate_cell(
     )
     metadata = {"simulated": "true", "seed": str(seed)}
     return Recording(cell_id, source_file, "e0", sweeps, metadata)
+
+
+def first_spike_current(
+    cell: CellModel,
+    *,
+    step_s: float = 1.0,
+    rate_hz: float = 20_000.0,
+    max_a: float = 1e-9,
+    resolution_a: float = 1e-12,
+    spike_v: float = -0.01,
+) -> float:
+    """Smallest step current from rest that evokes a spike (the model's rheobase), A.
+
+    Found by successive grids of 16 steps (all sweeps simulated together) until the bracket
+    is narrower than ``resolution_a``; a spike is an upward crossing of ``spike_v`` (V).
+
+    Parameters
+    ----------
+    cell : CellModel
+        A cell with ``spiking`` channels.
+    step_s, rate_hz : float
+        Step length (s) and integration rate (Hz); match the protocol whose rheobase you need.
+    max_a, resolution_a : float
+        Largest current tried and bracket width at which to stop, A.
+    spike_v : float
+        Spike detection level, V.
+
+    Returns
+    -------
+    float
+        The upper end of the final bracket, A (within ``resolution_a`` above the true value);
+        NaN when no step up to ``max_a`` fires.
+    """
+    if cell.spiking is None:
+        return math.nan
+    lo, hi = 0.0, max_a
+    while hi - lo > resolution_a:
+        amps = np.linspace(lo, hi, 17)[1:]
+        proto = StepProtocol(
+            rate_hz=rate_hz,
+            sweep_s=0.05 + step_s,
+            onset_s=0.05,
+            step_s=step_s,
+            amplitudes_a=tuple(amps),
+        )
+        v = _integrate(cell, proto)
+        fired = ((v[:, 1:] >= spike_v) & (v[:, :-1] < spike_v)).any(axis=1)
+        if not fired.any():
+            return math.nan
+        first = int(np.argmax(fired))
+        lo, hi = (amps[first - 1] if first else lo), amps[first]
+    return float(hi)

@@ -164,10 +164,14 @@ def find_step(sweep: Sweep, settings: StepSettings, index: int = 0) -> StepEpoch
     finite = np.isfinite(current)
     if not finite.any():
         return _unusable(sweep, "no current", "the stored current is all NaN")
-    if not finite.all():
-        idx = np.arange(current.size)
-        current = np.interp(idx, idx[finite], current[finite])
-    return _from_current(sweep, current, settings)
+    if finite.all():
+        return _from_current(sweep, current, settings)
+    idx = np.arange(current.size)
+    epoch = _from_current(sweep, np.interp(idx, idx[finite], current[finite]), settings)
+    if epoch.usable:
+        return epoch
+    gaps = f" (the current's {current.size - int(finite.sum())} NaN samples were bridged)"
+    return replace(epoch, reason=epoch.reason + gaps)
 
 
 def _unusable(sweep: Sweep, kind: str, reason: str, **values: float) -> StepEpoch:

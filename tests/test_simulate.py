@@ -226,3 +226,30 @@ def test_seeds_give_identical_output() -> None:
     (va, ca), (vb, cb), (vc, _) = run(1), run(1), run(2)
     assert np.array_equal(va, vb, equal_nan=True) and np.array_equal(ca, cb)
     assert not np.array_equal(va, vc, equal_nan=True)
+
+
+def test_first_spike_current_brackets_the_threshold() -> None:
+    rheobase = sm.first_spike_current(SPIKING, step_s=0.3, resolution_a=2e-12)
+    assert 10e-12 < rheobase < 200e-12  # a few tens of pA, as for small cortical cells
+    proto = sm.StepProtocol(
+        sweep_s=0.35, onset_s=0.05, step_s=0.3, amplitudes_a=(rheobase - 2e-12, rheobase)
+    )
+    v = _voltages(sm.simulate_cell(SPIKING, proto, CLEAN, seed=0, cell_id="rb"))
+    fired = ((v[:, 1:] >= -0.01) & (v[:, :-1] < -0.01)).any(axis=1)
+    assert fired.tolist() == [False, True]
+    assert np.isnan(sm.first_spike_current(sm.CellModel()))
+
+
+@pytest.mark.parametrize(
+    ("cell", "protocol", "nuisance", "words"),
+    [
+        (sm.CellModel(rm_ohm_m2=-1.0), SHORT, CLEAN, "rm_ohm_m2"),
+        (sm.CellModel(dendrite=sm.Dendrite(n_compartments=0)), SHORT, CLEAN, "n_compartments"),
+        (sm.CellModel(), replace(SHORT, onset_s=0.6), CLEAN, "onset_s"),
+        (sm.CellModel(), replace(SHORT, amplitudes_a=()), CLEAN, "amplitudes_a"),
+        (sm.CellModel(), SHORT, sm.Nuisance(noise_rms_v=-1e-3), "noise_rms_v"),
+    ],
+)
+def test_bad_parameters_are_named(cell, protocol, nuisance, words: str) -> None:
+    with pytest.raises(ValueError, match=words):
+        sm.simulate_cell(cell, protocol, nuisance, seed=0, cell_id="bad")

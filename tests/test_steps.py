@@ -88,6 +88,11 @@ def test_nan_in_voltage_is_ignored_and_nan_in_current_is_bridged() -> None:
     holed[10_000:10_050] = np.nan
     epoch = find_step(_sweep(holed), SETTINGS)
     assert epoch.usable and (epoch.onset_index, epoch.offset_index) == (ON, OFF)
+    gap_at_edge = current.copy()
+    gap_at_edge[ON - 500 : ON + 500] = np.nan  # the edge is lost: bridged, it looks like a ramp
+    epoch = find_step(_sweep(gap_at_edge), SETTINGS)
+    assert (epoch.kind, epoch.usable) == ("ramp", False)
+    assert "1000 NaN samples were bridged" in epoch.reason
     nothing = find_step(_sweep(np.full(N, np.nan)), SETTINGS)
     assert (nothing.usable, nothing.kind) == (False, "no current")
     assert "NaN" in nothing.reason
