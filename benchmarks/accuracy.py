@@ -55,6 +55,7 @@ class Outcome:
     seconds: float
     sag: tuple[float, float]  # (fitted, true) sag ratio, NaN when not measured
     note: str = ""
+    about: str = ""  # the cell's truth and geometry, for --verbose
 
 
 # --------------------------------------------------------------------------- random cells
@@ -122,16 +123,16 @@ def naive_fit(sim: nm.SimulatedCell) -> dict[str, float]:
 
 
 def errors(est: dict[str, float], truth: dict[str, float]) -> dict[str, float]:
-    """Relative errors for rin, tau, cm; absolute mV for vrest; NaN estimates count as inf."""
+    """Signed errors: relative for rin, tau, cm; mV for vrest; NaN estimates count as inf."""
     out = {}
     for p in PROPS:
         e = est[p]
         if not math.isfinite(e):
             out[p] = math.inf
         elif p == "vrest":
-            out[p] = abs(e - truth[p]) * 1e3
+            out[p] = (e - truth[p]) * 1e3
         else:
-            out[p] = abs(e - truth[p]) / abs(truth[p])
+            out[p] = (e - truth[p]) / abs(truth[p])
     return out
 
 
@@ -153,8 +154,17 @@ def run_cell(cell_id: str, kind: str, rng: np.random.Generator, seed: int) -> Ou
         k = int(np.argmin(np.abs(np.asarray(proto.amplitudes_a) - cf.sag_step_a)))
         sag = (cf.sag_ratio, nm.step_measures(sim.clean[k], proto)["sag"])
     note = "" if cf.status == "ok" else cf.status
+    el = (
+        nm.electrotonic_length(spec.dend_diam_m, spec.dend_length_m, spec.rm_ohm_m2, spec.ri_ohm_m)
+        if spec.has_dendrite
+        else 0.0
+    )
+    about = (
+        f"Rin {truth['rin'] / 1e6:6.1f} Mohm  tau {truth['tau'] * 1e3:5.1f} ms  L {el:4.2f}  "
+        f"bridge {sim.nuisances.bridge_ohm / 1e6:4.1f} Mohm (fit {cf.bridge_error_ohm / 1e6:5.1f})"
+    )
     return Outcome(
-        cell_id, kind, errors(est, truth), errors(naive_fit(sim), truth), seconds, sag, note
+        cell_id, kind, errors(est, truth), errors(naive_fit(sim), truth), seconds, sag, note, about
     )
 
 
@@ -162,19 +172,24 @@ def run_cell(cell_id: str, kind: str, rng: np.random.Generator, seed: int) -> Ou
 
 
 def pct(values: list[float], q: float) -> float:
-    """Percentile ignoring nothing: inf (failed estimates) sorts last."""
-    return float(np.percentile(np.asarray(values, dtype=float), q)) if values else math.nan
+    """Percentile of the absolute values; inf (failed estimates) sorts last."""
+    return float(np.percentile(np.abs(np.asarray(values, dtype=float)), q)) if values else math.nan
 
 
-def fmt(p: str, x: float) -> str:
+def fmt(p: str, x: float, signed: bool = False) -> str:
     """Errors as percent (rin, tau, cm) or mV (vrest)."""
     if not math.isfinite(x):
         return "    fail"
-    return f"{x:7.2f}mV" if p == "vrest" else f"{100 * x:7.2f}%"
+    sign = "+" if signed else ""
+    return f"{x:{sign}7.2f}mV" if p == "vrest" else f"{100 * x:{sign}7.2f}%"
 
 
-def report(outcomes: list[Outcome]) -> None:
-    """Print the tables and the PASS/MISS lines."""
+def report(outcomes: list[Outcome], verbose: bool = False) -> None:
+    """Print the tables and the PASS/MISS lines (and one line per cell when ``verbose``)."""
+    if verbose:
+        for o in outcomes:
+            errs = "  ".join(f"{p} {fmt(p, o.fit[p], True).strip():>7}" for p in PROPS)
+            print(f"{o.cell_id} {o.kind:<14}{o.about}  {errs}")
     print(
         f"\n{'kind':<14}{'prop':<7}{'n':>3}  {'fit med':>9}{'fit p95':>9}  "
         f"{'naive med':>9}{'naive p95':>10}"
@@ -223,6 +238,7 @@ def main(argv: list[str] | None = None) -> int:
     ap = argparse.ArgumentParser(description=__doc__.splitlines()[0])
     ap.add_argument("--cells", type=int, default=36, help="number of cells (>= 4)")
     ap.add_argument("--seed", type=int, default=20260)
+    ap.add_argument("--verbose", action="store_true", help="one line per cell")
     args = ap.parse_args(argv)
     try:
         from pipeline.fitters.passive import fit_cell  # noqa: F401
@@ -237,7 +253,7 @@ def main(argv: list[str] | None = None) -> int:
         for i in range(args.cells):
             kind = KINDS[i % len(KINDS)]
             outcomes.append(run_cell(f"cell{i:02d}", kind, rng, seed=args.seed + i))
-    report(outcomes)
+    report(outcomes, args.verbose)
     print(f"\n{len(outcomes)} cells in {time.perf_counter() - started:.0f} s")
     return 0
 
