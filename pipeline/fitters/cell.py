@@ -47,19 +47,33 @@ def _through_origin(x: np.ndarray, y: np.ndarray) -> _Slope:
     return _Slope(b, se, dof)
 
 
-def _quadratic_at_rest(x: np.ndarray, y: np.ndarray) -> tuple[_Slope, float]:
-    """Slope at zero of ``y = a x + c x**2`` and the t statistic of ``c``."""
-    if x.size < 3:
-        return _Slope(), 0.0
-    design = np.column_stack([x, x * x])
+def _polynomial_at_rest(x: np.ndarray, y: np.ndarray, degree: int) -> tuple[_Slope, float]:
+    """Slope at zero of ``y = a1 x + ... + ad x**d`` (through the origin) and its residual sum
+    of squares."""
+    scale = float(np.max(np.abs(x)))  # unit-scaled powers keep the design well conditioned
+    design = np.vander(x / scale, degree + 1, increasing=True)[:, 1:]
     coef, *_ = np.linalg.lstsq(design, y, rcond=None)
-    dof = x.size - 2
+    dof = x.size - degree
     resid = y - design @ coef
-    s2 = float(resid @ resid) / dof
-    cov = s2 * np.linalg.inv(design.T @ design)
-    se = np.sqrt(np.diag(cov))
-    t_c = float(coef[1] / se[1]) if se[1] > 0 else math.inf
-    return _Slope(float(coef[0]), float(se[0]), dof), t_c
+    ssr = float(resid @ resid)
+    cov = ssr / dof * np.linalg.inv(design.T @ design)
+    return _Slope(float(coef[0]) / scale, float(math.sqrt(cov[0, 0])) / scale, dof), ssr
+
+
+def _curved_slope(x: np.ndarray, y: np.ndarray, p_max: float) -> tuple[_Slope, int]:
+    """Slope at rest of the lowest-degree polynomial through the origin (1 to 3) that no higher
+    degree beats by an F-test at ``p_max``; returns it and the degree."""
+    best, ssr = _polynomial_at_rest(x, y, 1)
+    degree = 1
+    for d in (2, 3):
+        if x.size < d + 3:
+            break
+        cand, ssr_d = _polynomial_at_rest(x, y, d)
+        f = (ssr - ssr_d) / (ssr_d / cand.dof) if ssr_d > 0 else math.inf
+        if stats.f.sf(f, 1, cand.dof) >= p_max:
+            break
+        best, ssr, degree = cand, ssr_d, d
+    return best, degree
 
 
 def _robust_origin_slope(x: np.ndarray, y: np.ndarray) -> _Slope:
@@ -97,8 +111,9 @@ def _weighted_mean(values: np.ndarray, se: np.ndarray, level: float):
 def _vrest(
     fits: list[SweepFit], s: PassiveSettings, notes: list[str]
 ) -> tuple[float, float, float]:
-    """Resting potential (median baseline of the zero-current sweeps, V), its drift over the
-    recording (V, from a line through those baselines against time) and the drift rate (V/s)."""
+    """Resting potential at the start of the recording (V), its drift over the recording (V) and
+    the drift rate (V/s), from a line through the baselines of the zero-current sweeps against
+    time (the median baseline when fewer than 3 sweeps or no start times)."""
     rest = [
         f
         for f in fits
@@ -113,8 +128,8 @@ def _vrest(
     t = np.array([f.start_time_s + np.mean(f.baseline_window) for f in rest])
     if len(rest) < 3 or not np.isfinite(t).all() or np.ptp(t) <= 0:
         return float(np.median(v)), float(v[-1] - v[0]), 0.0
-    slope = float(np.polyfit(t - t[0], v, 1)[0])
-    return float(np.median(v)), slope * float(t[-1] - t[0]), slope
+    slope, intercept = np.polyfit(t - t[0], v, 1)
+    return float(intercept), float(slope * (t[-1] - t[0])), float(slope)
 
 
 def _bridge(fits: list[SweepFit], notes: list[str]) -> _Slope:
@@ -198,14 +213,15 @@ def summarize_cell(
     peak = np.array([f.peak_dv for f in hyper]) - shift
     pick = _pick_small(hyper, ss - re * i, s)
     apparent, method = _through_origin(i[pick], ss[pick]), "linear"
-    quad, t_c = _quadratic_at_rest(i[pick], ss[pick])
-    if abs(t_c) > s.curvature_t:
-        apparent, method = quad, "quadratic"
+    wide = np.flatnonzero(np.abs(ss - re * i) <= s.iv_range_v)
+    curved, degree = _curved_slope(i[wide], ss[wide], s.curvature_p) if wide.size else (None, 1)
+    if degree > 1:  # the V-I relation bends (Ih, rectification): slope at rest of the curve
+        apparent, method, pick = curved, ("quadratic", "cubic")[degree - 2], list(wide)
     rin = apparent.value - re
     rin_se = math.hypot(apparent.se, bridge.se if math.isfinite(bridge.se) else 0.0)
     rin_peak = _through_origin(i[pick], peak[pick]).value - re
     chord = ss[-1] / i[-1] - re
-    tau, tau_ci, tau_se, tau_used = _tau(hyper, pick, s)
+    tau, tau_ci, tau_se, tau_used = _tau(hyper, peak - re * i, s)
     cm, cm_ci = _cm(tau, tau_ci, rin, _interval(rin, rin_se, apparent.dof, s.confidence))
     sag, at_target = _sag(hyper, i, ss, peak, re, s)
     used = sorted({hyper[k].sweep for k in pick} | {hyper[-1].sweep} | tau_used)
@@ -245,9 +261,12 @@ def _drift_shift(f: SweepFit, rate: float) -> float:
     return rate * (float(np.mean(f.ss_window)) - float(np.mean(f.baseline_window)))
 
 
-def _tau(hyper: list[SweepFit], pick: list[int], s: PassiveSettings):
-    """Weighted tau over the picked sweeps with a fit (else over the smallest fitted ones)."""
-    fitted = [hyper[k] for k in pick if _tau_ok(hyper[k])]
+def _tau(hyper: list[SweepFit], peak_m: np.ndarray, s: PassiveSettings):
+    """Weighted tau over the fitted sweeps whose peak membrane deflection is within
+    ``tau_range_v`` (else over the smallest fitted ones)."""
+    fitted = [
+        f for f, p in zip(hyper, peak_m, strict=True) if _tau_ok(f) and abs(p) <= s.tau_range_v
+    ]
     if not fitted:
         fitted = [f for f in hyper if _tau_ok(f)][: s.n_small_steps]
     if not fitted:

@@ -8,11 +8,15 @@ Cm, Vrest, sag, peeling). Units are SI; injected current positive = depolarizing
 
 from __future__ import annotations
 
+import math
 from collections.abc import Mapping, Sequence
+from dataclasses import replace
+
+import numpy as np
 
 from pipeline.errors import RecordingError
 from pipeline.fitters.cell import summarize_cell
-from pipeline.fitters.results import CellFit
+from pipeline.fitters.results import CellFit, SweepFit
 from pipeline.fitters.sweep import PassiveSettings, fit_sweep
 from pipeline.recording import Recording
 from pipeline.steps import StepEpoch, StepSettings
@@ -48,6 +52,13 @@ def fit_cell(
     CellFit
         See :func:`pipeline.fitters.cell.summarize_cell`.
 
+    Notes
+    -----
+    The charging curves of the hyperpolarizing sweeps are fitted twice: the second pass starts
+    no fit before the dendritic equalisation time found on the cell's largest steps, and uses
+    the exp+sag model on every sweep when the largest step sags (small steps are too noisy to
+    decide alone).
+
     Raises
     ------
     RecordingError
@@ -63,5 +74,37 @@ def fit_cell(
             recording.source_file,
             f"{len(epochs)} step epochs for {len(recording.sweeps)} sweeps of cell {recording.cell_id}",
         )
-    fits = [fit_sweep(sw, ep, settings) for sw, ep in zip(recording.sweeps, epochs, strict=True)]
+    pairs = list(zip(recording.sweeps, epochs, strict=True))
+    fits = [fit_sweep(sw, ep, settings) for sw, ep in pairs]
+    second = _second_pass_settings(fits, settings)
+    if second is not None:
+        fits = [
+            fit_sweep(sw, ep, second) if f.step_a < 0 and f.charging.ok else f
+            for f, (sw, ep) in zip(fits, pairs, strict=True)
+        ]
     return summarize_cell(recording.cell_id, fits, settings, exclude)
+
+
+def _second_pass_settings(fits: Sequence[SweepFit], settings: PassiveSettings):
+    """Settings for refitting the charging curves with what the cell's largest hyperpolarizing
+    steps (best signal-to-noise) showed: the dendritic equalisation time, below which no fit
+    starts, and whether the cell sags (then every hyperpolarizing sweep gets the exp+sag model).
+    None when nothing changes."""
+    hyper = sorted(
+        (f for f in fits if f.step_a < 0 and f.charging.ok and math.isfinite(f.peak_dv)),
+        key=lambda f: f.peak_dv,
+    )[:3]
+    if not hyper:
+        return None
+    eq = [
+        settings.equalization_factor * f.tau_fast_s
+        for f in hyper
+        if math.isfinite(f.tau_fast_s) and f.tau_fast_s < f.charging.tau / 2
+    ]
+    start = max(settings.fit_start_min_s, float(np.median(eq)) if eq else 0.0)
+    model = settings.charging_model
+    if model == "auto":
+        model = "exp+sag" if hyper[0].charging.model == "exp+sag" else "exp"
+    if start == settings.fit_start_min_s and model == settings.charging_model:
+        return None
+    return replace(settings, fit_start_min_s=start, charging_model=model)

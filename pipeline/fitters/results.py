@@ -15,9 +15,35 @@ import numpy as np
 NAN = math.nan
 
 
+def sag_response(t: np.ndarray, tau: float, tau_sag: float, kappa: float) -> np.ndarray:
+    """Normalised step response of a membrane with one slow restoring gate (Ih-like).
+
+    The linearised system ``dV/dt = -V/tau - b*m + I/C``, ``dm/dt = c*V - m/tau_sag`` with
+    ``b*c = kappa / (tau * tau_sag)`` (kappa = steady-state conductance / instantaneous
+    conductance - 1, so kappa > 0 gives a sag). ``tau`` is the frozen-gate membrane time constant.
+    Returns ``x(t)`` with ``x(0) = 0`` and ``x(inf) = 1`` (``t`` in s from the step onset).
+    Poles may be complex (a damped oscillation); the result is real either way.
+    """
+    a, d = 1.0 / tau, 1.0 / tau_sag
+    s_ = a * d * (1.0 + kappa)
+    root = np.sqrt(complex((a - d) ** 2 - 4.0 * kappa * a * d))
+    if abs(root) < 1e-9 * (a + d):  # repeated pole: nudge it apart (error ~1e-9)
+        root = complex(1e-9 * (a + d))
+    l1, l2 = (-(a + d) + root) / 2.0, (-(a + d) - root) / 2.0
+    t = np.asarray(t, dtype=float)
+    x = 1.0 + s_ * (l1 + d) / (d * l1 * (l1 - l2)) * np.exp(l1 * t)
+    x = x + s_ * (l2 + d) / (d * l2 * (l2 - l1)) * np.exp(l2 * t)
+    return x.real
+
+
 @dataclass(frozen=True)
 class ExpFit:
     """A single-exponential fit ``v(t) = v_inf + amp * exp(-(t - t0) / tau)``.
+
+    With ``model == "exp+sag"`` the fit is instead the step response of a membrane with one slow
+    restoring gate (:func:`sag_response`): ``v(t) = v_inf - amp + amp * x(t - onset)``; ``tau``
+    is then the frozen-gate membrane time constant, ``amp`` the steady deflection of that mode,
+    ``tau_sag`` and ``kappa`` the gate's time constant and strength.
 
     Parameters
     ----------
@@ -43,6 +69,10 @@ class ExpFit:
     r2: float = NAN
     resid_rms: float = NAN
     tau_se: float = NAN  # standard error of tau from the fit's covariance, s
+    model: str = "exp"  # 'exp' or 'exp+sag' (see the class docstring)
+    onset: float = NAN  # step onset, s from the sweep start (time origin of 'exp+sag')
+    tau_sag: float = NAN  # slow gate time constant, s ('exp+sag')
+    kappa: float = NAN  # steady / instantaneous conductance - 1 ('exp+sag')
 
     @property
     def ok(self) -> bool:
@@ -51,7 +81,11 @@ class ExpFit:
 
     def curve(self, t: np.ndarray) -> np.ndarray:
         """Evaluate the fitted curve at times ``t`` (s); returns V."""
-        return self.v_inf + self.amp * np.exp(-(np.asarray(t) - self.t0) / self.tau)
+        t = np.asarray(t, dtype=float)
+        if self.model == "exp+sag":
+            x = sag_response(t - self.onset, self.tau, self.tau_sag, self.kappa)
+            return self.v_inf - self.amp + self.amp * x
+        return self.v_inf + self.amp * np.exp(-(t - self.t0) / self.tau)
 
 
 @dataclass(frozen=True)
@@ -123,6 +157,7 @@ class SweepFit:
     nonfinite_samples: int = 0  # NaN or infinite samples in the whole sweep
     clipped_samples: int = 0  # samples in flat runs at the trace's extreme (amplifier rail)
     charging2: BiExpFit | None = None  # two-exponential fit, when asked for
+    tau_fast_s: float = NAN  # fastest (equalising) time constant found by peeling, s
 
     @property
     def baseline_shift_v(self) -> float:
@@ -147,6 +182,8 @@ class SweepFit:
             "rin_mohm": _mohm(self.rin_ohm),
             "tau_ms": _ms(c.tau),
             "tau_se_ms": _ms(c.tau_se),
+            "tau_model": c.model,
+            "tau_fast_ms": _ms(self.tau_fast_s),
             "tau_r2": c.r2,
             "tau_resid_rms_mv": _mv(c.resid_rms),
             "fit_start_ms": _ms(c.t0 - self.onset_s),

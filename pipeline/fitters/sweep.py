@@ -29,7 +29,7 @@ from dataclasses import dataclass
 import numpy as np
 from scipy.optimize import curve_fit
 
-from pipeline.fitters.results import NAN, BiExpFit, ExpFit, SweepFit
+from pipeline.fitters.results import NAN, BiExpFit, ExpFit, SweepFit, sag_response
 from pipeline.recording import Sweep
 from pipeline.steps import StepEpoch
 
@@ -38,53 +38,70 @@ from pipeline.steps import StepEpoch
 class PassiveSettings:
     """How passive properties are measured; the ``[passive]`` table of the config."""
 
-    baseline_window_s: float = (
-        0.1  # pre-step window ending at onset; 0.1 s spans whole 50 and 60 Hz cycles
-    )
-    ss_window_s: float = (
-        0.2  # steady-state window ending at the step offset (late part of the step)
-    )
-    min_window_s: float = 0.02  # shortest baseline or steady-state window accepted
-    after_delay_s: float = (
-        0.15  # relaxation allowed after the offset before the 'after' baseline window
-    )
-    settle_s: float = 3e-4  # electrode/amplifier settling after a step edge, excluded from fits
-    jump_fit_s: float = (
-        2e-3  # span after settling used to extrapolate the membrane response back to an edge
-    )
-    peak_smooth_s: float = 0.02  # boxcar length for the noise-robust peak and rebound
-    bin_s: float = 5e-4  # bin width of the trace fed to the exponential fits
-    fit_start_fraction: float = (
-        0.2  # tau fit starts when the response reaches this fraction of its peak
-    )
-    fit_end_fraction: float = (
-        0.95  # tau fit ends at this fraction of the peak (or at the peak if it sags)
-    )
-    fit_span_tau: float = (
-        6.0  # without sag the tau fit runs this many tau after onset (or to the step end)
-    )
-    equalization_factor: float = (
-        5.0  # fit starts this many fast (dendritic) time constants after onset
-    )
-    min_fit_bins: int = 8  # fewest bins accepted in a charging-curve fit
-    remove_hum: bool = True  # fit and subtract mains hum before measuring
-    hum_harmonics: int = 2  # harmonics of 50 and 60 Hz fitted (1 = fundamentals only)
-    clip_run_samples: int = 5  # a flat run this long at the trace's extreme counts as clipped
-    rebound_window_s: float = 0.3  # window after the offset searched for the rebound depolarization
-    linear_range_v: float = (
-        0.01  # |membrane deflection| bound of the linear part of the V-I relation
-    )
-    n_small_steps: int = 3  # smallest hyperpolarizing steps used when fewer lie in the linear range
-    curvature_t: float = 3.0  # |t| of the quadratic V-I term above which Rin is the slope at rest
-    bridge_correction: bool = True  # subtract the bridge error estimated from the edge jumps
-    drift_correction: bool = True  # correct deflections for the baseline drift across sweeps
-    zero_current_a: float = 2e-12  # |holding + bias| below this counts as zero current (for Vrest)
-    sag_target_v: float = -0.09  # membrane potential at the peak where sag_ratio_at_target is read
-    two_exp: bool = (
-        False  # also fit two exponentials (Rall peeling): tau0, tau1, electrotonic length
-    )
-    min_tau_ratio: float = 3.0  # tau0/tau1 below this: the fast component is "not resolvable"
-    confidence: float = 0.95  # level of the reported intervals
+    # pre-step baseline window ending at onset; 0.1 s spans whole 50 and 60 Hz cycles
+    baseline_window_s: float = 0.1
+    # steady-state window ending at the step offset (the late part of the step)
+    ss_window_s: float = 0.2
+    # shortest baseline or steady-state window accepted
+    min_window_s: float = 0.02
+    # relaxation allowed after the offset before the 'after' baseline window may start
+    after_delay_s: float = 0.15
+    # electrode/amplifier settling after a step edge, left out of every fit
+    settle_s: float = 3e-4
+    # span after settling used to extrapolate the membrane response back to an edge
+    jump_fit_s: float = 2e-3
+    # boxcar length for the noise-robust peak and rebound
+    peak_smooth_s: float = 0.02
+    # bin width of the trace fed to the exponential fits
+    bin_s: float = 5e-4
+    # the tau fit starts once the response reaches this fraction of its peak...
+    fit_start_fraction: float = 0.2
+    # ...and not before this time after onset (fit_cell raises it to the cell's equalisation)
+    fit_start_min_s: float = 0.0
+    # the tau fit ends at this fraction of the peak (or at the peak when the sweep sags)
+    fit_end_fraction: float = 0.95
+    # without sag, the single-exponential fit runs this many tau after onset (or to the step end)
+    fit_span_tau: float = 6.0
+    # the fit starts this many fast (dendritic equalising) time constants after onset
+    equalization_factor: float = 5.0
+    # fewest bins accepted in a charging-curve fit
+    min_fit_bins: int = 8
+    # 'exp' (single exponential), 'exp+sag' (frozen-gate tau under an Ih sag), or 'auto'
+    charging_model: str = "auto"
+    # bins averaged together in the slow part of the exp+sag fit
+    sag_coarse_bins: int = 10
+    # fit and subtract mains hum (50 and 60 Hz) before measuring
+    remove_hum: bool = True
+    # harmonics of 50 and 60 Hz fitted (1 = fundamentals only)
+    hum_harmonics: int = 2
+    # a flat run this long at the trace's extreme counts as clipped, samples
+    clip_run_samples: int = 5
+    # window after the offset searched for the rebound depolarization
+    rebound_window_s: float = 0.3
+    # |membrane deflection| bound of the linear part of the V-I relation
+    linear_range_v: float = 0.01
+    # |peak membrane deflection| bound of the hyperpolarizing sweeps whose fits give tau
+    tau_range_v: float = 0.025
+    # smallest hyperpolarizing steps used when fewer lie in the linear range
+    n_small_steps: int = 3
+    # |membrane deflection| bound of the sweeps where V-I curvature is tested (and fitted)
+    iv_range_v: float = 0.025
+    # p-value of the F-test below which a higher-degree V-I polynomial is used (slope at rest)
+    curvature_p: float = 0.01
+    # subtract the bridge error estimated from the edge jumps
+    bridge_correction: bool = True
+    # correct deflections for the baseline drift measured across sweeps
+    drift_correction: bool = True
+    # |holding + bias| below this counts as zero current (sweeps used for Vrest)
+    zero_current_a: float = 2e-12
+    # membrane potential at the peak where sag_ratio_at_target is read
+    sag_target_v: float = -0.09
+    # also fit two exponentials (Rall peeling): tau0, tau1, electrotonic length
+    two_exp: bool = False
+    # tau0/tau1 below this: the fast component is "not resolvable"
+    min_tau_ratio: float = 3.0
+    # level of the reported intervals
+    confidence: float = 0.95
 
 
 @dataclass(frozen=True)
@@ -334,15 +351,20 @@ def _charging_fit(
     i_peak: int,
     sagging: bool,
     noise: float,
+    onset: float,
     s: PassiveSettings,
 ) -> tuple[ExpFit, float, str]:
-    """Single-exponential fit of the charging curve in an automatically chosen window.
+    """Fit of the charging curve in an automatically chosen window.
 
-    ``t``, ``y`` are binned times and voltages from just after the onset settling; ``r`` is the
-    membrane response normalised to its peak (bridge jump removed), so it rises from ~0 to ~1;
-    ``i_peak`` is the bin of the peak. With sag the fit ends at the peak (or at
-    ``fit_end_fraction``); without, it runs ``fit_span_tau`` time constants. Returns the fit, the
-    fast (equalising) time constant found by peeling (or NaN), and a reason when there is no fit.
+    ``t``, ``y`` are binned times and voltages over the step from just after the onset
+    settling; ``r`` is the membrane response normalised to its peak (bridge jump removed), so it
+    rises from ~0 to ~1; ``i_peak`` is the bin of the peak. A single exponential is fitted from
+    ``fit_start_fraction`` of the peak (and ``fit_start_min_s``) up to the peak when the response
+    sags, else over ``fit_span_tau`` time constants; its start then moves past the equalising
+    components found by peeling. With sag (``charging_model`` 'auto' and a sag, or 'exp+sag') the
+    gate model of :func:`pipeline.fitters.results.sag_response` is fitted from that start to the
+    step end, and tau is its frozen-gate time constant. Returns the fit, the peeled fast time
+    constant (or NaN), and a reason when there is no fit.
     """
     rs = np.convolve(r, np.ones(5) / 5, mode="same")  # crossings of a smoothed response
     i0 = _first_crossing(rs, s.fit_start_fraction)
@@ -362,20 +384,106 @@ def _charging_fit(
     # peel: a fit starting one tau in is free of the faster equalising components; the early
     # excess of the data over it gives their time constant, and the fit starts after they decay
     j_late = int(np.searchsorted(t, t[0] + fit.tau))
-    late = (
-        _refit(fit, t, y, j_late, i1) if j_late > i0 and i1 - j_late + 1 >= s.min_fit_bins else fit
-    )
+    late = _refit(fit, t, y, j_late, i1) if j_late - i0 >= s.min_fit_bins else fit
     excess = np.sign(late.amp) * (y[:j_late] - late.curve(t[:j_late]))
     tau_fast = _fast_tau(t[:j_late], excess, noise)
+    j0 = i0
     if np.isfinite(tau_fast) and tau_fast < late.tau / 2:
-        j0 = int(np.searchsorted(t, t[0] + s.equalization_factor * tau_fast))
-        if j0 > i0 and i1 - j0 + 1 >= s.min_fit_bins:
-            fit, i0 = _refit(fit, t, y, j0, i1), j0
-    return fit, tau_fast, ""
+        j0 = max(j0, int(np.searchsorted(t, t[0] + s.equalization_factor * tau_fast)))
+    j0 = max(j0, int(np.searchsorted(t, onset + s.fit_start_min_s)))
+    if s.charging_model == "exp+sag" or (s.charging_model == "auto" and sagging):
+        gated = fit_sag_model(t[j0:], y[j0:], onset, fit, t[i_peak], s.sag_coarse_bins)
+        if gated.ok and math.isfinite(gated.tau_se):
+            return gated, tau_fast, ""
+    if not sagging:
+        i1 = max(i1, min(t.size - 1, j0 + s.min_fit_bins))
+    if i1 - j0 + 1 < s.min_fit_bins:
+        return ExpFit(), tau_fast, "charging-curve fit window ends before it can start"
+    return _refit(fit, t, y, j0, i1), tau_fast, ""
+
+
+def _rebin(t: np.ndarray, y: np.ndarray, switch: int, k: int):
+    """Keep bins before ``switch``, average groups of ``k`` after it; also return the number of
+    fine bins in each (for the fit weights)."""
+    m = (t.size - switch) // k
+    tc = t[switch : switch + m * k].reshape(m, k).mean(axis=1)
+    yc = y[switch : switch + m * k].reshape(m, k).mean(axis=1)
+    count = np.concatenate([np.ones(switch), np.full(m, float(k))])
+    return np.concatenate([t[:switch], tc]), np.concatenate([y[:switch], yc]), count
+
+
+def fit_sag_model(
+    t: np.ndarray, y: np.ndarray, onset: float, first: ExpFit, t_peak: float, coarse: int = 10
+) -> ExpFit:
+    """Fit the step response of a membrane with a slow restoring gate (Ih-like sag).
+
+    Parameters
+    ----------
+    t, y : numpy.ndarray
+        Binned times (s from the sweep start) and voltages (V), from the fit start to the step end.
+    onset : float
+        Step onset, s (time origin of the model).
+    first : ExpFit
+        Single-exponential fit of the rise, for starting values.
+    t_peak : float
+        Time of the peak deflection, s.
+    coarse : int
+        Bins averaged together after the first few membrane time constants (the slow sag
+        needs no finer sampling; keeps the fit cheap).
+
+    Returns
+    -------
+    ExpFit
+        With ``model="exp+sag"``; ``tau`` the frozen-gate membrane time constant. NaN if the fit
+        failed.
+    """
+    switch = int(np.searchsorted(t, t[0] + 4 * first.tau))
+    tb, yb, count = _rebin(t, y, switch, coarse)
+    if tb.size < 12:
+        return ExpFit()
+    v_on = first.v_inf + first.amp * math.exp((first.t0 - onset) / first.tau)
+    v_inf = float(y[-max(1, y.size // 10) :].mean())
+    g0 = v_inf - v_on
+    g_inst = first.v_inf - v_on
+    kappa0 = max(0.02, g_inst / g0 - 1.0) if g0 != 0 else 0.1
+    tau_sag0 = max(2 * first.tau, t_peak - onset)
+    tt = tb - onset
+
+    def model(x, v_inf, g, log_tau, log_tau_sag, kappa):
+        return v_inf - g + g * sag_response(x, math.exp(log_tau), math.exp(log_tau_sag), kappa)
+
+    p0 = (v_inf, g0, math.log(first.tau), math.log(tau_sag0), kappa0)
+    try:
+        with np.errstate(over="ignore", invalid="ignore"):
+            p, cov = curve_fit(model, tt, yb, p0=p0, sigma=1 / np.sqrt(count), maxfev=600)
+    except (RuntimeError, ValueError, OverflowError, ZeroDivisionError):
+        return ExpFit()
+    if not (np.isfinite(p).all() and np.isfinite(cov).all()):
+        return ExpFit()
+    resid = yb - model(tt, *p)
+    w = count / count.sum()
+    ss_tot = float(w @ (yb - w @ yb) ** 2)
+    tau = math.exp(p[2])
+    return ExpFit(
+        t0=float(t[0]),
+        t1=float(t[-1]),
+        tau=tau,
+        amp=float(p[1]),
+        v_inf=float(p[0]),
+        r2=1.0 - float(w @ resid**2) / ss_tot if ss_tot > 0 else NAN,
+        resid_rms=float(np.sqrt(w @ resid**2)),
+        tau_se=tau * float(np.sqrt(cov[2, 2])),
+        model="exp+sag",
+        onset=onset,
+        tau_sag=math.exp(p[3]),
+        kappa=float(p[4]),
+    )
 
 
 def _refit(fit: ExpFit, t: np.ndarray, y: np.ndarray, i0: int, i1: int) -> ExpFit:
     """Refit on bins ``i0..i1``, keeping the previous fit if the new one fails."""
+    if i1 - i0 < 3:
+        return fit
     refit = fit_exponential(t[i0 : i1 + 1], y[i0 : i1 + 1], fit.tau)
     return refit if refit.ok else fit
 
@@ -561,10 +669,11 @@ def _measure(
     noise = max(rms / math.sqrt(k), 1e-7)  # floor: noiseless traces still have rounding
     ksm = round(s.peak_smooth_s * rate)
     sagging = ss_dv - peak_dv > max(5 * rms / math.sqrt(ksm), 0.01 * abs(peak_m))
-    charging, tau_fast, why = _charging_fit(t, y, r, i_peak, sagging, noise, s)
+    charging, tau_fast, why = _charging_fit(t, y, r, i_peak, sagging, noise, epoch.onset, s)
     if why:
         reasons.append(why)
     fit["charging"] = charging
+    fit["tau_fast_s"] = tau_fast
     if s.two_exp and charging.ok:
         end = int(np.searchsorted(t, charging.t1, side="right"))
         fit["charging2"] = fit_two_exponentials(t[:end], y[:end], charging, tau_fast)
