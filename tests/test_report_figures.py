@@ -220,6 +220,26 @@ def test_error_cell_figure(tmp_path):
     _png(tmp_path / "bad.png")
 
 
+def test_absurd_numbers_do_not_crash(tmp_path):
+    """Infinite, negative and NaN results (a fitter gone wrong) are drawn as far as they go."""
+    rec, epochs, fit, verdict = fake_cell(n_sweeps=6)
+    bad_fit = ExpFit(ONSET, ONSET + 0.1, -1e-4, math.inf, math.nan, -3.0, math.inf)
+    sweeps = tuple(
+        dataclasses.replace(f, charging=bad_fit, ss_dv=math.inf if f.sweep == 1 else f.ss_dv)
+        for f in fit.sweeps
+    )
+    weird = dataclasses.replace(
+        fit, sweeps=sweeps, rin_ohm=-5e6, rin_ci_ohm=(math.inf, -math.inf), iv_slope_ohm=math.inf,
+        tau_s=math.nan, cm_ci_f=(math.nan, 1.0), sag_step_a=math.inf,
+    )  # fmt: skip
+    stray = [*epochs, StepEpoch(99, False, "ramp", "a ramp, not a step", 0, 0, 0, 0, 0, 0)]
+    with np.errstate(all="raise"):  # no silent numpy warnings either
+        cell_figure(
+            rec, stray, weird, CellVerdict(False, excluded=None), tmp_path / "w.png", dpi=40
+        )
+    _png(tmp_path / "w.png")
+
+
 def test_failed_write_leaves_no_file(tmp_path, monkeypatch):
     from matplotlib.figure import Figure
 

@@ -283,13 +283,19 @@ def _label_traces(ax, note: str = "") -> None:
     _title(ax, f"sweeps (hyperpolarizing coloured by step; not used: dotted grey{note})")
 
 
+def _drawable(c: ExpFit) -> bool:
+    """A charging fit that can be drawn: finite parameters, positive tau, a real window."""
+    values = (c.t0, c.t1, c.tau, c.amp, c.v_inf)
+    return all(_finite(x) for x in values) and c.tau > 0 and c.t1 > c.t0
+
+
 def _draw_fits_and_windows(ax, views: list[_SweepView]) -> None:
     windows = {"charging fit": [], "steady state": [], "baseline": []}
     for v in views:
         f = v.fit
         if f is None:
             continue
-        if f.charging.ok and _finite(f.charging.t0) and _finite(f.charging.t1):
+        if _drawable(f.charging):
             t = np.linspace(f.charging.t0, f.charging.t1, 120)
             ax.plot(t * 1e3, f.charging.curve(t) * 1e3, color=FIT_COLOUR, lw=1.0, ls="--", zorder=3)
             windows["charging fit"].append((f.charging.t0, f.charging.t1))
@@ -446,7 +452,7 @@ def _draw_residuals(ax, views: list[_SweepView]) -> None:
     rms, n_drawn = [], 0
     for v in views:
         c: ExpFit | None = v.fit.charging if v.fit is not None else None
-        if c is None or not c.ok or v.sweep is None or not (_finite(c.t0) and _finite(c.t1)):
+        if c is None or not _drawable(c) or v.sweep is None:
             continue
         t = v.sweep.time()
         i0, i1 = np.searchsorted(t, [c.t0, c.t1])
@@ -611,8 +617,10 @@ def _draw_text(ax, fig, recording, cell_fit, verdict, views, cell_id: str, spike
     word = "QC PASS" if passed else ("QC FAIL" if verdict is not None else "QC: no verdict")
     col.add([word], 13, gap=0.4, weight="bold", color=PASS_COLOUR if passed else FAIL_COLOUR)
     sections = []
-    if verdict is not None and verdict.reasons:
-        sections.append(("failed because:", list(verdict.reasons)))
+    if verdict is not None and (verdict.reasons or not passed):
+        sections.append(
+            ("failed because:", list(verdict.reasons) or ["(the QC verdict gives no reason)"])
+        )
     if verdict is not None and verdict.flags:
         sections.append(("flags (cell still passes):", list(verdict.flags)))
     excluded = _grouped_reasons(views)
@@ -772,6 +780,13 @@ def cell_figure(
         Resolution, dots per inch; overrides ``settings.dpi``.
     """
     cfg = _settings(settings, dpi)
+    with np.errstate(all="ignore"):  # absurd results (inf, huge) are drawn or skipped, not raised
+        _cell_figure(recording, epochs, cell_fit, verdict, Path(path), spikes, cfg)
+
+
+def _cell_figure(
+    recording, epochs, cell_fit, verdict, path: Path, spikes, cfg: FigureSettings
+) -> None:
     height = cfg.height_in + (cfg.spikes_height_in if spikes is not None else 0.0)
     with matplotlib.rc_context({"text.parse_math": False, "font.size": 8.5, "axes.titlesize": 9}):
         fig = Figure(figsize=(cfg.width_in, height), dpi=cfg.dpi)
