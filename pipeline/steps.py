@@ -10,9 +10,11 @@ How a sweep is read (all vectorized numpy, only the current is looked at):
 2. Edges are where the difference of the means of the ``k`` samples after and before a sample
    (``k`` = ``edge_window_s``) exceeds a threshold set by the noise and ``min_amplitude_a``.
    An edge spread over more than ``3 k`` samples is a ramp.
-3. The plateaus between edges give the levels (medians); a plateau whose start and end differ
-   by more than the threshold is a ramp. Levels then tell a single step from a train of pulses
-   or a staircase.
+3. The plateaus between edges (less ``k`` samples each side) give the levels (means, or
+   means near the median when outliers pull); a plateau whose first and last thirds differ by
+   more than the threshold is a ramp. Levels then tell a single step (out and back to
+   holding) from a train (back to holding between pulses of one size) and a multi-step (any
+   other sequence, e.g. a staircase or a prepulse before the step).
 4. Onset and offset come from the 50% crossing of each edge (linear interpolation between
    samples; common practice), read 0.4 sample early: exact on a clean command; within one
    sample on a filtered edge (single pole, tau up to ~1 sample; 2-pole Bessel at rate/4) with
@@ -400,8 +402,10 @@ def _classify(
     if len(runs) == 2 and at_holding[2]:
         amplitude = levels[1] - holding
         return _check_step(sweep, settings, holding, amplitude, edges[0], edges[1], sigma)
+    pulses = excursion[1::2]
     alternates = at_holding[::2].all() and not at_holding[1::2].any()
-    if alternates:
+    alike = np.ptp(pulses) <= max(threshold, 0.1 * np.abs(pulses).max())
+    if alternates and alike:  # back to holding between pulses of one size
         return _unusable(sweep, "train", f"{len(runs) // 2} pulses instead of one step", **known)
     return _unusable(
         sweep,

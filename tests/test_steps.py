@@ -111,6 +111,12 @@ def _staircase() -> np.ndarray:
     return current
 
 
+def _prepulse() -> np.ndarray:
+    current = np.zeros(N)
+    current[2000:3000], current[ON:OFF] = -50e-12, 100e-12  # back to holding in between
+    return current
+
+
 def _ramp() -> np.ndarray:
     current = np.zeros(N)
     current[ON:OFF] = np.linspace(0.0, 200e-12, OFF - ON)
@@ -140,6 +146,7 @@ def _noise_epoch() -> np.ndarray:
         (lambda: np.random.default_rng(5).normal(0, 30e-12, N), "noise", "noise-like"),
         (_train, "train", "5 pulses"),
         (_staircase, "multi-step", "50, 100, 0 pA"),
+        (_prepulse, "multi-step", "0, -50, 0, 100, 0 pA"),
         (lambda: _command(50e-12, off=N), "too short", "changes once"),
         (lambda: _command(50e-12, on=40), "too short", "baseline"),
         (lambda: _command(50e-12, off=N - 20), "too short", "after the step"),
