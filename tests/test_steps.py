@@ -5,6 +5,8 @@ from __future__ import annotations
 
 import numpy as np
 import pytest
+from hypothesis import given, settings
+from hypothesis import strategies as st
 from scipy import signal
 
 from pipeline.recording import Recording, Sweep
@@ -203,3 +205,39 @@ def test_other_rates() -> None:
         epoch = find_step(Sweep(np.zeros(n), current, rate, 0), SETTINGS)
         assert epoch.usable
         assert (epoch.onset_index, epoch.offset_index) == (int(0.2 * rate), int(1.2 * rate))
+
+
+@settings(derandomize=True, max_examples=60, deadline=None)
+@given(
+    on=st.integers(400, 14_000),  # >= 8 ms of baseline at 50 kHz
+    length=st.integers(200, 14_000),  # >= 4 ms at 50 kHz
+    amplitude_pa=st.floats(2.0, 500.0).flatmap(lambda a: st.sampled_from([a, -a])),
+    holding_pa=st.floats(-200.0, 200.0),
+    rate=st.sampled_from([10_000.0, 20_000.0, 50_000.0]),
+)
+def test_any_clean_step_is_found_exactly(on, length, amplitude_pa, holding_pa, rate) -> None:
+    n = 30_000
+    current = np.full(n, holding_pa * 1e-12)
+    current[on : on + length] += amplitude_pa * 1e-12
+    epoch = find_step(Sweep(np.zeros(n), current, rate, 0), SETTINGS)
+    assert epoch.usable, epoch.reason
+    assert (epoch.onset_index, epoch.offset_index) == (on, on + length)
+    assert epoch.amplitude == pytest.approx(amplitude_pa * 1e-12, rel=1e-6)
+    assert epoch.holding == pytest.approx(holding_pa * 1e-12, abs=1e-18)
+
+
+@settings(derandomize=True, max_examples=40, deadline=None)
+@given(
+    amplitude_pa=st.floats(30.0, 400.0).flatmap(lambda a: st.sampled_from([a, -a])),
+    tau_samples=st.sampled_from([0.0, 0.2, 0.4, 0.6, 0.8]),
+    seed=st.integers(0, 2**31),
+)
+def test_noisy_filtered_steps_within_one_sample(amplitude_pa, tau_samples, seed) -> None:
+    # 3 pA RMS noise on steps of at least 30 pA through a single-pole filter of up to 0.8
+    # samples (40 us at 20 kHz).
+    tau = tau_samples / RATE
+    clean = _command(amplitude_pa * 1e-12) if tau == 0 else _rc_filtered(amplitude_pa * 1e-12, tau)
+    current = clean + np.random.default_rng(seed).normal(0.0, 3e-12, N)
+    epoch = find_step(_sweep(current), SETTINGS)
+    assert epoch.usable
+    assert abs(epoch.onset_index - ON) <= 1 and abs(epoch.offset_index - OFF) <= 1
