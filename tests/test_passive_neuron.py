@@ -8,6 +8,7 @@ simulated recordings, noiseless and with rig nuisances. Seeds are fixed.
 from __future__ import annotations
 
 import math
+from dataclasses import replace
 
 import neuron_models as nm
 import numpy as np
@@ -146,6 +147,32 @@ def test_ih_cell_rests_where_asked_and_sags(ih_loaded: None) -> None:
     assert rest["tau_frozen_s"] < WITH_IH.tau_m_s
 
 
+def test_ih_rin_at_rest_matches_linearized_membrane(ih_loaded: None) -> None:
+    # Steady state of a one-compartment membrane linearized at rest (the parallel-conductance
+    # equivalent circuit, Johnston & Wu 1995 ch. 2, with a voltage-dependent gate):
+    # 1 / Rin = A (g_pas + gbar m_inf + gbar (V - E_h) dm_inf/dV). m_inf is read from NEURON's
+    # initialised gate at V +/- 0.1 mV, so the check is of rin_at_rest's central difference.
+    from neuron import h
+
+    cell = nm.NeuronCell(WITH_IH)
+    seg = cell.soma(0.5)
+    mech = getattr(seg, nm.IH_MECHANISM)
+    v_mv, dv_mv = WITH_IH.vrest_v * 1e3, 0.1
+    m = {}
+    for v in (v_mv - dv_mv, v_mv, v_mv + dv_mv):
+        h.finitialize(v)
+        m[v] = mech.m
+    dm_dv = (m[v_mv + dv_mv] - m[v_mv - dv_mv]) / (2 * dv_mv * 1e-3)  # per V
+    gbar = WITH_IH.gh_s_m2
+    e_h = mech.ehcn * 1e-3
+    g = 1 / WITH_IH.rm_ohm_m2 + gbar * m[v_mv] + gbar * (WITH_IH.vrest_v - e_h) * dm_dv
+    rin_linear = 1 / (WITH_IH.soma_area_m2 * g)
+    del cell
+    rin_sim = nm.rin_at_rest(WITH_IH, protocol_for(4e8))
+    assert rin_sim == pytest.approx(rin_linear, rel=2e-3)
+    assert rin_sim < 0.9 * WITH_IH.rm_ohm_m2 / WITH_IH.soma_area_m2  # Ih open at rest lowers Rin
+
+
 # --------------------------------------------------------------------------- the fitter
 
 
@@ -212,13 +239,16 @@ def test_high_resistance_cell_with_rig_nuisances() -> None:
     assert rel(cf.tau_s, truth["tau_s"]) < 0.05
 
 
-def test_ball_and_stick_tau_and_rin() -> None:
+@pytest.mark.parametrize("dend_length_m", [600e-6, 1100e-6])  # L = 0.76 and 1.39
+def test_ball_and_stick_tau_and_rin(dend_length_m: float) -> None:
     # tau0 = Rm Cm (Rall 1969); Rin = 1 / (G_soma + G_inf tanh L) (Rall 1959; Johnston & Wu
     # ch. 4), checked against NEURON above. Cm = tau / Rin is what a fit can see; it is below
     # the membrane's total capacitance (Golowasch et al. 2009), so only tau / Rin is checked
-    # for size. Tolerances as for the single compartment.
-    truth = nm.passive_truth(BALL_STICK)
-    sim = nm.simulate_cell("ball-stick", BALL_STICK, protocol_for(truth["rin_ohm"]), RIG, seed=21)
+    # for size. Tolerances as for the single compartment. At L = 1.39 the first equalizing
+    # time constant is tau0 / 6 (Rall 1969), so a fit starting ~1 tau0 in still sees tau0.
+    spec = replace(BALL_STICK, dend_length_m=dend_length_m)
+    truth = nm.passive_truth(spec)
+    sim = nm.simulate_cell("ball-stick", spec, protocol_for(truth["rin_ohm"]), RIG, seed=21)
     cf = fit(sim)
     assert cf.status == "ok"
     assert rel(cf.tau_s, truth["tau_s"]) < 0.05
