@@ -688,7 +688,7 @@ def simulate_cell(
             number=i,
             start_time=float(start[i]),
             protocol="current steps",
-            settings={"bias_current_a": protocol.holding_a, "bridge_balance_ohm": 0.0},
+            settings={"bias_current_a": protocol.holding_a},
         )
         for i in range(n_sweeps)
     )
