@@ -41,6 +41,7 @@ def _cell_rows() -> list[dict]:
                 "qc_reasons": ("Vrest -41 mV above -50 mV", "noise 0.9 mV") if i == 1 else (),
                 "status": "ok",
                 "slice": i // 2,
+                "notes": "",  # empty for every cell: must survive CSV and Parquet alike
             }
         )
     rows.append(
@@ -54,7 +55,7 @@ def test_cells_frame_column_order_and_types():
     assert list(frame.columns[:5]) == ["cell_id", "source_file", "condition", "animal", "slice"]
     # the rest in the order first seen in the rows
     assert list(frame.columns[5:]) == [
-        "n_sweeps", "rin_mohm", "tau_ms", "qc_pass", "qc_reasons", "status"
+        "n_sweeps", "rin_mohm", "tau_ms", "qc_pass", "qc_reasons", "status", "notes"
     ]  # fmt: skip
     assert frame["qc_pass"].dtype == bool
     # a cell without a verdict has not passed

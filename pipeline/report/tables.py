@@ -76,7 +76,11 @@ def _tidy(frame: pd.DataFrame) -> pd.DataFrame:
         else:
             # text, or mixed content (a sheet column with numbers and words): keep it as text
             text = [None if _missing(v) or v == "" else str(v) for v in frame[col]]
-            frame[col] = pd.Series(text, index=frame.index)
+            if all(t is None for t in text):
+                # an all-empty column reads back from CSV as float NaN: store it that way
+                frame[col] = np.nan
+            else:
+                frame[col] = pd.Series(text, index=frame.index)
     return frame
 
 
