@@ -5,8 +5,12 @@ Rin is the bridge-corrected steady-state slope near rest: the slope through the 
 lies within ``linear_range_v`` (at least the ``n_small_steps`` smallest), or the slope at zero
 current of a quadratic through the origin when the V-I relation curves significantly (Ih,
 inward rectification), minus the bridge error (slope of the edge jumps against current).
-Tau is the inverse-variance weighted mean of the per-sweep tau0 fits of the same small steps;
-Cm = tau / Rin with the interval propagated in quadrature of relative half-widths.
+Tau is the inverse-variance weighted mean of the per-sweep tau0 fits of the hyperpolarizing
+steps within ``tau_range_v``; where the cell sags, those are frozen-gate time constants of the
+exp+sag model, whose gate strength kappa (steady / instantaneous conductance - 1) is averaged
+too. Cm = tau / (Rin (1 + kappa)) -- tau over the input resistance before the slow gate moves,
+plain tau / Rin without sag -- with the interval propagated in quadrature of relative
+half-widths.
 
 References
 ----------
@@ -222,7 +226,9 @@ def summarize_cell(
     rin_peak = _through_origin(i[pick], peak[pick]).value - re
     chord = ss[-1] / i[-1] - re
     tau, tau_ci, tau_se, tau_used = _tau(hyper, peak - re * i, s)
-    cm, cm_ci = _cm(tau, tau_ci, rin, _interval(rin, rin_se, apparent.dof, s.confidence))
+    kappa, kappa_half = _kappa([f for f in hyper if f.sweep in tau_used], s.confidence)
+    rin_ci = _interval(rin, rin_se, apparent.dof, s.confidence)
+    cm, cm_ci = _cm(tau, tau_ci, rin * (1.0 + kappa), rin_ci, kappa_half / (1.0 + kappa))
     sag, at_target = _sag(hyper, i, ss, peak, re, s)
     used = sorted({hyper[k].sweep for k in pick} | {hyper[-1].sweep} | tau_used)
     peel = _peel([hyper[k] for k in pick], s) if s.two_exp else {}
@@ -231,7 +237,8 @@ def summarize_cell(
         used=tuple(used),
         excluded=excluded,
         rin_ohm=rin,
-        rin_ci_ohm=_interval(rin, rin_se, apparent.dof, s.confidence),
+        rin_ci_ohm=rin_ci,
+        sag_kappa=kappa,
         rin_peak_ohm=rin_peak,
         rin_apparent_ohm=apparent.value,
         rin_method=method,
@@ -281,12 +288,40 @@ def _tau_ok(f: SweepFit) -> bool:
     return f.charging.ok and math.isfinite(f.charging.tau_se) and f.charging.tau_se > 0
 
 
-def _cm(tau, tau_ci, rin, rin_ci):
-    """Cm = tau / Rin (F) and its interval from the relative half-widths in quadrature."""
-    if not (math.isfinite(tau) and math.isfinite(rin) and rin > 0):
+def _kappa(fits: list[SweepFit], level: float) -> tuple[float, float]:
+    """Gate strength kappa at rest (0 without exp+sag fits) and its interval half-width.
+
+    Kappa grows with the step (the gate opens further), so it is the intercept at zero current
+    of a line through the sweeps' (step, kappa); their mean when fewer than 3 sweeps.
+    """
+    pts = [(f.step_a, f.charging.kappa) for f in fits if f.charging.model == "exp+sag"]
+    pts = np.array([p for p in pts if math.isfinite(p[1])]).reshape(-1, 2)
+    if pts.shape[0] == 0:
+        return 0.0, 0.0
+    if pts.shape[0] < 3:
+        return float(pts[:, 1].mean()), NAN
+    x, y = pts[:, 0] / np.max(np.abs(pts[:, 0])), pts[:, 1]
+    design = np.column_stack([np.ones_like(x), x])
+    coef, *_ = np.linalg.lstsq(design, y, rcond=None)
+    resid = y - design @ coef
+    dof = x.size - 2
+    cov = float(resid @ resid) / dof * np.linalg.inv(design.T @ design)
+    lo, hi = _interval(float(coef[0]), math.sqrt(cov[0, 0]), dof, level)
+    return float(coef[0]), (hi - lo) / 2
+
+
+def _cm(tau, tau_ci, r_inst, rin_ci, kappa_rel):
+    """Cm = tau / R_inst (F), R_inst = Rin (1 + kappa) the input resistance before any slow gate
+    moves, and its interval from the relative half-widths in quadrature."""
+    if not (math.isfinite(tau) and math.isfinite(r_inst) and r_inst > 0):
         return NAN, (NAN, NAN)
-    cm = tau / rin
-    rel = math.hypot((tau_ci[1] - tau_ci[0]) / 2 / tau, (rin_ci[1] - rin_ci[0]) / 2 / rin)
+    cm = tau / r_inst
+    rin = (rin_ci[0] + rin_ci[1]) / 2
+    rel = math.sqrt(
+        ((tau_ci[1] - tau_ci[0]) / 2 / tau) ** 2
+        + ((rin_ci[1] - rin_ci[0]) / 2 / rin) ** 2
+        + kappa_rel**2
+    )
     return cm, (cm * (1 - rel), cm * (1 + rel)) if math.isfinite(rel) else (NAN, NAN)
 
 

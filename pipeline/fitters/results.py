@@ -236,6 +236,7 @@ class CellFit:
     electrotonic_length: float = NAN  # L = pi / sqrt(tau0/tau1 - 1) (Rall 1969)
     peel_status: str = ""  # 'ok' or why tau1 / L are not given
     notes: str = ""  # why some cell values are NaN or uncorrected, '; '-separated
+    sag_kappa: float = 0.0  # mean gate strength of the exp+sag fits (0 without sag); Cm uses it
 
     @property
     def n_sweeps(self) -> int:
@@ -267,6 +268,7 @@ class CellFit:
             "sag_ratio": self.sag_ratio,
             "sag_step_pa": _pa(self.sag_step_a),
             "sag_ratio_at_target": self.sag_ratio_at_target,
+            "sag_kappa": self.sag_kappa,
             "rebound_mv": _mv(self.rebound_v),
             "status": self.status,
             "notes": self.notes,

@@ -381,25 +381,30 @@ def _charging_fit(
     if not sagging:  # the plateau pins v_inf down: run the fit towards steady state
         i1 = min(t.size - 1, int(np.searchsorted(t, t[0] + s.fit_span_tau * fit.tau)))
         fit = _refit(fit, t, y, i0, i1)
+    use_sag = s.charging_model == "exp+sag" or (s.charging_model == "auto" and sagging)
+
+    def fit_from(j: int) -> ExpFit:
+        if use_sag:
+            gated = fit_sag_model(t[j:], y[j:], onset, fit, t[i_peak], s.sag_coarse_bins)
+            if gated.ok and math.isfinite(gated.tau_se):
+                return gated
+        return _refit(
+            fit, t, y, j, max(i1, min(t.size - 1, j + s.min_fit_bins)) if not sagging else i1
+        )
+
     # peel: a fit starting one tau in is free of the faster equalising components; the early
     # excess of the data over it gives their time constant, and the fit starts after they decay
     j_late = int(np.searchsorted(t, t[0] + fit.tau))
-    late = _refit(fit, t, y, j_late, i1) if j_late - i0 >= s.min_fit_bins else fit
-    excess = np.sign(late.amp) * (y[:j_late] - late.curve(t[:j_late]))
+    late = fit_from(j_late) if j_late - i0 >= s.min_fit_bins else fit
+    excess = (y[:j_late] - late.curve(t[:j_late])) * np.sign(fit.amp)  # > 0: data lags the fit
     tau_fast = _fast_tau(t[:j_late], excess, noise)
     j0 = i0
     if np.isfinite(tau_fast) and tau_fast < late.tau / 2:
         j0 = max(j0, int(np.searchsorted(t, t[0] + s.equalization_factor * tau_fast)))
     j0 = max(j0, int(np.searchsorted(t, onset + s.fit_start_min_s)))
-    if s.charging_model == "exp+sag" or (s.charging_model == "auto" and sagging):
-        gated = fit_sag_model(t[j0:], y[j0:], onset, fit, t[i_peak], s.sag_coarse_bins)
-        if gated.ok and math.isfinite(gated.tau_se):
-            return gated, tau_fast, ""
-    if not sagging:
-        i1 = max(i1, min(t.size - 1, j0 + s.min_fit_bins))
-    if i1 - j0 + 1 < s.min_fit_bins:
+    if not use_sag and sagging and i1 - j0 + 1 < s.min_fit_bins:
         return ExpFit(), tau_fast, "charging-curve fit window ends before it can start"
-    return _refit(fit, t, y, j0, i1), tau_fast, ""
+    return fit_from(j0), tau_fast, ""
 
 
 def _rebin(t: np.ndarray, y: np.ndarray, switch: int, k: int):
