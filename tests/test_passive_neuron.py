@@ -176,11 +176,16 @@ def test_ih_rin_at_rest_matches_linearized_membrane(ih_loaded: None) -> None:
 # --------------------------------------------------------------------------- the fitter
 
 
-def fit(sim: nm.SimulatedCell):
-    """Run the passive fitter on a simulated recording."""
+def fit_cell_of(recording):
+    """Run the passive fitter on a recording (imported late: the harness tests need no fitter)."""
     from pipeline.fitters.passive import fit_cell
 
-    return fit_cell(sim.recording)
+    return fit_cell(recording)
+
+
+def fit(sim: nm.SimulatedCell):
+    """Run the passive fitter on a simulated cell's recording."""
+    return fit_cell_of(sim.recording)
 
 
 def test_single_compartment_noiseless_is_exact() -> None:
@@ -213,8 +218,9 @@ def test_single_compartment_with_rig_nuisances(seed: int) -> None:
     # Same truth as above; noise 0.4 mV RMS, 50 Hz hum, 12 Mohm bridge error through a 40 us
     # filter, drift, 3 pA current noise. Rin must be the membrane's, not membrane + bridge.
     # Tolerances: the per-cell 95th-percentile targets of benchmarks/accuracy.py (Rin 3%,
-    # tau 5%, Cm 6%, Vrest 0.3 mV). Bridge: +/-3 Mohm; the jump extrapolated from 2 ms of
-    # 0.4 mV noise is good to ~0.15 mV per edge, i.e. ~1 Mohm SD over these steps (8-56 pA).
+    # tau 5%, Cm 6%, Vrest 0.3 mV). Bridge: +/-5 Mohm, 3 SD of a plain estimator (lines
+    # through 2 ms either side of each edge, 0.3 ms settling) measured on 40 seeds of this
+    # cell and rig (SD 1.7 Mohm): with 8-56 pA steps the jumps are 0.1-0.7 mV in 0.4 mV noise.
     truth = nm.passive_truth(SINGLE)
     sim = nm.simulate_cell("single-rig", SINGLE, protocol_for(truth["rin_ohm"]), RIG, seed=seed)
     cf = fit(sim)
@@ -223,9 +229,22 @@ def test_single_compartment_with_rig_nuisances(seed: int) -> None:
     assert rel(cf.tau_s, truth["tau_s"]) < 0.05
     assert rel(cf.cm_f, truth["cm_f"]) < 0.06
     assert cf.vrest_v == pytest.approx(truth["vrest_v"], abs=0.3e-3)
-    assert cf.bridge_error_ohm == pytest.approx(RIG.bridge_ohm, abs=3e6)
-    lo, hi = cf.rin_ci_ohm
-    assert lo <= cf.rin_ohm <= hi
+    assert cf.bridge_error_ohm == pytest.approx(RIG.bridge_ohm, abs=5e6)
+
+
+def test_intervals_cover_the_truth() -> None:
+    # 95% intervals should hold the truth in ~19 of 20 independent cells; at least 17 of 20 is
+    # asked (for a true 95% coverage, fewer than 17 happens with probability 1.6%, binomial).
+    truth = nm.passive_truth(SINGLE)
+    proto = protocol_for(truth["rin_ohm"])
+    vm = nm.simulate(SINGLE, proto)
+    hits = {"rin": 0, "tau": 0, "cm": 0}
+    for seed in range(100, 120):
+        cf = fit_cell_of(nm.make_recording(f"cover{seed}", vm, proto, RIG, seed=seed))
+        hits["rin"] += cf.rin_ci_ohm[0] <= truth["rin_ohm"] <= cf.rin_ci_ohm[1]
+        hits["tau"] += cf.tau_ci_s[0] <= truth["tau_s"] <= cf.tau_ci_s[1]
+        hits["cm"] += cf.cm_ci_f[0] <= truth["cm_f"] <= cf.cm_ci_f[1]
+    assert min(hits.values()) >= 17, hits
 
 
 def test_high_resistance_cell_with_rig_nuisances() -> None:
