@@ -185,6 +185,10 @@ def test_summary_plot_with_and_without_condition():
     )  # 3 panels x 2.4 in x 100 dpi
     assert with_groups != no_groups
     assert summary_png(fake_cells(), ("not_a_column",)) is None
+    # a group made only of cells without values (cell 2 alone) gets no column: same image
+    lonely = fake_cells()
+    lonely.loc[2, "condition"] = "unread"
+    assert summary_png(lonely, ("vrest_mv",)) == summary_png(fake_cells(), ("vrest_mv",))
     # deterministic: the same table gives the same image
     assert summary_png(fake_cells(), ("tau_ms",)) == summary_png(fake_cells(), ("tau_ms",))
 

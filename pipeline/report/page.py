@@ -191,6 +191,9 @@ def summary_png(
     if not cols or cells.empty:
         return None
     title, order, labels = _groups(cells, group_column)
+    # a group whose cells have no value at all (e.g. files that could not be read) gets no column
+    has_value = cells[cols].apply(pd.to_numeric, errors="coerce").notna().any(axis=1)
+    order = [g for g in order if has_value[labels == g].any()] or order
     states = [_row_state(r) for r in cells.to_dict(orient="records")]
     passed = pd.Series([st == "pass" for st in states], index=cells.index)
     rng = np.random.default_rng(0)  # fixed jitter: the page is identical run to run
@@ -281,7 +284,18 @@ def render_page(
     summary_columns: Sequence[str] = DEFAULT_SUMMARY,
     group_column: str | None = "condition",
 ) -> str:
-    """The page's HTML (what :func:`write_page` writes); see there for the parameters."""
+    """Render the day's page to a string (what :func:`write_page` writes).
+
+    Parameters
+    ----------
+    cells, run_info, figures, summary_columns, group_column
+        As for :func:`write_page`.
+
+    Returns
+    -------
+    str
+        The HTML document.
+    """
     png = summary_png(cells, summary_columns, group_column)
     context = {
         "title": f"patchbatch day summary ({len(cells)} cells)",
