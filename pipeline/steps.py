@@ -246,11 +246,17 @@ def _window_noise(current: np.ndarray, width: int) -> np.ndarray:
     return windows[:, width // 2] * _SIGMA_PER_MAD2
 
 
+def _median(values: np.ndarray) -> float:
+    """Upper median (no averaging of the middle pair, no NaN checks: a few times faster)."""
+    middle = values.size // 2
+    return float(np.partition(values, middle)[middle])
+
+
 def _level(part: np.ndarray, spread: float | None = None) -> float:
     """Level of a plateau, A: the median of at most ~1000 evenly spread samples (robust and
     fast); with ``spread`` (A), the plateau's mean instead (more precise), taken over the
     samples within ``spread`` of the median when outliers pull the plain mean away."""
-    level = float(np.median(part[:: 1 + part.size // 1024]))
+    level = _median(part[:: 1 + part.size // 1024])
     if spread is None:
         return level
     mean = float(part.mean())
@@ -298,7 +304,7 @@ def _from_current(sweep: Sweep, current: np.ndarray, settings: StepSettings) -> 
     noise_win = _window_noise(current, max(32, 4 * k))
     quiet = np.partition(noise_win, noise_win.size // 10)[noise_win.size // 10]
     loud = noise_win > max(4.0 * quiet, 0.5 * settings.min_amplitude_a)
-    sigma = float(np.median(noise_win[~loud])) if (~loud).any() else float(quiet)
+    sigma = _median(noise_win[~loud]) if (~loud).any() else float(quiet)
     if loud.sum() >= max(5, 0.02 * loud.size) or sigma > settings.noise_limit_a:
         rms, share = (float(np.median(noise_win[loud])), loud.mean()) if loud.any() else (sigma, 1)
         return _unusable(
