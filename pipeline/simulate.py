@@ -39,6 +39,7 @@ through the amplifier filter plus noise. Injected current is positive = depolari
 from __future__ import annotations
 
 import math
+from collections.abc import Callable
 from dataclasses import dataclass, replace
 
 import numpy as np
@@ -327,7 +328,9 @@ class _Channels:
     powers: np.ndarray
     g: np.ndarray  # per gate column: conductance of the channel it closes (S), 0 for co-gates
     e: np.ndarray  # reversal of that channel, V
-    gates: object  # callable v -> (x_inf, tau) arrays shaped v.shape + (n_gates,)
+    gates: Callable[
+        [np.ndarray], tuple[np.ndarray, np.ndarray]
+    ]  # v -> (x_inf, tau), (..., n_gates)
 
 
 def _channels(cell: CellModel) -> _Channels:
@@ -515,7 +518,17 @@ def _integrate(cell: CellModel, protocol: StepProtocol) -> np.ndarray:
     return out.T + cell.e_leak_v
 
 
-def _gated_loop(cell, ch, dt, v0, u, prop_t, gain, injected, out) -> None:
+def _gated_loop(
+    cell: CellModel,
+    ch: _Channels,
+    dt: float,
+    v0: float,
+    u: np.ndarray,
+    prop_t: np.ndarray,
+    gain: np.ndarray,
+    injected: np.ndarray,
+    out: np.ndarray,
+) -> None:
     """The time loop with soma ion currents; writes the soma's ``u`` into ``out``.
 
     Gates advance by exponential Euler at the step's starting voltage; the conductance they
