@@ -300,7 +300,7 @@ def test_figure_names_case_insensitive():
 
 def test_real_hostile_files_written(tmp_path):
     rec, epochs, fit, verdict = fake_cell(n_sweeps=4)
-    for h in ("../x", "<script>"):
+    for h in ("../x", "<script>", "$\\frac{a$_^"):  # "$" must not start mathtext
         rec2 = dataclasses.replace(rec, cell_id=h)
         cell_figure(rec2, epochs, fit, verdict, tmp_path / f"{safe_name(h)}.png", dpi=30)
-    assert sorted(p.suffix for p in tmp_path.iterdir()) == [".png", ".png"]
+    assert sorted(p.suffix for p in tmp_path.iterdir()) == [".png"] * 3
