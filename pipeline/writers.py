@@ -11,17 +11,16 @@ the format's own fields.
 
 from __future__ import annotations
 
-import contextlib
 import datetime as dt
 import os
-import tempfile
 import uuid
-from collections.abc import Iterator, Sequence
+from collections.abc import Sequence
 from pathlib import Path
 
 import numpy as np
 
 from pipeline.recording import Recording
+from pipeline.report.atomic import atomic_path
 
 __all__ = ["write_nwb", "write_nix", "write_csv"]
 
@@ -30,25 +29,6 @@ _NWB_SETTINGS = {
     "bridge_balance_ohm": "bridge_balance",
     "capacitance_compensation_f": "capacitance_compensation",
 }
-
-
-@contextlib.contextmanager
-def _atomic(path: str | os.PathLike) -> Iterator[str]:
-    """Yield a temporary path beside ``path``; move it onto ``path`` if the block succeeds."""
-    target = Path(path)
-    target.parent.mkdir(parents=True, exist_ok=True)
-    # Hidden, and keeping the suffix (pynwb warns about other suffixes).
-    fd, tmp = tempfile.mkstemp(
-        dir=target.parent, prefix=f".{target.stem}.", suffix=f".tmp{target.suffix}"
-    )
-    os.close(fd)
-    os.unlink(tmp)  # the libraries below want to create the file themselves
-    try:
-        yield tmp
-        os.replace(tmp, target)
-    finally:
-        if os.path.exists(tmp):
-            os.unlink(tmp)
 
 
 def _electrode_names(recordings: Sequence[Recording]) -> list[str]:
@@ -158,7 +138,7 @@ def write_nwb(
             nwbfile.add_intracellular_recording(
                 electrode=electrode, stimulus=stimulus, response=response
             )
-    with _atomic(path) as tmp:
+    with atomic_path(path) as tmp:
         with NWBHDF5IO(tmp, mode="w") as io:
             io.write(nwbfile)
     return Path(path)
@@ -236,7 +216,7 @@ def write_nix(recordings: Sequence[Recording], path: str | os.PathLike) -> Path:
                         )
                     )
         block.segments.append(seg)
-    with _atomic(path) as tmp:
+    with atomic_path(path) as tmp:
         io = NixIO(tmp, mode="ow")
         try:
             io.write_block(block)
@@ -286,6 +266,6 @@ def write_csv(
             cols["time_s"] = sweep.start_time + np.round(sweep.time(), 6)
         frames.append(pd.DataFrame(cols))
     table = pd.concat(frames, ignore_index=True) if frames else pd.DataFrame(columns=["sweep"])
-    with _atomic(path) as tmp:
+    with atomic_path(path) as tmp:
         table.to_csv(tmp, index=False)  # floats as repr: shortest text that reads back exactly
     return Path(path)

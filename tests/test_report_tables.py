@@ -11,13 +11,13 @@ import pandas as pd
 import pytest
 
 import pipeline
+from pipeline.cache import file_sha256 as sha256_file
 from pipeline.report import atomic
 from pipeline.report.atomic import atomic_path, atomic_write_bytes, atomic_write_text
 from pipeline.report.tables import (
     cells_frame,
     frame_to_csv,
     read_table_csv,
-    sha256_file,
     spikes_frame,
     sweeps_frame,
     write_run_json,

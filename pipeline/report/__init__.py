@@ -9,7 +9,6 @@ from pipeline.report.page import render_page, write_page
 from pipeline.report.tables import (
     cells_frame,
     read_table_csv,
-    sha256_file,
     spikes_frame,
     sweeps_frame,
     write_run_json,
@@ -27,7 +26,6 @@ __all__ = [
     "read_table_csv",
     "render_page",
     "safe_name",
-    "sha256_file",
     "spikes_frame",
     "sweeps_frame",
     "write_page",

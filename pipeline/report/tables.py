@@ -9,7 +9,6 @@ NaN written as an empty field, booleans as ``true``/``false``.
 from __future__ import annotations
 
 import datetime as _dt
-import hashlib
 import io
 import json
 import math
@@ -225,28 +224,6 @@ def write_tables(
     if spikes is not None:
         written["spikes.csv"] = atomic_write_text(out / "spikes.csv", frame_to_csv(spikes))
     return written
-
-
-def sha256_file(path: str | os.PathLike[str], chunk_size: int = 1 << 20) -> str:
-    """SHA-256 of a file's content, read in chunks (recordings can be large).
-
-    Parameters
-    ----------
-    path : str or os.PathLike
-        File to hash.
-    chunk_size : int
-        Bytes read at a time.
-
-    Returns
-    -------
-    str
-        Lower-case hex digest.
-    """
-    digest = hashlib.sha256()
-    with open(path, "rb") as fh:
-        while block := fh.read(chunk_size):
-            digest.update(block)
-    return digest.hexdigest()
 
 
 def to_jsonable(value: Any) -> Any:
