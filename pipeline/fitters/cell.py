@@ -136,20 +136,39 @@ def _vrest(
     return float(intercept), float(slope * (t[-1] - t[0])), float(slope)
 
 
-def _bridge(fits: list[SweepFit], notes: list[str]) -> _Slope:
-    """Bridge error (ohm): slope of the edge jumps against the current step through them."""
+def _bridge(fits: list[SweepFit], s: PassiveSettings, notes: list[str]) -> tuple[_Slope, str]:
+    """Bridge error (ohm): slope of the edge jumps against the current step through them.
+
+    The jumps come from the plain (quadratic) extrapolation unless the curved one (with a t^1.5
+    term) fits the early responses better by a pooled F-test at ``jump_curvature_p`` -- as it does
+    where a small soma charges its dendrite within the first milliseconds.
+    """
+    drop = sum(f.jump_ssr_drop_v2 for f in fits)
+    ssr = sum(f.jump_ssr_v2 for f in fits)
+    dof = sum(f.jump_dof for f in fits)
+    edges = 2 * sum(1 for f in fits if f.jump_dof > 0)
+    curved = False
+    if edges and dof > edges and ssr > 0:
+        curved = bool(stats.f.sf((drop / edges) / (ssr / dof), edges, dof) < s.jump_curvature_p)
+    elif edges and ssr == 0 and drop > 0:
+        curved = True
     x, y = [], []
     for f in fits:
-        if math.isfinite(f.onset_jump_v):
+        on, off = (
+            (f.onset_jump_curved_v, f.offset_jump_curved_v)
+            if curved
+            else (f.onset_jump_v, f.offset_jump_v)
+        )
+        if math.isfinite(on):
             x.append(f.step_a)
-            y.append(f.onset_jump_v)
-        if math.isfinite(f.offset_jump_v):
+            y.append(on)
+        if math.isfinite(off):
             x.append(-f.step_a)
-            y.append(f.offset_jump_v)
+            y.append(off)
     if len(x) < 2:
         notes.append("edge jumps not measurable: Rin not bridge-corrected")
-        return _Slope()
-    return _robust_origin_slope(np.array(x), np.array(y))
+        return _Slope(), ""
+    return _robust_origin_slope(np.array(x), np.array(y)), ("curved" if curved else "quadratic")
 
 
 def _pick_small(hyper: list[SweepFit], dv_m: np.ndarray, s: PassiveSettings) -> list[int]:
@@ -209,7 +228,9 @@ def summarize_cell(
             notes="; ".join(notes),
         )
     hyper.sort(key=lambda f: -f.step_a)
-    bridge = _bridge(fits, notes) if s.bridge_correction else _Slope(0.0, 0.0, 0)
+    bridge, bridge_method = (
+        _bridge(fits, s, notes) if s.bridge_correction else (_Slope(0.0, 0.0, 0), "")
+    )
     re = bridge.value if math.isfinite(bridge.value) else 0.0
     i = np.array([f.step_a for f in hyper])
     shift = np.array([_drift_shift(f, rate) for f in hyper]) if s.drift_correction else 0.0
@@ -247,6 +268,7 @@ def summarize_cell(
         iv_curvature=chord / rin - 1.0 if len(hyper) > 1 and rin > 0 else NAN,
         bridge_error_ohm=bridge.value,
         bridge_error_se_ohm=bridge.se,
+        bridge_method=bridge_method,
         tau_s=tau,
         tau_ci_s=tau_ci,
         cm_f=cm,

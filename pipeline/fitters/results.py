@@ -158,6 +158,13 @@ class SweepFit:
     clipped_samples: int = 0  # samples in flat runs at the trace's extreme (amplifier rail)
     charging2: BiExpFit | None = None  # two-exponential fit, when asked for
     tau_fast_s: float = NAN  # fastest (equalising) time constant found by peeling, s
+    onset_jump_curved_v: float = NAN  # onset jump extrapolated with a t^1.5 term too, V
+    offset_jump_curved_v: float = NAN
+    jump_ssr_drop_v2: float = (
+        0.0  # residual sum of squares the t^1.5 term removes (both edges), V^2
+    )
+    jump_ssr_v2: float = 0.0  # residual sum of squares of the curved extrapolations, V^2
+    jump_dof: int = 0  # their degrees of freedom
 
     @property
     def baseline_shift_v(self) -> float:
@@ -228,6 +235,7 @@ class CellFit:
     rin_apparent_ohm: float = NAN  # steady-state slope before the bridge correction, ohm
     rin_method: str = ""  # 'linear' (slope of the linear range) or 'quadratic' (slope at rest)
     bridge_error_se_ohm: float = NAN
+    bridge_method: str = ""  # 'quadratic' or 'curved' (t^1.5 term) extrapolation of the jumps
     sag_ratio_at_target: float = NAN  # interpolated at PassiveSettings.sag_target_v
     two_exp: bool = False  # True when the two-exponential (peeling) values were asked for
     tau0_s: float = NAN  # slow time constant of the two-exponential fits

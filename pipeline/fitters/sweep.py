@@ -88,6 +88,8 @@ class PassiveSettings:
     iv_range_v: float = 0.025
     # p-value of the F-test below which a higher-degree V-I polynomial is used (slope at rest)
     curvature_p: float = 0.01
+    # p-value of the pooled F-test below which the edge jumps are extrapolated with a t^1.5 term
+    jump_curvature_p: float = 1e-4
     # subtract the bridge error estimated from the edge jumps
     bridge_correction: bool = True
     # correct deflections for the baseline drift measured across sweeps
@@ -543,15 +545,52 @@ def fit_two_exponentials(t: np.ndarray, y: np.ndarray, slow: ExpFit, tau_fast: f
     )
 
 
-def _edge_jumps(v: np.ndarray, w: _Windows, on: int, off: int, base: float) -> tuple[float, float]:
+@functools.lru_cache(maxsize=32)
+def _jump_design(first: int, count: int, curved: bool) -> tuple[np.ndarray, np.ndarray]:
+    """Design (powers of the time since the edge) and its pseudo-inverse for extrapolating the
+    membrane response back to an edge: 1, t, t^2, plus t^1.5 when ``curved`` (the early
+    response of a soma with a dendritic cable bends like a power series in sqrt(t))."""
+    x = np.arange(first, first + count) / count
+    powers = (0.0, 1.0, 1.5, 2.0) if curved else (0.0, 1.0, 2.0)
+    design = np.column_stack([x**p for p in powers])
+    pinv = np.linalg.pinv(design)
+    design.setflags(write=False)
+    pinv.setflags(write=False)
+    return design, pinv
+
+
+def _edge_extrapolations(v: np.ndarray, edge: int, first: int, count: int):
+    """Level at ``edge`` (V) from the plain and the curved design, and their residual sums of
+    squares (V^2); NaNs when the samples run out or are not finite."""
+    y = v[edge + first : edge + first + count]
+    if y.size < count or not np.isfinite(y).all():
+        return NAN, NAN, NAN, NAN
+    out = []
+    for curved in (False, True):
+        design, pinv = _jump_design(first, count, curved)
+        coef = pinv @ y
+        resid = y - design @ coef
+        out += [float(coef[0]), float(resid @ resid)]
+    return out[0], out[2], out[1], out[3]
+
+
+def _edge_jumps(v: np.ndarray, w: _Windows, on: int, off: int, base: float) -> dict[str, float]:
     """Fast jumps (V) at onset and offset: the membrane response extrapolated back to each edge
     from just after the electrode settling, minus the level just before the edge (the baseline
-    mean; a line through the steady-state window at the offset)."""
-    j_on = _edge_level(v, on, w.settle, w.jump) - base
+    mean; a line through the steady-state window at the offset). Both the plain and the curved
+    extrapolation are kept, with the residual sums that let the cell choose between them."""
     nss = w.ss[1] - w.ss[0]
     pre = _edge_level(v, off, -nss, nss, degree=1)
-    j_off = _edge_level(v, off, w.settle, w.jump) - pre
-    return j_on, j_off
+    j = {}
+    drop = ssr = dof = 0.0
+    for name, edge, level in (("onset", on, base), ("offset", off, pre)):
+        plain, curved, ssr_p, ssr_c = _edge_extrapolations(v, edge, w.settle, w.jump)
+        j[f"{name}_jump_v"] = plain - level
+        j[f"{name}_jump_curved_v"] = curved - level
+        if math.isfinite(ssr_c):
+            drop, ssr, dof = drop + ssr_p - ssr_c, ssr + ssr_c, dof + w.jump - 4
+    j.update(jump_ssr_drop_v2=drop, jump_ssr_v2=ssr, jump_dof=int(dof))
+    return j
 
 
 def fit_sweep(sweep: Sweep, epoch: StepEpoch, settings: PassiveSettings) -> SweepFit:
@@ -648,12 +687,13 @@ def _measure(
     if not usable(on, off, "step"):
         return SweepFit(**head, **fit, reason="; ".join(reasons))
     ss_dv = float(v[slice(*w.ss)].mean()) - base
-    j_on, j_off = _edge_jumps(v, w, on, off, base)
+    jumps = _edge_jumps(v, w, on, off, base)
+    j_on, j_off = jumps["onset_jump_v"], jumps["offset_jump_v"]
     sign = 1.0 if epoch.amplitude > 0 else -1.0
     smooth = _boxcar(v[on + w.settle : off], round(s.peak_smooth_s * rate))
     k_peak = int(np.argmax(sign * smooth))
     peak_dv = float(smooth[k_peak]) - base
-    fit.update(ss_dv=ss_dv, peak_dv=peak_dv, onset_jump_v=j_on, offset_jump_v=j_off)
+    fit.update(ss_dv=ss_dv, peak_dv=peak_dv, **jumps)
     fit["rin_ohm"] = ss_dv / epoch.amplitude
     if sign > 0:
         reasons.append("depolarizing step: no charging fit, sag or rebound")
