@@ -71,6 +71,9 @@ def main(argv: Sequence[str] | None = None) -> int:
     except PatchbatchError as exc:
         print(f"patchbatch: {exc}", file=sys.stderr)
         return 2
+    except BrokenPipeError:  # e.g. `patchbatch inspect FILE | head`
+        sys.stderr.close()
+        return 0
     except KeyboardInterrupt:
         print("patchbatch: interrupted; re-run the same command to resume", file=sys.stderr)
         return 130
