@@ -12,8 +12,10 @@ Protocol: 15 sweeps x 1.5 s at 20 kHz, steps of ~2 mV from -10 to +4 increments.
 
 Truth: analytic for passive cells (Rm / area; Rall's cable formula plus the soma for a
 ball-and-stick; tau = Rm Cm, Rall 1969; Cm = tau / Rin, which for a ball-and-stick is below the
-total membrane capacitance, Golowasch et al. 2009); from noiseless NEURON runs for cells with
-hsag (see ``neuron_models.noiseless_truth``).
+total membrane capacitance, Golowasch et al. 2009). Cells with hsag: Rin at rest from
+noiseless +/-2 pA NEURON runs; tau = Cm / (g_pas + g_h(V_rest)), the membrane with the h gate
+frozen at rest (approximate: the gate, ~80 ms, is not always much slower than the membrane);
+Cm = that tau over the frozen-gate input resistance (see ``neuron_models.noiseless_truth``).
 
 Naive method: on the largest hyperpolarizing step of the raw trace, Rin = dV / I with dV the
 mean of the last 100 ms of the step minus the mean before the step, tau from one exponential

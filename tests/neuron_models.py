@@ -616,11 +616,19 @@ def noiseless_truth(
     ``rin_ohm`` is the steady-state input resistance at rest (``rin_at_rest``); ``rin_fit_ohm``
     the slope of the noiseless steady-state V-I line over the protocol's steps at or below 0 A
     (what a V-I fit over those steps should give); ``tau_s`` the frozen-gate time constant
-    Cm / (g_pas + g_h(V_rest)), since the h gate is far slower than the membrane;
-    ``cm_f`` the membrane's capacitance (Cm * area); ``sag`` of the largest hyperpolarizing step,
+    Cm / (g_pas + g_h(V_rest)), the membrane's before the h gate moves (the gate's time constant,
+    ~80 ms at rest, is not always far slower than the membrane's, so this truth is approximate);
+    ``rin_frozen_ohm`` the input resistance with the gate frozen at rest and ``cm_f`` =
+    tau / rin_frozen (Cm * area for one compartment; less for a ball-and-stick, as with pas
+    alone); ``c_total_f`` Cm * area; ``sag`` of the largest hyperpolarizing step,
     with ``sag_step_a`` its current (``step_measures`` gives any other step's).
     """
     rest = rest_conductances(spec)
+    # frozen gates: a uniform passive membrane with Rm = 1 / (g_pas + g_h), so Rall's formulas
+    # give its input resistance and tau / Rin the capacitance a fit can see (as for pas alone)
+    frozen = passive_truth(
+        replace(spec, rm_ohm_m2=1.0 / (rest["g_pas_s_m2"] + rest["g_h_s_m2"]), gh_s_m2=0.0)
+    )
     amps = np.asarray(protocol.amplitudes_a)
     measures = [step_measures(v, protocol) for v in clean]
     ss = np.array([m["ss_dv"] for m in measures])
@@ -632,7 +640,8 @@ def noiseless_truth(
         "rin_fit_ohm": rin_fit,
         "tau_s": rest["tau_frozen_s"],
         "tau_m_s": spec.tau_m_s,
-        "cm_f": spec.total_capacitance_f,
+        "rin_frozen_ohm": frozen["rin_ohm"],
+        "cm_f": frozen["cm_f"],
         "c_total_f": spec.total_capacitance_f,
         "vrest_v": spec.vrest_v,
         "sag": measures[k]["sag"],
