@@ -207,7 +207,7 @@ def _read_pynwb(path: Path) -> list[Recording]:
             elif isinstance(obj, PatchClampSeries):
                 skipped.append(f"{obj.name} ({type(obj).__name__})")
         if not responses:
-            return _finish(path, None, [], [], {}, skipped)
+            return _finish(path, None, [], [], {}, skipped + _orphans(s.name for s in stimuli))
         rows = _rows_pynwb(name, nwbfile.intracellular_recordings)
         if rows is None:
             responses = [_load_pynwb(name, s, "V") for s in responses]
@@ -291,6 +291,11 @@ def _metadata_pynwb(nwbfile: Any) -> dict[str, str]:
     )
 
 
+def _orphans(names: Iterable[str]) -> list[str]:
+    """Stimulus series listed as skipped when the file has no response to pair them with."""
+    return [f"{n} (CurrentClampStimulusSeries without a response)" for n in names]
+
+
 def _clean_metadata(meta: dict[str, Any]) -> dict[str, str]:
     return {k: str(v) for k, v in meta.items() if v is not None}
 
@@ -326,7 +331,8 @@ def _read_h5(path: Path) -> list[Recording]:
                 elif kind in OTHER_PATCH_TYPES:
                     skipped.append(f"{group.name.rsplit('/', 1)[-1]} ({kind})")
         if not responses:
-            return _finish(path, None, [], [], {}, skipped)
+            orphans = _orphans(g.name.rsplit("/", 1)[-1] for g in stimuli)
+            return _finish(path, None, [], [], {}, skipped + orphans)
         rows = _rows_h5(name, f)
         if rows is None:
             responses = [_load_h5(name, g, "V") for g in responses]
