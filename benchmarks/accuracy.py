@@ -27,14 +27,18 @@ from __future__ import annotations
 
 import argparse
 import math
+import os
 import sys
 import tempfile
 import time
 from dataclasses import dataclass, replace
 from pathlib import Path
 
-import numpy as np
-from scipy.optimize import curve_fit
+for _var in ("OMP_NUM_THREADS", "OPENBLAS_NUM_THREADS", "MKL_NUM_THREADS"):
+    os.environ.setdefault(_var, "1")  # one core: BLAS threads would inflate CPU time
+
+import numpy as np  # noqa: E402
+from scipy.optimize import curve_fit  # noqa: E402
 
 sys.path.insert(0, str(Path(__file__).resolve().parents[1] / "tests"))
 import neuron_models as nm  # noqa: E402
@@ -54,7 +58,8 @@ class Outcome:
     kind: str
     fit: dict[str, float]
     naive: dict[str, float]
-    seconds: float
+    seconds: float  # CPU time of fit_cell, s
+    wall_s: float  # wall-clock time of fit_cell, s
     sag: tuple[float, float]  # (fitted, true) sag ratio, NaN when not measured
     note: str = ""
     about: str = ""  # the cell's truth and geometry, for --verbose
@@ -147,9 +152,9 @@ def run_cell(cell_id: str, kind: str, rng: np.random.Generator, seed: int) -> Ou
     proto = nm.steps_protocol(rin_guess, n_sweeps=15, n_hyper=10)
     sim = nm.simulate_cell(cell_id, spec, proto, nm.random_nuisances(rng), seed=seed)
     truth = truth_of(sim)
-    t0 = time.process_time()
+    t0, w0 = time.process_time(), time.perf_counter()
     cf = fit_cell(sim.recording)
-    seconds = time.process_time() - t0
+    seconds, wall = time.process_time() - t0, time.perf_counter() - w0
     est = {"rin": cf.rin_ohm, "tau": cf.tau_s, "cm": cf.cm_f, "vrest": cf.vrest_v}
     sag = (math.nan, math.nan)
     if spec.gh_s_m2 > 0 and math.isfinite(cf.sag_step_a):
@@ -166,7 +171,15 @@ def run_cell(cell_id: str, kind: str, rng: np.random.Generator, seed: int) -> Ou
         f"bridge {sim.nuisances.bridge_ohm / 1e6:4.1f} Mohm (fit {cf.bridge_error_ohm / 1e6:5.1f})"
     )
     return Outcome(
-        cell_id, kind, errors(est, truth), errors(naive_fit(sim), truth), seconds, sag, note, about
+        cell_id,
+        kind,
+        errors(est, truth),
+        errors(naive_fit(sim), truth),
+        seconds,
+        wall,
+        sag,
+        note,
+        about,
     )
 
 
@@ -216,9 +229,11 @@ def report(outcomes: list[Outcome], verbose: bool = False) -> None:
             f"{max(b for _, b in sags):.3f}"
         )
     secs = [o.seconds for o in outcomes]
+    walls = [o.wall_s for o in outcomes]
     print(
-        f"fit_cell time per cell (CPU, one core): median {1e3 * pct(secs, 50):.1f} ms, "
-        f"max {1e3 * max(secs):.1f} ms"
+        f"fit_cell time per cell (one core): CPU median {1e3 * pct(secs, 50):.1f} ms, "
+        f"max {1e3 * max(secs):.1f} ms; wall median {1e3 * pct(walls, 50):.1f} ms "
+        f"(load average {os.getloadavg()[0]:.1f} on {os.cpu_count()} cores)"
     )
     for o in outcomes:
         if o.note:
