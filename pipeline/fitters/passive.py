@@ -54,10 +54,10 @@ def fit_cell(
 
     Notes
     -----
-    The charging curves of the hyperpolarizing sweeps are fitted twice: the second pass starts
-    no fit before the dendritic equalisation time found on the cell's largest steps, and uses
-    the exp+sag model on every sweep when the largest step sags (small steps are too noisy to
-    decide alone).
+    The charging curves are first fitted on the three largest hyperpolarizing steps (best
+    signal-to-noise); every hyperpolarizing sweep is then fitted starting no earlier than the
+    dendritic equalisation time found on them, with the exp+sag model when the largest step
+    sags (small steps are too noisy to decide alone).
 
     Raises
     ------
@@ -75,14 +75,27 @@ def fit_cell(
             f"{len(epochs)} step epochs for {len(recording.sweeps)} sweeps of cell {recording.cell_id}",
         )
     pairs = list(zip(recording.sweeps, epochs, strict=True))
-    fits = [fit_sweep(sw, ep, settings) for sw, ep in pairs]
-    second = _second_pass_settings(fits, settings)
-    if second is not None:
-        fits = [
-            fit_sweep(sw, ep, second) if f.step_a < 0 and f.charging.ok else f
-            for f, (sw, ep) in zip(fits, pairs, strict=True)
-        ]
+    # pilot: the charging curves of the largest hyperpolarizing steps (best signal-to-noise)
+    hyper = sorted(
+        (k for k, (_, ep) in enumerate(pairs) if ep.usable and ep.amplitude < 0),
+        key=lambda k: pairs[k][1].amplitude,
+    )
+    pilots = set(hyper[:3])
+    skip = replace(settings, charging_model="none")
+    fits = [
+        fit_sweep(sw, ep, settings if k in pilots else skip) for k, (sw, ep) in enumerate(pairs)
+    ]
+    second = _second_pass_settings([fits[k] for k in pilots], settings) or settings
+    for k in hyper:
+        if k not in pilots or second is not settings:
+            fits[k] = _refit(fits[k], *pairs[k], second)
     return summarize_cell(recording.cell_id, fits, settings, exclude)
+
+
+def _refit(first: SweepFit, sweep, epoch: StepEpoch, settings: PassiveSettings) -> SweepFit:
+    """Second-pass fit of a sweep, keeping the fast time constant the first pass peeled."""
+    again = fit_sweep(sweep, epoch, settings)
+    return replace(again, tau_fast_s=first.tau_fast_s) if math.isnan(again.tau_fast_s) else again
 
 
 def _second_pass_settings(fits: Sequence[SweepFit], settings: PassiveSettings):

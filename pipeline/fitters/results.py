@@ -25,15 +25,23 @@ def sag_response(t: np.ndarray, tau: float, tau_sag: float, kappa: float) -> np.
     Poles may be complex (a damped oscillation); the result is real either way.
     """
     a, d = 1.0 / tau, 1.0 / tau_sag
-    s_ = a * d * (1.0 + kappa)
-    root = np.sqrt(complex((a - d) ** 2 - 4.0 * kappa * a * d))
-    if abs(root) < 1e-9 * (a + d):  # repeated pole: nudge it apart (error ~1e-9)
-        root = complex(1e-9 * (a + d))
-    l1, l2 = (-(a + d) + root) / 2.0, (-(a + d) - root) / 2.0
     t = np.asarray(t, dtype=float)
-    x = 1.0 + s_ * (l1 + d) / (d * l1 * (l1 - l2)) * np.exp(l1 * t)
-    x = x + s_ * (l2 + d) / (d * l2 * (l2 - l1)) * np.exp(l2 * t)
-    return x.real
+    disc = (a - d) ** 2 - 4.0 * kappa * a * d
+    mid = -(a + d) / 2.0
+    if disc > 1e-18 * (a + d) ** 2:  # two real poles: two exponentials
+        h = math.sqrt(disc) / 2.0
+        l1, l2 = mid + h, mid - h
+        s_ = l1 * l2
+        c1 = s_ * (l1 + d) / (d * l1 * (l1 - l2))
+        c2 = s_ * (l2 + d) / (d * l2 * (l2 - l1))
+        return 1.0 + c1 * np.exp(l1 * t) + c2 * np.exp(l2 * t)
+    # complex (or repeated, nudged apart) poles mid +- i*w: a damped oscillation
+    w = max(math.sqrt(-disc) / 2.0, 1e-9 * (a + d))
+    l1 = complex(mid, w)
+    s_ = (l1 * l1.conjugate()).real
+    c1 = s_ * (l1 + d) / (d * l1 * (2j * w))
+    e = np.exp(mid * t)
+    return 1.0 + 2.0 * e * (c1.real * np.cos(w * t) - c1.imag * np.sin(w * t))
 
 
 @dataclass(frozen=True)

@@ -66,7 +66,8 @@ class PassiveSettings:
     equalization_factor: float = 5.0
     # fewest bins accepted in a charging-curve fit
     min_fit_bins: int = 8
-    # 'exp' (single exponential), 'exp+sag' (frozen-gate tau under an Ih sag), or 'auto'
+    # 'exp' (single exponential), 'exp+sag' (frozen-gate tau under an Ih sag), 'auto' (exp+sag
+    # where the sweep sags), or 'none' (no charging fit)
     charging_model: str = "auto"
     # bins averaged together in the slow part of the exp+sag fit
     sag_coarse_bins: int = 10
@@ -134,9 +135,11 @@ def clipped_runs(v: np.ndarray, min_run: int) -> list[tuple[int, int]]:
         return []
     runs = []
     for extreme in (finite.max(), finite.min()):
-        at = np.concatenate(([False], v == extreme, [False]))
-        edges = np.flatnonzero(np.diff(at.astype(np.int8)))
-        for a, b in zip(edges[::2], edges[1::2], strict=True):
+        at = np.flatnonzero(v == extreme)  # few samples unless clipped
+        breaks = np.flatnonzero(np.diff(at) > 1)
+        starts = np.concatenate(([at[0]], at[breaks + 1]))
+        stops = np.concatenate((at[breaks], [at[-1]])) + 1
+        for a, b in zip(starts, stops, strict=True):
             if b - a < min_run or a == 0 or b == v.size:
                 continue
             if abs(v[a - 1] - extreme) > 1e-9 and abs(v[b] - extreme) > 1e-9:
@@ -212,6 +215,23 @@ def remove_hum(
     except np.linalg.LinAlgError:
         return v
     return v - basis @ coef[: basis.shape[1]]
+
+
+_HUM_CACHE: dict[tuple, tuple[np.ndarray, np.ndarray]] = {}
+
+
+def _dehummed(raw: np.ndarray, rate: float, regions: tuple, harmonics: int) -> np.ndarray:
+    """:func:`remove_hum`, remembered for the last few traces (fit_cell refits the charging
+    curves of a cell's sweeps; the hum does not change). Keyed by identity: sweeps are frozen."""
+    key = (id(raw), rate, regions, harmonics)
+    hit = _HUM_CACHE.get(key)
+    if hit is not None and hit[0] is raw:
+        return hit[1]
+    clean = remove_hum(raw, rate, list(regions), harmonics)
+    if len(_HUM_CACHE) >= 32:
+        _HUM_CACHE.pop(next(iter(_HUM_CACHE)))
+    _HUM_CACHE[key] = (raw, clean)
+    return clean
 
 
 def _windows(sweep: Sweep, epoch: StepEpoch, s: PassiveSettings) -> tuple[_Windows | None, str]:
@@ -396,11 +416,13 @@ def _charging_fit(
 
     # peel: a fit starting one tau in is free of the faster equalising components; the early
     # excess of the data over it gives their time constant, and the fit starts after they decay
-    j_late = int(np.searchsorted(t, t[0] + fit.tau))
-    late = fit_from(j_late) if j_late - i0 >= s.min_fit_bins else fit
-    excess = (y[:j_late] - late.curve(t[:j_late])) * np.sign(fit.amp)  # > 0: data lags the fit
-    tau_fast = _fast_tau(t[:j_late], excess, noise)
-    j0 = i0
+    # (skipped when the cell's equalisation time is given: fit_cell found it on larger steps)
+    j0, tau_fast = i0, NAN
+    if s.fit_start_min_s <= 0:
+        j_late = int(np.searchsorted(t, t[0] + fit.tau))
+        late = fit_from(j_late) if j_late - i0 >= s.min_fit_bins else fit
+        excess = (y[:j_late] - late.curve(t[:j_late])) * np.sign(fit.amp)  # > 0: data lags
+        tau_fast = _fast_tau(t[:j_late], excess, noise)
     if np.isfinite(tau_fast) and tau_fast < late.tau / 2:
         j0 = max(j0, int(np.searchsorted(t, t[0] + s.equalization_factor * tau_fast)))
     j0 = max(j0, int(np.searchsorted(t, onset + s.fit_start_min_s)))
@@ -409,14 +431,16 @@ def _charging_fit(
     return fit_from(j0), tau_fast, ""
 
 
-def _rebin(t: np.ndarray, y: np.ndarray, switch: int, k: int):
-    """Keep bins before ``switch``, average groups of ``k`` after it; also return the number of
-    fine bins in each (for the fit weights)."""
-    m = (t.size - switch) // k
-    tc = t[switch : switch + m * k].reshape(m, k).mean(axis=1)
-    yc = y[switch : switch + m * k].reshape(m, k).mean(axis=1)
-    count = np.concatenate([np.ones(switch), np.full(m, float(k))])
-    return np.concatenate([t[:switch], tc]), np.concatenate([y[:switch], yc]), count
+def _rebin(t: np.ndarray, y: np.ndarray, edges: list[int], sizes: list[int]):
+    """Average groups of ``sizes[j]`` bins between ``edges[j]`` and ``edges[j+1]``; also return
+    the number of fine bins in each (for the fit weights)."""
+    ts, ys, counts = [], [], []
+    for a, b, k in zip(edges[:-1], edges[1:], sizes, strict=True):
+        m = max(0, b - a) // k
+        ts.append(t[a : a + m * k].reshape(m, k).mean(axis=1))
+        ys.append(y[a : a + m * k].reshape(m, k).mean(axis=1))
+        counts.append(np.full(m, float(k)))
+    return np.concatenate(ts), np.concatenate(ys), np.concatenate(counts)
 
 
 def fit_sag_model(
@@ -444,8 +468,9 @@ def fit_sag_model(
         With ``model="exp+sag"``; ``tau`` the frozen-gate membrane time constant. NaN if the fit
         failed.
     """
-    switch = int(np.searchsorted(t, t[0] + 4 * first.tau))
-    tb, yb, count = _rebin(t, y, switch, coarse)
+    # fine bins for the first tau, 4 together up to 4 tau, ``coarse`` together for the slow sag
+    near, far = (int(np.searchsorted(t, t[0] + k * first.tau)) for k in (1.0, 4.0))
+    tb, yb, count = _rebin(t, y, [0, near, max(near, far), t.size], [1, 4, coarse])
     if tb.size < 12:
         return ExpFit()
     v_on = first.v_inf + first.amp * math.exp((first.t0 - onset) / first.tau)
@@ -459,10 +484,20 @@ def fit_sag_model(
     def model(x, v_inf, g, log_tau, log_tau_sag, kappa):
         return v_inf - g + g * sag_response(x, math.exp(log_tau), math.exp(log_tau_sag), kappa)
 
+    def jac(x, v_inf, g, log_tau, log_tau_sag, kappa):
+        # x(t) is shared by all columns: 3 extra evaluations instead of curve_fit's 5
+        base = sag_response(x, math.exp(log_tau), math.exp(log_tau_sag), kappa)
+        cols = [np.ones_like(x), base - 1.0]
+        for k, h in ((0, 1e-6), (1, 1e-6), (2, 1e-6 * max(1.0, abs(kappa)))):
+            q = [log_tau, log_tau_sag, kappa]
+            q[k] += h
+            cols.append(g * (sag_response(x, math.exp(q[0]), math.exp(q[1]), q[2]) - base) / h)
+        return np.column_stack(cols)
+
     p0 = (v_inf, g0, math.log(first.tau), math.log(tau_sag0), kappa0)
     try:
         with np.errstate(over="ignore", invalid="ignore"):
-            p, cov = curve_fit(model, tt, yb, p0=p0, sigma=1 / np.sqrt(count), maxfev=600)
+            p, cov = curve_fit(model, tt, yb, p0=p0, sigma=1 / np.sqrt(count), jac=jac, maxfev=600)
     except (RuntimeError, ValueError, OverflowError, ZeroDivisionError):
         return ExpFit()
     if not (np.isfinite(p).all() and np.isfinite(cov).all()):
@@ -669,7 +704,7 @@ def _measure(
         return SweepFit(**head, baseline_window=_secs(w.base, rate), reason="; ".join(reasons))
     # hum is fitted before the step and late in it, where the membrane is flat; the after-step
     # tail still relaxes (and rebounds) and would leak into the sinusoids
-    v = remove_hum(raw, rate, [(0, on), w.ss], s.hum_harmonics) if s.remove_hum else raw
+    v = _dehummed(raw, rate, ((0, on), w.ss), s.hum_harmonics) if s.remove_hum else raw
     base = float(v[slice(*w.base)].mean())
     rms = float(raw[slice(*w.base)].std())
     after = NAN
@@ -714,6 +749,8 @@ def _measure(
     noise = max(rms / math.sqrt(k), 1e-7)  # floor: noiseless traces still have rounding
     ksm = round(s.peak_smooth_s * rate)
     sagging = ss_dv - peak_dv > max(5 * rms / math.sqrt(ksm), 0.01 * abs(peak_m))
+    if s.charging_model == "none":
+        return SweepFit(**head, **fit, reason="; ".join(reasons + ["charging curve not fitted"]))
     charging, tau_fast, why = _charging_fit(t, y, r, i_peak, sagging, noise, epoch.onset, s)
     if why:
         reasons.append(why)
