@@ -22,12 +22,14 @@ Biophys J 9:1483-1508 (peeling of exponentials, tau0 = Rm*Cm).
 
 from __future__ import annotations
 
+import contextlib
 import functools
 import math
+import warnings
 from dataclasses import dataclass
 
 import numpy as np
-from scipy.optimize import curve_fit
+from scipy.optimize import OptimizeWarning, curve_fit
 
 from pipeline.fitters.results import NAN, BiExpFit, ExpFit, SweepFit, sag_response
 from pipeline.recording import Sweep
@@ -301,6 +303,15 @@ def _bin(
     return t, y
 
 
+@contextlib.contextmanager
+def _quiet():
+    """Silence overflow in trial parameters and covariance warnings during a fit: the caller
+    checks the result (finite parameters and covariance) and gives a reason instead."""
+    with warnings.catch_warnings(), np.errstate(over="ignore", invalid="ignore", divide="ignore"):
+        warnings.simplefilter("ignore", OptimizeWarning)
+        yield
+
+
 def _exp(t: np.ndarray, v_inf: float, amp: float, tau: float) -> np.ndarray:
     return v_inf + amp * np.exp(-t / tau)
 
@@ -332,7 +343,8 @@ def fit_exponential(t: np.ndarray, y: np.ndarray, tau_guess: float) -> ExpFit:
     e = np.exp(-tt / tau_guess)
     amp0, vinf0 = np.linalg.lstsq(np.column_stack([e, np.ones_like(e)]), y, rcond=None)[0]
     try:
-        p, cov = curve_fit(_exp, tt, y, p0=(vinf0, amp0, tau_guess), jac=_exp_jac, maxfev=400)
+        with _quiet():
+            p, cov = curve_fit(_exp, tt, y, p0=(vinf0, amp0, tau_guess), jac=_exp_jac, maxfev=400)
     except (RuntimeError, ValueError):
         return ExpFit(t0=t0, t1=float(t[-1]))
     if not (p[2] > 0 and np.isfinite(cov).all()):
@@ -496,7 +508,7 @@ def fit_sag_model(
 
     p0 = (v_inf, g0, math.log(first.tau), math.log(tau_sag0), kappa0)
     try:
-        with np.errstate(over="ignore", invalid="ignore"):
+        with _quiet():
             p, cov = curve_fit(model, tt, yb, p0=p0, sigma=1 / np.sqrt(count), jac=jac, maxfev=600)
     except (RuntimeError, ValueError, OverflowError, ZeroDivisionError):
         return ExpFit()
@@ -557,7 +569,8 @@ def fit_two_exponentials(t: np.ndarray, y: np.ndarray, slow: ExpFit, tau_fast: f
     a0 = slow.amp * math.exp(-(t0 - slow.t0) / slow.tau)
     a1 = float(y[0] - slow.v_inf - a0)
     try:
-        p, cov = curve_fit(_biexp, tt, y, p0=(slow.v_inf, a0, slow.tau, a1, tau1), maxfev=2000)
+        with _quiet():
+            p, cov = curve_fit(_biexp, tt, y, p0=(slow.v_inf, a0, slow.tau, a1, tau1), maxfev=2000)
     except (RuntimeError, ValueError):
         return BiExpFit(t0=t0, t1=float(t[-1]))
     if p[4] > p[2]:  # keep tau0 the slow one
@@ -742,12 +755,15 @@ def _measure(
     fit["rebound_v"] = _rebound(
         v, off + w.settle, round(s.rebound_window_s * rate), s, rate, base, reasons
     )
+    ksm = round(s.peak_smooth_s * rate)
+    if not (-peak_dv > max(5 * rms / math.sqrt(ksm), 1e-7) and peak_m < 0):  # 5 SD, smoothed
+        reasons.append("deflection within the noise: no charging fit")
+        return SweepFit(**head, **fit, reason="; ".join(reasons))
     k = max(1, round(s.bin_s * rate))
     t, y = _bin(v, on + w.settle, off, k, rate)
     r = (y - base - jump) / peak_m
-    i_peak = min(int((k_peak + round(s.peak_smooth_s * rate) / 2) // k), t.size - 1)
+    i_peak = min(int((k_peak + ksm / 2) // k), t.size - 1)
     noise = max(rms / math.sqrt(k), 1e-7)  # floor: noiseless traces still have rounding
-    ksm = round(s.peak_smooth_s * rate)
     sagging = ss_dv - peak_dv > max(5 * rms / math.sqrt(ksm), 0.01 * abs(peak_m))
     if s.charging_model == "none":
         return SweepFit(**head, **fit, reason="; ".join(reasons + ["charging curve not fitted"]))
