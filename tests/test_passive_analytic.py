@@ -233,6 +233,44 @@ def test_ih_like_sag_ratio_and_frozen_tau():
     assert cf.cm_f == pytest.approx(TAU / (RIN * 1.5), rel=1e-2)
 
 
+@pytest.mark.parametrize("kappa", [0.0, 0.5, 3.0])  # 3.0: complex poles (damped oscillation)
+def test_sag_response_solves_its_ode(kappa):
+    """The closed form against a numerical solution of dV/dt = -V/tau - m + b,
+    dm/dt = c V - m/tau_sag with b c = kappa / (tau tau_sag) (a linear ODE, solved by scipy)."""
+    from scipy.integrate import solve_ivp
+
+    tau, tau_sag = 0.03, 0.1
+    a, d = 1 / tau, 1 / tau_sag
+    drive = a * (1 + kappa)  # scales the steady state to 1
+    t = np.linspace(0, 0.8, 41)
+    sol = solve_ivp(
+        lambda _, x: [-a * x[0] - x[1] + drive, kappa * a * d * x[0] - d * x[1]],
+        (0, 0.8), [0.0, 0.0], t_eval=t, rtol=1e-10, atol=1e-13,
+    )  # fmt: skip
+    assert sag_response(t, tau, tau_sag, kappa) == pytest.approx(sol.y[0], abs=1e-8)
+    assert sag_response(np.array([50.0]), tau, tau_sag, kappa)[0] == pytest.approx(1.0)
+
+
+def test_sag_at_target_potential_and_vrest_sweeps():
+    """Sag ratio read at a target peak potential (interpolated, never extrapolated); sweeps
+    with holding current are kept out of Vrest."""
+    kw = dict(tau=TAU, tau_sag=0.08, kappa=0.5)
+    amps = AMPS[:5]
+    traces = [rc_trace(a, shape=sag_shape, **kw) for a in amps]
+    eps = [epoch(a, k) for k, a in enumerate(amps)]
+    inside = PassiveSettings(sag_target_v=VREST - 0.01)  # peaks span about -4 to -21 mV
+    cf = fit_cell(cell(traces, amps), inside, epochs=eps)
+    assert cf.sag_ratio_at_target == pytest.approx(cf.sag_ratio, abs=0.01)  # size-free sag
+    outside = fit_cell(cell(traces, amps), PassiveSettings(sag_target_v=-0.12), epochs=eps)
+    assert math.isnan(outside.sag_ratio_at_target)
+    held = [StepEpoch(k, True, "step", "", 50e-12 * (k == 0), a, ON / RATE, OFF / RATE, ON, OFF)
+            for k, a in enumerate(amps)]  # fmt: skip
+    shifted = list(traces)
+    shifted[0] = traces[0] + 0.01  # the held sweep sits 10 mV higher
+    cf_held = fit_cell(cell(shifted, amps), epochs=held)
+    assert cf_held.vrest_v == pytest.approx(VREST, abs=1e-9)
+
+
 def test_curved_iv_gives_the_slope_at_rest():
     """Steady-state deflection R0 I + c I^2 (inward rectification): Rin is R0, not the chord."""
     c = 1.5e15  # V/A^2: the chord at -100 pA is 15 Mohm below R0
