@@ -11,6 +11,7 @@ from __future__ import annotations
 import math
 import time
 import traceback
+from dataclasses import replace
 from pathlib import Path
 from typing import Any
 
@@ -19,7 +20,9 @@ from pipeline.errors import RecordingError
 from pipeline.recording import Recording
 
 
-def analyse_file(path: str, config: Config, figure_dir: str | None = None) -> dict[str, Any]:
+def analyse_file(
+    path: str, config: Config, figure_dir: str | None = None, *, id_prefix: str = ""
+) -> dict[str, Any]:
     """Analyse every cell of one input file.
 
     Parameters
@@ -30,6 +33,9 @@ def analyse_file(path: str, config: Config, figure_dir: str | None = None) -> di
         Resolved configuration.
     figure_dir : str, optional
         Folder for the per-cell PNG figures; None writes no figures.
+    id_prefix : str
+        Put before every cell id (the batch uses it when files in different folders share a
+        stem).
 
     Returns
     -------
@@ -45,10 +51,13 @@ def analyse_file(path: str, config: Config, figure_dir: str | None = None) -> di
     try:
         recordings = open_recordings(path)
     except RecordingError as exc:
-        return _failed(path, "read", str(exc))
+        return _failed(path, id_prefix, "read", str(exc))
     except Exception as exc:  # a reader bug must not stop the batch; keep the evidence
-        return _failed(path, "read", f"{path}: unexpected {type(exc).__name__}: {exc}", exc)
+        message = f"{path}: unexpected {type(exc).__name__}: {exc}"
+        return _failed(path, id_prefix, "read", message, exc)
     timings["read"] = time.perf_counter() - start
+    if id_prefix:
+        recordings = [replace(r, cell_id=id_prefix + r.cell_id) for r in recordings]
     cells = [analyse_recording(rec, config, figure_dir, timings) for rec in recordings]
     return {"file": str(path), "cells": cells, "error": None, "seconds": timings}
 
@@ -101,7 +110,10 @@ def _analyse(
 
     t0 = time.perf_counter()
     excluded = {e.sweep: f"not a usable step: {e.reason}" for e in epochs if not e.usable}
-    by_qc = qc.sweep_exclusions(config.qc.for_scope("sweep"), sweep_rows)
+    usable = {e.sweep for e in epochs if e.usable}
+    by_qc = qc.sweep_exclusions(
+        config.qc.for_scope("sweep"), [r for r in sweep_rows if r["sweep"] in usable]
+    )
     excluded.update(by_qc)
     cell_fit = summarize_cell(recording.cell_id, fits, config.passive, exclude=excluded)
     # The fitters already skip unusable steps; re-fit spiking only when QC left sweeps out.
@@ -201,11 +213,14 @@ def _figure(recording, epochs, cell_fit, verdict, spikes, figure_dir, config) ->
     return name
 
 
-def _failed(path: str, stage: str, message: str, exc: Exception | None = None) -> dict[str, Any]:
+def _failed(
+    path: str, id_prefix: str, stage: str, message: str, exc: Exception | None = None
+) -> dict[str, Any]:
     error = {"stage": stage, "message": message}
     if exc is not None:
         error["traceback"] = traceback.format_exc(limit=8)
-    return {"file": str(path), "cells": [], "error": error, "seconds": {}}
+    cell_id = id_prefix + Path(path).stem
+    return {"file": str(path), "cell_id": cell_id, "cells": [], "error": error, "seconds": {}}
 
 
 def _add(timings: dict[str, float], stage: str, seconds: float) -> None:

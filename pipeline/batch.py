@@ -134,18 +134,26 @@ def run_batch(
     outdir = Path(out)
     figures = config.report.figures if figures is None else figures
     inputs_given = [str(Path(p).resolve()) for p in inputs]
+    # Usage errors (sheet, output folder) stop the run before anything is written.
+    sheet_path = Path(sheet) if sheet is not None else find_sheet(inputs)
+    the_sheet = read_sheet(sheet_path) if sheet_path is not None else None
     _prepare_outdir(outdir, inputs_given, config, force)
     handler = _log_to_file(outdir, quiet)
     try:
-        sheet_path = Path(sheet) if sheet is not None else find_sheet(inputs)
-        the_sheet = read_sheet(sheet_path) if sheet_path is not None else None
         files = discover_inputs(inputs, exclude=outdir)
         log.info("patchbatch %s: %d input file(s) -> %s", __version__, len(files), outdir)
-        results, hashes, stats = _analyse_all(
-            files, config, outdir, figures, workers, scheduler, progress
-        )
-        run = {"inputs_given": inputs_given, "started": started, "hashes": hashes, **stats}
-        return _assemble(files, results, run, config, outdir, the_sheet)
+        try:
+            results, hashes, stats = _analyse_all(
+                files, config, outdir, figures, workers, scheduler, progress
+            )
+            run = {"inputs_given": inputs_given, "started": started, "hashes": hashes, **stats}
+            return _assemble(files, results, run, config, outdir, the_sheet)
+        except OSError as exc:  # a full disk, a folder gone: say where, keep what is cached
+            where = exc.filename or outdir
+            raise OutputFolderError(
+                f"{where}: could not write ({exc.strerror or exc}); what was analysed is kept "
+                "in the cache, so the same command resumes"
+            ) from None
     finally:
         logging.getLogger("patchbatch").removeHandler(handler)
         handler.close()
@@ -160,24 +168,34 @@ def _prepare_outdir(outdir: Path, inputs: list[str], config: Config, force: bool
         raise OutputFolderError(f"{outdir}: cannot create the output folder ({exc})") from None
     if not os.access(outdir, os.W_OK):
         raise OutputFolderError(f"{outdir}: the output folder is not writable")
-    previous = outdir / "run.json"
-    if force or not previous.exists():
-        if not previous.exists() and not force and any((outdir / n).exists() for n in OUTPUT_NAMES):
+    identity = {"inputs_given": inputs, "config_digest": config.digest()}
+    # The owner record is written before any output, so a run that died while writing is
+    # still recognised as ours; run.json is written last, when the run is complete.
+    owner = outdir / cache.CACHE_DIR / "owner.json"
+    previous = next((p for p in (owner, outdir / "run.json") if p.exists()), None)
+    if not force:
+        if previous is None and any((outdir / n).exists() for n in OUTPUT_NAMES):
             raise OutputFolderError(
                 f"{outdir}: holds outputs of an unknown run (no run.json); use --force to "
                 "overwrite them"
             )
-        return
+        if previous is not None and _identity(previous) != identity:
+            raise OutputFolderError(
+                f"{outdir}: holds the outputs of a run with other inputs or another config; "
+                "choose another folder or use --force to replace them"
+            )
+    from pipeline.report.atomic import atomic_write_text
+
+    owner.parent.mkdir(exist_ok=True)
+    atomic_write_text(owner, json.dumps(identity))
+
+
+def _identity(path: Path) -> dict[str, Any]:
     try:
-        info = json.loads(previous.read_text(encoding="utf-8"))
+        info = json.loads(path.read_text(encoding="utf-8"))
     except (OSError, ValueError):
-        info = {}
-    same = info.get("inputs_given") == inputs and info.get("config_digest") == config.digest()
-    if not same:
-        raise OutputFolderError(
-            f"{outdir}: holds the outputs of a run with other inputs or another config; "
-            "choose another folder or use --force to replace them"
-        )
+        return {}
+    return {k: info.get(k) for k in ("inputs_given", "config_digest")}
 
 
 def _analyse_all(files, config, outdir, figures, workers, scheduler, progress):
@@ -185,18 +203,18 @@ def _analyse_all(files, config, outdir, figures, workers, scheduler, progress):
     digest = config.digest()
     figure_dir = str(outdir / "figures") if figures else None
     results: dict[int, dict[str, Any]] = {}
-    todo: list[tuple[int, Path, str | None]] = []
+    todo: list[Job] = []
     hashes = [_sha_or_none(path) for path in files]
-    for i, path in enumerate(files):
-        key = cache.entry_key(hashes[i], digest) if hashes[i] else None
+    for i, (path, prefix) in enumerate(zip(files, id_prefixes(files), strict=True)):
+        key = cache.entry_key(hashes[i], digest + prefix) if hashes[i] else None
         hit = cache.load_entry(outdir, key) if key else None
         if hit is not None and _figures_present(hit, figure_dir):
             results[i] = hit
         else:
-            todo.append((i, path, key))
+            todo.append(Job(i, str(path), key, prefix))
     stats = {"cached": len(results), "analysed": len(todo)}
     log.info("%d file(s) from the cache, %d to analyse", len(results), len(todo))
-    keys = {i: key for i, _, key in todo}
+    keys = {job.index: job.key for job in todo}
     bar = _progress(len(todo), progress)
     for i, result in _execute(todo, config, figure_dir, workers, scheduler):
         if result["error"] is None and keys[i]:
@@ -207,6 +225,41 @@ def _analyse_all(files, config, outdir, figures, workers, scheduler, progress):
     if bar is not None:
         bar.close()
     return [results[i] for i in range(len(files))], hashes, stats
+
+
+@dataclass(frozen=True)
+class Job:
+    """One file to analyse: its place in the input order, cache key and cell-id prefix."""
+
+    index: int
+    path: str
+    key: str | None
+    id_prefix: str = ""
+
+    def run(self, config: Config, figure_dir: str | None) -> dict[str, Any]:
+        return analyse_file(self.path, config, figure_dir, id_prefix=self.id_prefix)
+
+
+def id_prefixes(files: Sequence[Path]) -> list[str]:
+    """Cell-id prefixes that keep ids unique when files in different folders share a stem.
+
+    A stem seen once keeps its plain id (the file stem, as DESIGN says); a repeated stem gets
+    the names of its parent folders, as many as make it unique (``rig1-cell01``).
+    """
+    stems: dict[str, list[Path]] = {}
+    for path in files:
+        stems.setdefault(path.stem, []).append(path)
+    out = []
+    for path in files:
+        group = stems[path.stem]
+        if len(group) == 1:
+            out.append("")
+            continue
+        depth = 1
+        while depth < len(path.parts) and len({p.parts[-1 - depth :] for p in group}) < len(group):
+            depth += 1
+        out.append("-".join(path.parts[-1 - depth : -1]) + "-")
+    return out
 
 
 def _figures_present(result: dict[str, Any], figure_dir: str | None) -> bool:
@@ -227,13 +280,13 @@ def _execute(todo, config, figure_dir, workers, scheduler) -> Iterator[tuple[int
     n = workers if workers else (config.run.workers or os.cpu_count() or 1)
     n = max(1, min(n, len(todo)))
     if n == 1:
-        for i, path, _ in todo:
-            yield i, analyse_file(str(path), config, figure_dir)
+        for job in todo:
+            yield job.index, job.run(config, figure_dir)
         return
     with ProcessPoolExecutor(max_workers=n) as pool:
-        futures = {pool.submit(analyse_file, str(p), config, figure_dir): i for i, p, _ in todo}
+        futures = {pool.submit(job.run, config, figure_dir): job for job in todo}
         for future in as_completed(futures):
-            yield futures[future], _result_or_error(future, todo, futures[future])
+            yield futures[future].index, _result_or_error(future, futures[future])
 
 
 def _execute_dask(todo, config, figure_dir, scheduler, workers) -> Iterator[tuple[int, dict]]:
@@ -255,23 +308,20 @@ def _execute_dask(todo, config, figure_dir, scheduler, workers) -> Iterator[tupl
         address = scheduler
     try:
         with Client(address) as client:
-            futures = {
-                client.submit(analyse_file, str(p), config, figure_dir, pure=False): i
-                for i, p, _ in todo
-            }
+            futures = {client.submit(job.run, config, figure_dir, pure=False): job for job in todo}
             for future in dask_completed(list(futures)):
-                yield futures[future], _result_or_error(future, todo, futures[future])
+                yield futures[future].index, _result_or_error(future, futures[future])
     finally:
         if cluster is not None:
             cluster.close()
 
 
-def _result_or_error(future, todo, index) -> dict[str, Any]:
+def _result_or_error(future, job: Job) -> dict[str, Any]:
     """A worker that died (out of memory, killed) still gives a row for its file."""
     try:
         return future.result()
     except Exception as exc:
-        path = next(str(p) for j, p, _ in todo if j == index)
+        path = job.path
         return {
             "file": path,
             "cells": [],
@@ -361,7 +411,7 @@ def _assemble(files, results, run, config, outdir, sheet):
 def _error_row(result: dict[str, Any]) -> dict[str, Any]:
     path = Path(result["file"])
     return {
-        "cell_id": path.stem,
+        "cell_id": result.get("cell_id") or path.stem,
         "source_file": str(path),
         "n_sweeps": 0,
         "n_sweeps_used": 0,

@@ -233,7 +233,9 @@ def sweep_exclusions(rules: Iterable[Rule], sweep_rows: Sequence[Mapping[str, An
     rules : iterable of Rule
         Enabled sweep rules.
     sweep_rows : sequence of dict
-        One row per sweep with at least ``sweep`` and ``step_pa`` (positive = depolarizing).
+        One row per usable sweep with at least ``sweep`` and ``step_pa`` (positive =
+        depolarizing). A column that no row has is an error of the rule (every sweep is left
+        out, saying so); a row that lacks it has the value NaN.
 
     Returns
     -------
@@ -241,17 +243,18 @@ def sweep_exclusions(rules: Iterable[Rule], sweep_rows: Sequence[Mapping[str, An
         Sweep number -> ``'; '``-joined messages, for every sweep a rule leaves out.
     """
     out: dict[int, list[str]] = {}
+    columns = {key for row in sweep_rows for key in row}
     for row in sweep_rows:
         step = _as_number(row.get("step_pa"))
         for rule in rules:
             if not _applies(rule, step):
                 continue
-            if rule.column not in row:
+            if rule.column not in columns:
                 out.setdefault(int(row["sweep"]), []).append(
                     f"QC rule {rule.name!r} names column {rule.column!r}, not in the sweep table"
                 )
-            elif rule.fires(row[rule.column]):
-                out.setdefault(int(row["sweep"]), []).append(rule.describe(row[rule.column]))
+            elif rule.fires(row.get(rule.column)):  # a sweep without the value: NaN
+                out.setdefault(int(row["sweep"]), []).append(rule.describe(row.get(rule.column)))
     return {k: "; ".join(v) for k, v in out.items()}
 
 

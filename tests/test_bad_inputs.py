@@ -669,11 +669,6 @@ ANALYSED = [
         build_zero_step,
         check_zero_step_reason,
         id="zero-amplitude-step-reason",
-        marks=pytest.mark.xfail(
-            strict=True,
-            reason="analysis.py: sweep QC rules overwrite the step finder's reason with "
-            "'QC rule ... names column ..., not in the sweep table' for unusable sweeps",
-        ),
     ),
 ]
 
@@ -689,11 +684,6 @@ def test_damaged_cell_is_analysed_with_reasons(goods, tmp_path, build, check):
     assert_good_cells_complete(outcome)
 
 
-@pytest.mark.xfail(
-    strict=True,
-    reason="batch.py: two files with the same stem in different folders give two cells with one "
-    "cell_id; the second figure overwrites the first and the sheet join cannot tell them apart",
-)
 def test_files_with_the_same_stem_get_distinct_cell_ids_and_figures(goods, tmp_path):
     day = tmp_path / "day"
     for sub in ("rig1", "rig2"):
@@ -921,11 +911,6 @@ def test_failed_page_write_keeps_the_previous_page(goods, tmp_path, monkeypatch)
     _tables_complete(out)
 
 
-@pytest.mark.xfail(
-    strict=True,
-    reason="cli.py/batch.py: an OSError while writing outputs escapes main() as a traceback "
-    "instead of exit 2 with a message naming the file",
-)
 def test_failed_write_exits_2_naming_the_file(goods, tmp_path, monkeypatch):
     _failing_page_writer(monkeypatch)
     outcome = _run_allowing_a_crash([*goods.files, "--no-figures"], tmp_path / "out")
@@ -934,11 +919,6 @@ def test_failed_write_exits_2_naming_the_file(goods, tmp_path, monkeypatch):
     assert re.search(r"index\.html.*No space left on device", outcome.stderr)
 
 
-@pytest.mark.xfail(
-    strict=True,
-    reason="batch.py: after a run failed while writing (tables written, no run.json) the same "
-    "command refuses the folder as 'outputs of an unknown run' instead of resuming",
-)
 def test_same_command_after_a_failed_write_completes_the_run(goods, tmp_path, monkeypatch):
     out = tmp_path / "out"
     args = [*goods.files, "--no-figures"]

@@ -1,0 +1,182 @@
+"""Each default QC rule fires on a simulated cell built to break it, and stays quiet on a clean
+one. The thresholds are common practice (from memory; see configs/default.toml), not a standard.
+"""
+
+from __future__ import annotations
+
+import dataclasses
+
+import numpy as np
+import pytest
+from day_factory import PA, RIG, SHORT
+
+from pipeline.analysis import analyse_recording
+from pipeline.config import config_from_dict, load_config, merge_tables
+from pipeline.recording import Recording
+from pipeline.simulate import CellModel, Nuisance, StepProtocol, simulate_cell
+
+CLEAN = CellModel(soma_area_m2=9000e-12, rm_ohm_m2=2.0)  # Rin ~220 MΩ, tau 20 ms
+CONFIG = load_config()
+
+
+def _cell(model=CLEAN, nuisance=RIG, protocol=SHORT, seed=3) -> Recording:
+    return simulate_cell(model, protocol, nuisance, seed=seed, cell_id="x")
+
+
+def _run(recording, config=CONFIG):
+    result = analyse_recording(recording, config)
+    return result["cell"], {r["sweep"]: r for r in result["sweeps"]}
+
+
+def _edit(recording, sweep_index, change):
+    """A copy of ``recording`` with one sweep's voltage changed by ``change(t, v) -> v``."""
+    sweeps = list(recording.sweeps)
+    s = sweeps[sweep_index]
+    sweeps[sweep_index] = dataclasses.replace(s, voltage=change(s.time(), s.voltage.copy()))
+    return dataclasses.replace(recording, sweeps=tuple(sweeps))
+
+
+def test_clean_cell_passes_every_rule():
+    cell, sweeps = _run(_cell())
+    assert cell["qc_pass"], cell["qc_reasons"]
+    assert cell["qc_flags"] == ""
+    assert all(r["used"] for r in sweeps.values())
+
+
+def test_noisy_baseline_sweeps_are_left_out_and_the_cell_fails_for_lack_of_sweeps():
+    cell, sweeps = _run(_cell(nuisance=dataclasses.replace(RIG, noise_rms_v=0.9e-3)))
+    assert all("baseline noise" in r["excluded_because"] for r in sweeps.values())
+    assert not cell["qc_pass"]
+    assert "no usable hyperpolarizing sweep" in cell["qc_reasons"]
+
+
+def test_baseline_shift_within_a_sweep_leaves_it_out():
+    def shift(t, v):
+        v[t > 0.5] += 3e-3  # the baseline jumps 3 mV after the step
+        return v
+
+    cell, sweeps = _run(_edit(_cell(), 1, shift))
+    assert "baseline moved" in sweeps[1]["excluded_because"]
+    assert not sweeps[1]["used"] and sweeps[0]["used"]
+    assert cell["qc_pass"], cell["qc_reasons"]  # the other sweeps carry the cell
+    assert cell["n_sweeps_used"] == len(sweeps) - 1
+
+
+def test_nan_run_leaves_the_sweep_out():
+    def holes(t, v):
+        v[(t > 0.3) & (t < 0.31)] = np.nan
+        return v
+
+    cell, sweeps = _run(_edit(_cell(), 2, holes))
+    assert "NaN or infinite samples" in sweeps[2]["excluded_because"]
+    assert cell["qc_pass"], cell["qc_reasons"]
+
+
+def test_clipped_sweep_is_left_out():
+    rail = Nuisance(**{**RIG.__dict__, "clip_v": (-0.085, 0.05)})
+    cell, sweeps = _run(_cell(nuisance=rail))
+    assert "clipped" in sweeps[0]["excluded_because"]  # -80 pA drives it past -85 mV
+    assert sweeps[3]["used"]
+
+
+def test_poor_charging_fit_leaves_the_sweep_out():
+    def wobble(t, v):
+        inside = (t >= 0.1) & (t < 0.45)
+        v[inside] += 4e-3 * np.sin(2 * np.pi * 7 * t[inside])  # not a charging curve
+        return v
+
+    cell, sweeps = _run(_edit(_cell(), 1, wobble))
+    assert "fit R²" in sweeps[1]["excluded_because"], sweeps[1]
+
+
+def test_depolarized_cell_fails():
+    cell, _ = _run(_cell(CellModel(soma_area_m2=9000e-12, rm_ohm_m2=2.0, e_leak_v=-0.045)))
+    assert not cell["qc_pass"]
+    assert "resting potential -45.0 mV is above -50 mV" in cell["qc_reasons"]
+
+
+def test_drifting_baseline_fails():
+    cell, _ = _run(_cell(nuisance=dataclasses.replace(RIG, drift_v_per_s=0.3e-3)))
+    assert not cell["qc_pass"]
+    assert "baseline drifted" in cell["qc_reasons"]
+
+
+def test_unbalanced_bridge_fails():
+    cell, _ = _run(_cell(nuisance=dataclasses.replace(RIG, bridge_error_ohm=35e6)))
+    assert not cell["qc_pass"]
+    assert "bridge balance off by" in cell["qc_reasons"]
+
+
+def test_input_resistance_that_changes_fails():
+    repeated = StepProtocol(
+        rate_hz=SHORT.rate_hz,
+        sweep_s=SHORT.sweep_s,
+        onset_s=SHORT.onset_s,
+        step_s=SHORT.step_s,
+        amplitudes_a=(-60 * PA, -30 * PA),
+    )
+    early = _cell(protocol=repeated)
+    late = _cell(dataclasses.replace(CLEAN, rm_ohm_m2=1.4), protocol=repeated, seed=4)
+    sweeps = [
+        dataclasses.replace(s, number=i, start_time=10.0 * i)
+        for i, s in enumerate(early.sweeps + late.sweeps)
+    ]
+    cell, _ = _run(dataclasses.replace(early, sweeps=tuple(sweeps)))
+    assert cell["rin_change_pct"] == pytest.approx(-30, abs=3)  # Rm 2.0 -> 1.4
+    assert "input resistance changed" in cell["qc_reasons"]
+
+
+def test_too_few_hyperpolarizing_sweeps_fails():
+    two = dataclasses.replace(SHORT, amplitudes_a=(-40 * PA, -20 * PA, 60 * PA))
+    cell, _ = _run(_cell(protocol=two))
+    assert not cell["qc_pass"]
+    assert "only 2 usable hyperpolarizing sweeps (need 3)" in cell["qc_reasons"]
+
+
+def test_implausible_input_resistance_fails():
+    tiny = CellModel(soma_area_m2=300e-12, rm_ohm_m2=2.0)  # ~6.7 GΩ
+    small_steps = dataclasses.replace(SHORT, amplitudes_a=(-8 * PA, -6 * PA, -4 * PA, -2 * PA))
+    cell, _ = _run(_cell(tiny, protocol=small_steps))
+    assert "outside the plausible 10–3000 MΩ" in cell["qc_reasons"]
+
+
+def test_implausible_time_constant_fails():
+    slow = CellModel(soma_area_m2=9000e-12, rm_ohm_m2=2.0, cm_f_per_m2=0.15)  # tau 300 ms
+    long = dataclasses.replace(SHORT, sweep_s=4.0, step_s=2.5)
+    cell, _ = _run(_cell(slow, protocol=long))
+    assert "membrane time constant" in cell["qc_reasons"], cell["qc_reasons"]
+
+
+def test_a_rule_added_in_a_user_config_works():
+    user = {
+        "qc": {
+            "rule": [
+                {
+                    "name": "lab-tau",
+                    "column": "tau_ms",
+                    "scope": "cell",
+                    "max": 15.0,
+                    "action": "flag",
+                    "message": "tau {value:.0f} ms above the lab's 15 ms",
+                },
+                {
+                    "name": "lab-steps",
+                    "column": "step_pa",
+                    "scope": "sweep",
+                    "min": -70.0,
+                    "action": "exclude",
+                    "message": "step beyond -70 pA",
+                },
+            ]
+        }
+    }
+    import tomllib
+
+    from pipeline.config import default_config_text
+
+    config = config_from_dict(merge_tables(tomllib.loads(default_config_text()), user))
+    cell, sweeps = _run(_cell(), config)
+    assert cell["qc_pass"]
+    assert cell["qc_flags"] == "tau 20 ms above the lab's 15 ms"
+    assert sweeps[0]["excluded_because"] == "step beyond -70 pA"
+    assert sweeps[2]["used"]
