@@ -140,13 +140,22 @@ def _analyse(
     cell_row["qc_flags"] = "; ".join(verdict.flags)
     _add(timings, "qc", time.perf_counter() - t0)
 
-    figure = None
+    figure, figure_error = None, None
     if figure_dir is not None:
         t0 = time.perf_counter()
-        figure = _figure(recording, epochs, cell_fit, verdict, spikes, figure_dir, config)
+        try:
+            figure = _figure(recording, epochs, cell_fit, verdict, spikes, figure_dir, config)
+        except Exception as exc:  # a drawing problem must not cost the cell its numbers
+            figure_error = f"{recording.cell_id}: figure not drawn ({type(exc).__name__}: {exc})"
         _add(timings, "figures", time.perf_counter() - t0)
     spike_rows = [{"cell_id": recording.cell_id, **r} for r in spikes.spike_rows()]
-    return {"cell": cell_row, "sweeps": sweep_rows, "spikes": spike_rows, "figure": figure}
+    return {
+        "cell": cell_row,
+        "sweeps": sweep_rows,
+        "spikes": spike_rows,
+        "figure": figure,
+        "figure_error": figure_error,
+    }
 
 
 def _sweep_rows(recording, epochs, fits, spikes) -> list[dict[str, Any]]:

@@ -356,6 +356,7 @@ def _assemble(files, results, run, config, outdir, sheet):
     from pipeline.report import page, tables
 
     cell_rows, sweep_rows, spike_rows, errors, fig_map = [], [], [], [], {}
+    figure_problems: list[str] = []
     seconds: dict[str, float] = {}
     for result in results:
         for stage, s in (result.get("seconds") or {}).items():
@@ -370,6 +371,8 @@ def _assemble(files, results, run, config, outdir, sheet):
             spike_rows.extend(cell["spikes"])
             if cell.get("figure"):
                 fig_map[cell["cell"]["cell_id"]] = f"figures/{cell['figure']}"
+            if cell.get("figure_error"):
+                figure_problems.append(cell["figure_error"])
             if cell.get("traceback"):
                 errors.append(
                     {
@@ -379,7 +382,7 @@ def _assemble(files, results, run, config, outdir, sheet):
                         "traceback": cell["traceback"],
                     }
                 )
-    warnings = _join_sheet(cell_rows, sheet)
+    warnings = _join_sheet(cell_rows, sheet) + figure_problems
     t0 = time.perf_counter()
     sheet_columns = sheet.columns if sheet else ()
     cells = tables.cells_frame(cell_rows, sheet_columns)
