@@ -388,6 +388,7 @@ def _assemble(files, results, run, config, outdir, sheet):
     cells = tables.cells_frame(cell_rows, sheet_columns)
     sweeps = tables.sweeps_frame(sweep_rows)
     spikes = tables.spikes_frame(spike_rows)
+    warnings += _rule_column_problems(config, cells, sweeps)
     tables.write_tables(outdir, cells, sweeps, spikes)
     seconds["tables"] = time.perf_counter() - t0
     info = _run_info(files, results, run, config, errors, warnings, sheet, seconds)
@@ -409,6 +410,24 @@ def _assemble(files, results, run, config, outdir, sheet):
         outdir,
     )
     return BatchResult(cells, sweeps, spikes, info, errors)
+
+
+def _rule_column_problems(config: Config, cells, sweeps) -> list[str]:
+    """QC rules whose column is in neither table: most likely a typo in the lab's config."""
+    import difflib
+
+    out = []
+    for rule in config.qc.rules:
+        table = cells if rule.scope == "cell" else sweeps
+        if not rule.enabled or table.empty or rule.column in table.columns:
+            continue
+        close = difflib.get_close_matches(rule.column, list(table.columns), n=1)
+        hint = f" (did you mean {close[0]!r}?)" if close else ""
+        out.append(
+            f"QC rule {rule.name!r} names column {rule.column!r}, not in the {rule.scope} "
+            f"table{hint}"
+        )
+    return out
 
 
 def _error_row(result: dict[str, Any]) -> dict[str, Any]:

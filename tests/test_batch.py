@@ -144,3 +144,17 @@ def test_unreadable_file_is_a_row_and_exit_1(day, tmp_path, capsys):
     assert not cells.loc["broken", "qc_pass"]
     assert (cells.drop(index="broken")["status"] == "ok").all()
     assert "Traceback" not in capsys.readouterr().err
+
+
+def test_rule_on_a_misspelt_column_is_reported_with_a_suggestion(day, tmp_path):
+    lab = tmp_path / "lab.toml"
+    lab.write_text(
+        '[[qc.rule]]\nname = "lab-tau"\ncolumn = "tau_msec"\nscope = "cell"\nmax = 50\n'
+        'action = "fail"\n'
+    )
+    result = run_batch(
+        [day], config=lab, out=tmp_path / "out", workers=1, figures=False, progress=False
+    )
+    assert any("'tau_msec'" in w and "did you mean 'tau_ms'" in w for w in result.info["warnings"])
+    assert not result.cells["qc_pass"].any()  # the cells say why, too
+    assert result.cells["qc_reasons"].str.contains("tau_msec").all()
