@@ -292,10 +292,16 @@ def _drift_shift(f: SweepFit, rate: float) -> float:
 
 def _tau(hyper: list[SweepFit], peak_m: np.ndarray, s: PassiveSettings):
     """Weighted tau over the fitted sweeps whose peak membrane deflection is within
-    ``tau_range_v`` (else over the smallest fitted ones)."""
+    ``tau_range_v`` (``sag_tau_range_v`` for exp+sag fits, whose linearised gate holds only
+    near rest); else over the smallest fitted ones."""
     fitted = [
-        f for f, p in zip(hyper, peak_m, strict=True) if _tau_ok(f) and abs(p) <= s.tau_range_v
+        f
+        for f, p in zip(hyper, peak_m, strict=True)
+        if _tau_ok(f)
+        and abs(p) <= (s.sag_tau_range_v if f.charging.model == "exp+sag" else s.tau_range_v)
     ]
+    if len(fitted) < min(s.n_small_steps, sum(_tau_ok(f) for f in hyper)):
+        fitted = [f for f in hyper if _tau_ok(f)][: s.n_small_steps]
     if not fitted:
         fitted = [f for f in hyper if _tau_ok(f)][: s.n_small_steps]
     if not fitted:
