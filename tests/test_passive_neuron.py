@@ -309,3 +309,29 @@ def test_passive_cell_shows_no_sag() -> None:
     sim = nm.simulate_cell("no-sag", SINGLE, protocol_for(truth["rin_ohm"]), RIG, seed=41)
     cf = fit(sim)
     assert abs(cf.sag_ratio) < 0.02
+
+
+WEAK_IH = nm.CellSpec(
+    rm_ohm_m2=5.0,
+    cm_f_m2=0.011,
+    soma_diam_m=80e-6,
+    soma_length_m=80e-6,
+    gh_s_m2=0.045,
+    vrest_v=-0.063,
+)
+NOISY = nm.Nuisances(noise_rms_v=0.6e-3, bridge_ohm=10e6, electrode_tau_s=40e-6)
+
+
+@pytest.mark.parametrize("seed", [51, 52, 53])
+def test_weak_ih_cell_tau_and_cm(ih_loaded: None, seed: int) -> None:
+    # A slow cell (tau_m 55 ms) with a weak sag (~0.06) and the noisiest rig of the range.
+    # Truth: tau = Cm / (g_pas + g_h(V_rest)) with the h gate frozen at rest, Cm = tau over the
+    # frozen-gate input resistance (= Cm * area here; parallel-conductance circuit, Johnston &
+    # Wu 1995 ch. 2). The gate (~80 ms) is not much slower than this membrane, so the truth
+    # for tau is approximate: 10%; Cm 15%.
+    sim = nm.simulate_cell("weak-ih", WEAK_IH, protocol_for(2.2e8, 15, 10), NOISY, seed=seed)
+    cf = fit(sim)
+    assert cf.status == "ok"
+    assert rel(cf.tau_s, sim.truth["tau_s"]) < 0.10
+    assert rel(cf.cm_f, sim.truth["cm_f"]) < 0.15
+    assert rel(cf.rin_ohm, sim.truth["rin_ohm"]) < 0.03
