@@ -330,6 +330,13 @@ def test_cell_without_hyperpolarizing_sweeps():
     assert cf.row()["status"] == "no usable hyperpolarizing sweep"
 
 
+def test_settings_are_checked():
+    with pytest.raises(ValueError, match="charging_model must be one of auto, exp, exp"):
+        PassiveSettings(charging_model="expo")
+    with pytest.raises(ValueError, match="n_small_steps must be >= 1, got 0"):
+        PassiveSettings(n_small_steps=0)
+
+
 def test_epochs_must_match_sweeps():
     with pytest.raises(RecordingError, match="day/c1.nwb: 2 step epochs for 7 sweeps"):
         fit_cell(cell([rc_trace(a) for a in AMPS]), epochs=epochs()[:2])

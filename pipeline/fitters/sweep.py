@@ -110,6 +110,20 @@ class PassiveSettings:
     # level of the reported intervals
     confidence: float = 0.95
 
+    def __post_init__(self) -> None:
+        models = ("auto", "exp", "exp+sag", "none")
+        if self.charging_model not in models:
+            raise ValueError(
+                f"charging_model must be one of {', '.join(models)}; got {self.charging_model!r}"
+            )
+        for name, low in (("n_small_steps", 1), ("hum_harmonics", 1), ("clip_run_samples", 2),
+                          ("min_fit_bins", 4), ("sag_coarse_bins", 1)):  # fmt: skip
+            if getattr(self, name) < low:
+                raise ValueError(f"{name} must be >= {low}, got {getattr(self, name)!r}")
+        for name in ("curvature_p", "jump_curvature_p"):
+            if not 0.0 < getattr(self, name) < 1.0:
+                raise ValueError(f"{name} must be between 0 and 1, got {getattr(self, name)!r}")
+
 
 @dataclass(frozen=True)
 class _Windows:
@@ -740,7 +754,7 @@ def _measure(
     jumps = _edge_jumps(v, w, on, off, base)
     j_on, j_off = jumps["onset_jump_v"], jumps["offset_jump_v"]
     sign = 1.0 if epoch.amplitude > 0 else -1.0
-    smooth = _boxcar(v[on + w.settle : off], round(s.peak_smooth_s * rate))
+    smooth = _boxcar(v[on + w.settle : off], max(1, round(s.peak_smooth_s * rate)))
     k_peak = int(np.argmax(sign * smooth))
     peak_dv = float(smooth[k_peak]) - base
     fit.update(ss_dv=ss_dv, peak_dv=peak_dv, **jumps)
@@ -757,7 +771,7 @@ def _measure(
     fit["rebound_v"] = _rebound(
         v, off + w.settle, round(s.rebound_window_s * rate), s, rate, base, reasons
     )
-    ksm = round(s.peak_smooth_s * rate)
+    ksm = max(1, round(s.peak_smooth_s * rate))
     if not (-peak_dv > max(5 * rms / math.sqrt(ksm), 1e-7) and peak_m < 0):  # 5 SD, smoothed
         reasons.append("deflection within the noise: no charging fit")
         return SweepFit(**head, **fit, reason="; ".join(reasons))
