@@ -14,7 +14,13 @@ import numpy as np
 import pytest
 
 from pipeline.errors import RecordingError
-from pipeline.fitters.passive import PassiveSettings, fit_cell, fit_sweep, summarize_cell
+from pipeline.fitters.passive import (
+    PassiveSettings,
+    fit_cell,
+    fit_sweep,
+    fit_sweeps,
+    summarize_cell,
+)
 from pipeline.fitters.results import sag_response
 from pipeline.recording import Recording, Sweep
 from pipeline.steps import StepEpoch
@@ -375,3 +381,11 @@ def test_rows_and_exclusion():
     assert again.rin_ohm == pytest.approx(RIN, rel=0.01)
     flagged = {r["sweep"]: r for r in again.sweep_rows()}
     assert flagged[3]["excluded_because"] == "qc" and not flagged[3]["used"]
+
+
+def test_fit_sweeps_then_summarize_equals_fit_cell():
+    """The batch path (measure the sweeps once, summarise with QC's exclusions) gives what
+    fit_cell gives."""
+    rec = noisy_cell(4)
+    fits = fit_sweeps(list(zip(rec.sweeps, epochs(), strict=True)), PassiveSettings())
+    assert summarize_cell("c1", fits, PassiveSettings()) == fit_cell(rec, epochs=epochs())

@@ -18,10 +18,10 @@ from pipeline.errors import RecordingError
 from pipeline.fitters.cell import summarize_cell
 from pipeline.fitters.results import CellFit, SweepFit
 from pipeline.fitters.sweep import PassiveSettings, fit_sweep
-from pipeline.recording import Recording
+from pipeline.recording import Recording, Sweep
 from pipeline.steps import StepEpoch, StepSettings
 
-__all__ = ["PassiveSettings", "fit_cell", "fit_sweep", "summarize_cell"]
+__all__ = ["PassiveSettings", "fit_cell", "fit_sweep", "fit_sweeps", "summarize_cell"]
 
 
 def fit_cell(
@@ -54,10 +54,7 @@ def fit_cell(
 
     Notes
     -----
-    The charging curves are first fitted on the three largest hyperpolarizing steps (best
-    signal-to-noise); every hyperpolarizing sweep is then fitted starting no earlier than the
-    dendritic equalisation time found on them, with the exp+sag model when the largest step
-    sags (small steps are too noisy to decide alone).
+    The sweeps are measured with :func:`fit_sweeps` (two passes), then summarised.
 
     Raises
     ------
@@ -74,8 +71,37 @@ def fit_cell(
             recording.source_file,
             f"{len(epochs)} step epochs for {len(recording.sweeps)} sweeps of cell {recording.cell_id}",
         )
-    pairs = list(zip(recording.sweeps, epochs, strict=True))
-    # pilot: the charging curves of the largest hyperpolarizing steps (best signal-to-noise)
+    fits = fit_sweeps(list(zip(recording.sweeps, epochs, strict=True)), settings)
+    return summarize_cell(recording.cell_id, fits, settings, exclude)
+
+
+def fit_sweeps(
+    pairs: Sequence[tuple[Sweep, StepEpoch]], settings: PassiveSettings
+) -> list[SweepFit]:
+    """Per-sweep passive measurements of one cell's sweeps, with the cell-level second pass.
+
+    Parameters
+    ----------
+    pairs : sequence of (Sweep, StepEpoch)
+        The cell's sweeps with their step epochs (unusable epochs give a SweepFit with the
+        epoch's reason).
+    settings : PassiveSettings
+        Windows and fit options.
+
+    Returns
+    -------
+    list of SweepFit
+        In the order of ``pairs``; feed them to :func:`summarize_cell` (again with other
+        exclusions as often as needed: it re-reads no trace).
+
+    Notes
+    -----
+    The charging curves are first fitted on the three largest hyperpolarizing steps (best
+    signal-to-noise); every hyperpolarizing sweep is then fitted starting no earlier than the
+    dendritic equalisation time found on them, with the exp+sag model when the largest step
+    sags (small steps are too noisy to decide alone). Calling :func:`fit_sweep` sweep by sweep
+    skips this and decides per sweep.
+    """
     hyper = sorted(
         (k for k, (_, ep) in enumerate(pairs) if ep.usable and ep.amplitude < 0),
         key=lambda k: pairs[k][1].amplitude,
@@ -89,7 +115,7 @@ def fit_cell(
     for k in hyper:
         if k not in pilots or second is not settings:
             fits[k] = _refit(fits[k], *pairs[k], second)
-    return summarize_cell(recording.cell_id, fits, settings, exclude)
+    return fits
 
 
 def _refit(first: SweepFit, sweep, epoch: StepEpoch, settings: PassiveSettings) -> SweepFit:
