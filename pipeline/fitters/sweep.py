@@ -788,7 +788,7 @@ def _measure(
         reasons.append(why)
     fit["charging"] = charging
     fit["tau_fast_s"] = tau_fast
-    if s.two_exp and charging.ok:
+    if s.two_exp and charging.ok and charging.model == "exp":
         end = int(np.searchsorted(t, charging.t1, side="right"))
         fit["charging2"] = fit_two_exponentials(t[:end], y[:end], charging, tau_fast)
     return SweepFit(**head, **fit, reason="; ".join(reasons))
