@@ -247,7 +247,8 @@ def summarize_cell(
     rin_peak = _through_origin(i[pick], peak[pick]).value - re
     chord = ss[-1] / i[-1] - re
     tau, tau_ci, tau_se, tau_used = _tau(hyper, peak - re * i, s)
-    kappa, kappa_half = _kappa([f for f in hyper if f.sweep in tau_used], s.confidence)
+    wide_tau = [f for f, p in zip(hyper, peak - re * i, strict=True) if abs(p) <= s.tau_range_v]
+    kappa, kappa_half = _kappa(wide_tau, s.confidence)
     rin_ci = _interval(rin, rin_se, apparent.dof, s.confidence)
     cm, cm_ci = _cm(tau, tau_ci, rin * (1.0 + kappa), rin_ci, kappa_half / (1.0 + kappa))
     sag, at_target = _sag(hyper, i, ss, peak, re, s)
@@ -320,20 +321,27 @@ def _kappa(fits: list[SweepFit], level: float) -> tuple[float, float]:
     """Gate strength kappa at rest (0 without exp+sag fits) and its interval half-width.
 
     Kappa grows with the step (the gate opens further), so it is the intercept at zero current
-    of a line through the sweeps' (step, kappa); their mean when fewer than 3 sweeps.
+    of a line through the sweeps' (step, kappa), weighted by the fits' errors; their weighted
+    mean when fewer than 3 sweeps.
     """
-    pts = [(f.step_a, f.charging.kappa) for f in fits if f.charging.model == "exp+sag"]
-    pts = np.array([p for p in pts if math.isfinite(p[1])]).reshape(-1, 2)
+    pts = [
+        (f.step_a, f.charging.kappa, f.charging.kappa_se)
+        for f in fits
+        if f.charging.model == "exp+sag"
+    ]
+    pts = np.array([p for p in pts if np.isfinite(p).all() and p[2] > 0]).reshape(-1, 3)
     if pts.shape[0] == 0:
         return 0.0, 0.0
+    x, y, w = pts[:, 0] / np.max(np.abs(pts[:, 0])), pts[:, 1], 1.0 / pts[:, 2]
     if pts.shape[0] < 3:
-        return float(pts[:, 1].mean()), NAN
-    x, y = pts[:, 0] / np.max(np.abs(pts[:, 0])), pts[:, 1]
+        mean, ci, _ = _weighted_mean(y, pts[:, 2], level)
+        return mean, (ci[1] - ci[0]) / 2
     design = np.column_stack([np.ones_like(x), x])
-    coef, *_ = np.linalg.lstsq(design, y, rcond=None)
-    resid = y - design @ coef
+    coef, *_ = np.linalg.lstsq(design * w[:, None], y * w, rcond=None)
+    resid = (y - design @ coef) * w
     dof = x.size - 2
-    cov = float(resid @ resid) / dof * np.linalg.inv(design.T @ design)
+    scale = max(1.0, float(resid @ resid) / dof)  # Birge ratio, as for tau
+    cov = scale * np.linalg.inv((design * w[:, None]).T @ (design * w[:, None]))
     lo, hi = _interval(float(coef[0]), math.sqrt(cov[0, 0]), dof, level)
     return float(coef[0]), (hi - lo) / 2
 

@@ -81,6 +81,7 @@ class ExpFit:
     onset: float = NAN  # step onset, s from the sweep start (time origin of 'exp+sag')
     tau_sag: float = NAN  # slow gate time constant, s ('exp+sag')
     kappa: float = NAN  # steady / instantaneous conductance - 1 ('exp+sag')
+    kappa_se: float = NAN  # its standard error from the fit
 
     @property
     def ok(self) -> bool:

@@ -547,6 +547,7 @@ def fit_sag_model(
         onset=onset,
         tau_sag=math.exp(p[3]),
         kappa=float(p[4]),
+        kappa_se=float(np.sqrt(cov[4, 4])),
     )
 
 
