@@ -1,17 +1,21 @@
 """Passive measurements of one current-step sweep, and the settings of the passive fitters.
 
 Every measurement is taken on the trace after mains hum has been fitted and removed (sine and
-cosine at 50 and 60 Hz and their harmonics, fitted where the membrane is flat: before the step,
-late in the step and late after it). Windows are in seconds; values in SI units. Injected
-current positive = depolarizing, so a hyperpolarizing step has ``step_a < 0`` and negative
-deflections.
+cosine at 50 and 60 Hz and their harmonics, fitted where the membrane is flat: before the step
+and late in it). Windows are in seconds; values in SI units. Injected current positive =
+depolarizing, so a hyperpolarizing step has ``step_a < 0`` and negative deflections.
 
-The charging curve is fitted with a single exponential in a window chosen per sweep: it starts
-once the response has reached ``fit_start_fraction`` of its peak *and* the faster (dendritic
-equalisation) components, estimated by peeling the early residual, have decayed for
-``equalization_factor`` of their time constant; it ends at ``fit_end_fraction`` of the peak or at
-the peak itself when the response sags (Ih). Tau is then the slowest time constant tau0, not the
-blend a fit from onset gives.
+- Baseline and steady state: means over windows that span whole hum cycles.
+- Peak: extreme of a boxcar-smoothed trace. Rebound: the same after the step.
+- Edge jumps (bridge error x I): the membrane response just after the electrode settles,
+  extrapolated back to the edge by a quadratic (and, kept for the cell to choose, a quadratic
+  with a t^1.5 term: a small soma charging its dendrite bends the early response).
+- Charging curve (hyperpolarizing steps): a single exponential in a window chosen per sweep --
+  from ``fit_start_fraction`` of the peak, moved past the faster (dendritic equalisation)
+  components found by peeling the early residual, to ``fit_span_tau`` time constants (or to the
+  peak when the response sags) -- so tau is the slowest time constant tau0, not the blend a fit
+  from onset gives. Where the response sags (Ih) the step response of a membrane with one slow
+  restoring gate is fitted instead, and tau is the membrane's frozen-gate time constant.
 
 References
 ----------
@@ -379,10 +383,10 @@ def fit_exponential(t: np.ndarray, y: np.ndarray, tau_guess: float) -> ExpFit:
     )
 
 
-def _first_crossing(r: np.ndarray, level: float, start: int = 0) -> int:
-    """Index of the first element of ``r[start:]`` at or beyond ``level`` (same sign), or -1."""
-    hit = np.flatnonzero(r[start:] >= level)
-    return int(hit[0]) + start if hit.size else -1
+def _first_crossing(r: np.ndarray, level: float) -> int:
+    """Index of the first element of ``r`` at or above ``level``, or -1."""
+    hit = np.flatnonzero(r >= level)
+    return int(hit[0]) if hit.size else -1
 
 
 def _fast_tau(t: np.ndarray, resid: np.ndarray, noise: float) -> float:
@@ -451,8 +455,8 @@ def _charging_fit(
         late = fit_from(j_late) if j_late - i0 >= s.min_fit_bins else fit
         excess = (y[:j_late] - late.curve(t[:j_late])) * np.sign(fit.amp)  # > 0: data lags
         tau_fast = _fast_tau(t[:j_late], excess, noise)
-    if np.isfinite(tau_fast) and tau_fast < late.tau / 2:
-        j0 = max(j0, int(np.searchsorted(t, t[0] + s.equalization_factor * tau_fast)))
+        if np.isfinite(tau_fast) and tau_fast < late.tau / 2:
+            j0 = max(j0, int(np.searchsorted(t, t[0] + s.equalization_factor * tau_fast)))
     j0 = max(j0, int(np.searchsorted(t, onset + s.fit_start_min_s)))
     if not use_sag and sagging and i1 - j0 + 1 < s.min_fit_bins:
         return ExpFit(), tau_fast, "charging-curve fit window ends before it can start"
