@@ -1,16 +1,24 @@
 """Passive properties of one cell from its sweep measurements (cheap: no trace is re-read).
 
-Rin is the bridge-corrected steady-state slope near rest: the slope through the origin of
-(step current, steady-state deflection) over the hyperpolarizing sweeps whose membrane deflection
-lies within ``linear_range_v`` (at least the ``n_small_steps`` smallest), or the slope at zero
-current of a quadratic through the origin when the V-I relation curves significantly (Ih,
-inward rectification), minus the bridge error (slope of the edge jumps against current).
-Tau is the inverse-variance weighted mean of the per-sweep tau0 fits of the hyperpolarizing
-steps within ``tau_range_v``; where the cell sags, those are frozen-gate time constants of the
-exp+sag model, whose gate strength kappa (steady / instantaneous conductance - 1) is averaged
-too. Cm = tau / (Rin (1 + kappa)) -- tau over the input resistance before the slow gate moves,
-plain tau / Rin without sag -- with the interval propagated in quadrature of relative
-half-widths.
+- Vrest: the resting potential at the start of the recording -- a line through the baselines
+  of the sweeps at zero holding and bias current against time, read at the first of them --
+  and its drift over the recording; the drift rate also corrects every deflection for the
+  baseline's change between its baseline and steady-state windows.
+- Bridge error: slope through the origin of the edge jumps against the current (onset: +I,
+  offset: -I), robust to a few bad edges; the t^1.5 extrapolation of the jumps is used when a
+  pooled F-test says the early responses bend.
+- Rin is the bridge-corrected steady-state slope near rest: the slope through the origin of
+  (step current, steady-state deflection) over the hyperpolarizing sweeps whose membrane
+  deflection lies within ``linear_range_v`` (at least the ``n_small_steps`` smallest); where the
+  V-I relation bends (Ih, inward rectification; F-tests of a quadratic and a cubic through the
+  origin over the sweeps within ``iv_range_v``) the slope at zero current of that polynomial;
+  minus the bridge error. ``iv_curvature`` = chord at the largest step / Rin - 1.
+- Tau: inverse-variance weighted mean (Birge-scaled interval) of the per-sweep tau0 fits within
+  ``tau_range_v``; where the cell sags those are frozen-gate time constants of the exp+sag
+  model (within ``sag_tau_range_v``), and kappa (steady / instantaneous conductance - 1) is read
+  at rest from a line through the sweeps' values.
+- Cm = tau / (Rin (1 + kappa)): tau over the input resistance before the slow gate moves (plain
+  tau / Rin without sag), interval from the relative half-widths in quadrature.
 
 References
 ----------
@@ -193,7 +201,8 @@ def summarize_cell(
     cell_id : str
         Cell identifier.
     sweep_fits : sequence of SweepFit
-        Every sweep's measurements (from :func:`pipeline.fitters.sweep.fit_sweep`).
+        Every sweep's measurements (from :func:`pipeline.fitters.passive.fit_sweeps`, or
+        :func:`pipeline.fitters.sweep.fit_sweep` one by one).
     settings : PassiveSettings
         Linear range, number of small steps, corrections, sag target, interval level.
     exclude : mapping of int to str, optional
@@ -203,8 +212,8 @@ def summarize_cell(
     -------
     CellFit
         Rin (bridge-corrected steady-state slope near rest, ohm) with its interval, Rin from the
-        peak deflections, the bridge error, tau (s), Cm (F), Vrest (V, at the first zero-current
-        sweep) and its drift, sag ratio ``(V_peak - V_ss) / (V_peak - V_base)`` (0 = no sag,
+        peak deflections, the bridge error, tau (s), Cm (F), Vrest (V, at the start of the
+        recording) and its drift, sag ratio ``(V_peak - V_ss) / (V_peak - V_base)`` (0 = no sag,
         bridge jump removed) at the most hyperpolarizing step and at ``sag_target_v``, rebound.
         ``status`` is ``'ok'`` or why there are no values; ``notes`` lists lesser gaps.
     """
