@@ -9,6 +9,7 @@ with hand-made StepEpochs, so these tests do not depend on the step finder.
 from __future__ import annotations
 
 import math
+from dataclasses import replace
 
 import numpy as np
 import pytest
@@ -389,3 +390,17 @@ def test_fit_sweeps_then_summarize_equals_fit_cell():
     rec = noisy_cell(4)
     fits = fit_sweeps(list(zip(rec.sweeps, epochs(), strict=True)), PassiveSettings())
     assert summarize_cell("c1", fits, PassiveSettings()) == fit_cell(rec, epochs=epochs())
+
+
+def test_drift_across_sweeps_is_taken_out_of_the_deflections():
+    """A steady 0.5 mV/s baseline drift: 0.5 mV between the baseline and steady-state windows
+    of every sweep (5% of a 10 mV deflection) unless corrected."""
+    t = np.arange(N) / RATE
+    traces = [rc_trace(a) + 0.5e-3 * (3.0 * k + t) for k, a in enumerate(AMPS)]
+    plain = PassiveSettings(bridge_correction=False)
+    cf = fit_cell(cell(traces), plain, epochs=epochs())
+    assert cf.rin_ohm == pytest.approx(RIN, rel=1e-6)
+    assert cf.vrest_drift_v == pytest.approx(0.5e-3 * 3.0 * (len(AMPS) - 1), rel=1e-6)
+    assert cf.vrest_v == pytest.approx(VREST + 0.5e-3 * 0.2, abs=1e-9)  # at the first window
+    raw = fit_cell(cell(traces), replace(plain, drift_correction=False), epochs=epochs())
+    assert raw.rin_ohm < 0.96 * RIN
