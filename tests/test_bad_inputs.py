@@ -591,6 +591,31 @@ def build_mixed_rates(tmp: Path, g: Goods) -> Path:
     return write_nwb([_rec(g.template, sweeps)], tmp / "bad_mixed_rates.nwb")
 
 
+def _relabel(path: Path, old: str, new: str) -> Path:
+    path.write_text(path.read_text().replace(old, new, 1))
+    return path
+
+
+def build_mv_labelled_volts(tmp: Path, g: Goods) -> Path:
+    path = write_csv(g.template, tmp / "bad_mv_as_v.csv", decimals=3)
+    return _relabel(path, "voltage_mv", "voltage_v")  # -70 read as -70 V
+
+
+def build_pa_labelled_amperes(tmp: Path, g: Goods) -> Path:
+    path = write_csv(g.template, tmp / "bad_pa_as_a.csv", decimals=3)
+    return _relabel(path, "current_pa", "current_a")  # -80 read as -80 A
+
+
+def build_no_current(tmp: Path, g: Goods) -> Path:
+    sweeps = [replace(s, current=None) for s in g.template.sweeps]
+    return write_csv(_rec(g.template, sweeps), tmp / "bad_no_current.csv", decimals=3)
+
+
+def build_one_hyperpolarizing(tmp: Path, g: Goods) -> Path:
+    rec = simulate("one", replace(PROTOCOL, amplitudes_a=(-50 * PA, 50 * PA, 100 * PA)))
+    return write_nwb([rec], tmp / "bad_one_hyper.nwb")
+
+
 def check_nan_runs(cells, sweeps, stem):
     mine = sweeps[sweeps.cell_id == stem].set_index("sweep")
     for k in (0, 2):
@@ -657,6 +682,43 @@ def check_mixed_rates(cells, sweeps, stem):
     assert cells.loc[stem, "rin_mohm"] == pytest.approx(222.2, rel=0.03)
 
 
+def check_mv_labelled_volts(cells, sweeps, stem):
+    mine = sweeps[sweeps.cell_id == stem]
+    assert (mine["baseline_mv"].abs() > 60_000).all()  # the -70 V shows in the table
+    assert mine["excluded_because"].str.match(r"baseline noise \d+\.\d+ mV RMS above 0.5 mV").all()
+    assert cells.loc[stem, "status"] == "no usable hyperpolarizing sweep"
+    assert not cells.loc[stem, "qc_pass"]
+
+
+def check_pa_labelled_amperes(cells, sweeps, stem):
+    mine = sweeps[sweeps.cell_id == stem]
+    assert (mine["step_kind"] == "noise").all() and not mine["used"].any()
+    assert (
+        mine["excluded_because"]
+        .str.fullmatch(
+            r"not a usable step: a noise-like current \(.* pA RMS over 100% of the sweep\)"
+        )
+        .all()
+    )
+    assert cells.loc[stem, "status"] == "no usable hyperpolarizing sweep"
+
+
+def check_no_current(cells, sweeps, stem):
+    mine = sweeps[sweeps.cell_id == stem]
+    assert (mine["step_kind"] == "no current").all()
+    assert (
+        mine["excluded_because"]
+        == "not a usable step: no current stored and no step schedule in the config (set "
+        "steps.schedule_onset_s, schedule_duration_s and schedule_first_a)"
+    ).all()
+    assert cells.loc[stem, "status"] == "no usable hyperpolarizing sweep"
+
+
+def check_one_hyperpolarizing(cells, sweeps, stem):
+    assert cells.loc[stem, "status"] == "ok", cells.loc[stem, "status"]
+    assert cells.loc[stem, "rin_mohm"] == pytest.approx(222.2, rel=0.03)
+
+
 ANALYSED = [
     pytest.param(build_nan_runs, check_nan_runs, id="nan-runs"),
     pytest.param(build_inf_runs, check_inf_runs, id="inf-runs"),
@@ -665,6 +727,19 @@ ANALYSED = [
     pytest.param(build_no_hyperpolarizing, check_no_hyperpolarizing, id="no-hyperpolarizing"),
     pytest.param(build_short_steps, check_short_steps, id="steps-shorter-than-windows"),
     pytest.param(build_mixed_rates, check_mixed_rates, id="mixed-rates-in-one-cell"),
+    pytest.param(build_mv_labelled_volts, check_mv_labelled_volts, id="millivolts-as-volts"),
+    pytest.param(build_pa_labelled_amperes, check_pa_labelled_amperes, id="picoamps-as-amperes"),
+    pytest.param(build_no_current, check_no_current, id="no-current-no-schedule"),
+    pytest.param(
+        build_one_hyperpolarizing,
+        check_one_hyperpolarizing,
+        id="one-hyperpolarizing-step",
+        marks=pytest.mark.xfail(
+            strict=True,
+            reason="fitters/cell.py _polynomial_at_rest: dof = 0 with a single hyperpolarizing "
+            "sweep -> ZeroDivisionError; the cell is 'analysis failed' and the run exits 1",
+        ),
+    ),
     pytest.param(
         build_zero_step,
         check_zero_step_reason,
@@ -928,3 +1003,21 @@ def test_same_command_after_a_failed_write_completes_the_run(goods, tmp_path, mo
     outcome = run_cli(args, out)
     assert outcome.code == 0, outcome.stderr
     assert (out / "index.html").is_file() and (out / "run.json").is_file()
+
+
+def test_cell_without_current_is_analysed_from_the_config_schedule(goods, tmp_path):
+    bad = build_no_current(tmp_path, goods)
+    lab = tmp_path / "lab.toml"
+    lab.write_text(
+        "[steps]\nschedule_onset_s = 0.1\nschedule_duration_s = 0.3\n"
+        "schedule_first_a = -80e-12\nschedule_increment_a = 20e-12\n"
+    )
+    outcome = run_cli([*goods.files, bad, "-c", lab, "--no-figures"], tmp_path / "out")
+    assert outcome.code == 0, outcome.stderr
+    sweeps = outcome.sweeps()
+    mine = sweeps[sweeps.cell_id == bad.stem]
+    # the schedule says -80, -60, ... +20 pA; the file holds -80..-20, +40, +80: the first four agree
+    assert list(mine["step_pa"].round(6))[:4] == [-80.0, -60.0, -40.0, -20.0]
+    row = outcome.cells().loc[bad.stem]
+    assert row["status"] == "ok" and row["rin_mohm"] == pytest.approx(222.2, rel=0.03)
+    assert_good_cells_complete(outcome)
