@@ -321,32 +321,35 @@ def _read_h5(path: Path) -> list[Recording]:
         if _attr(f, "neurodata_type") != "NWBFile":
             raise NotUnderstood("no NWBFile at the root")
         responses, stimuli, skipped = [], [], []
+        # Every series' name and type, read once: a table row's reference gives the group
+        # only, and asking HDF5 for its name or type again costs more than the samples.
+        known: dict[Any, tuple[str, str | None]] = {}
         for top in ("acquisition", "stimulus/presentation"):
-            for group in _children(f, top):
+            for key, group in _children(f, top):
                 kind = _attr(group, "neurodata_type")
+                known[group] = (key, kind)
                 if kind in CLAMP_TYPES:
                     responses.append(group)
                 elif kind in STIMULUS_TYPES:
                     stimuli.append(group)
                 elif kind in OTHER_PATCH_TYPES:
-                    skipped.append(f"{group.name.rsplit('/', 1)[-1]} ({kind})")
+                    skipped.append(f"{key} ({kind})")
         if not responses:
-            orphans = _orphans(g.name.rsplit("/", 1)[-1] for g in stimuli)
-            return _finish(path, None, [], [], {}, skipped + orphans)
-        rows = _rows_h5(name, f)
+            return _finish(path, None, [], [], {}, skipped + _orphans(known[g][0] for g in stimuli))
+        rows = _rows_h5(name, f, known)
         if rows is None:
-            responses = [_load_h5(name, g, "V") for g in responses]
-            stimuli = [_load_h5(name, g, "A") for g in stimuli]
+            responses = [_load_h5(name, g, "V", known=known) for g in responses]
+            stimuli = [_load_h5(name, g, "A", known=known) for g in stimuli]
         return _finish(path, rows, responses, stimuli, _metadata_h5(f), skipped)
 
 
-def _children(f: Any, top: str) -> list:
-    """Groups under ``top``; a type from an extension namespace may subclass ours: not ours."""
+def _children(f: Any, top: str) -> list[tuple[str, Any]]:
+    """(name, group) under ``top``; a type from an extension namespace may subclass ours."""
     import h5py
 
-    parent = f.get(top)
-    if parent is None:
+    if top not in f:
         return []
+    parent = f[top]
     out = []
     for key in parent:
         obj = parent[key]
@@ -354,14 +357,14 @@ def _children(f: Any, top: str) -> list:
         if namespace is not None and namespace not in KNOWN_NAMESPACES:
             raise NotUnderstood(f"extension type in {top}/{key}")
         if isinstance(obj, h5py.Group):
-            out.append(obj)
+            out.append((key, obj))
     return out
 
 
-def _rows_h5(path: str, f: Any) -> list | None:
-    table = f.get(TABLE)
-    if table is None:
+def _rows_h5(path: str, f: Any, known: dict[Any, tuple[str, str | None]]) -> list | None:
+    if TABLE not in f:
         return None
+    table = f[TABLE]
     if _attr(table, "neurodata_type") != "IntracellularRecordingsTable":
         raise NotUnderstood("unexpected intracellular recordings table")
     responses = table["responses/response"][()]
@@ -371,33 +374,46 @@ def _rows_h5(path: str, f: Any) -> list | None:
         if resp["idx_start"] < 0 or not resp["timeseries"]:
             continue
         group = f[resp["timeseries"]]
-        if _attr(group, "neurodata_type") not in CLAMP_TYPES:
+        kind = known[group][1] if group in known else _attr(group, "neurodata_type")
+        if kind not in CLAMP_TYPES:
             continue  # voltage-clamp rows
-        r = _load_h5(path, group, "V", resp)
+        r = _load_h5(path, group, "V", resp, known)
         s = None
         if stim["idx_start"] >= 0 and stim["timeseries"]:
-            s = _load_h5(path, f[stim["timeseries"]], "A", stim)
+            s = _load_h5(path, f[stim["timeseries"]], "A", stim, known)
         rows.append((r, s))
     return rows or None
 
 
-def _load_h5(path: str, group: Any, base: str, ref: Any = None) -> SeriesData:
-    kind = _attr(group, "neurodata_type")
+def _load_h5(
+    path: str,
+    group: Any,
+    base: str,
+    ref: Any = None,
+    known: dict[Any, tuple[str, str | None]] | None = None,
+) -> SeriesData:
+    name, kind = (known or {}).get(group) or (None, None)
+    if name is None:  # a table row pointing outside acquisition and stimulus
+        name, kind = group.name.rsplit("/", 1)[-1], _attr(group, "neurodata_type")
+    members = set(group)  # one pass over the links instead of lookups that may fail
     data = group["data"]
     start, stop = 0, None
     if ref is not None:
         start, stop = int(ref["idx_start"]), int(ref["idx_start"]) + int(ref["count"])
-    starting = group.get("starting_time")
+    starting = group["starting_time"] if "starting_time" in members else None
     if kind == "IZeroClampSeries":  # pynwb fixes these for I=0 series, whatever is stored
         settings: dict[str, Any] = dict.fromkeys(SETTINGS_KEYS.values(), 0.0)
         protocol = None
     else:
-        settings = {key: _scalar(group, attr) for attr, key in SETTINGS_KEYS.items()}
+        settings = {
+            key: _scalar(group, attr) if attr in members else None
+            for attr, key in SETTINGS_KEYS.items()
+        }
         protocol = _attr(group, "stimulus_description")
-    electrode = _link_target(group, "electrode")
+    electrode = _link_target(group, "electrode") if "electrode" in members else None
     return _series_data(
         path,
-        name=group.name.rsplit("/", 1)[-1],
+        name=name,
         kind=kind,
         electrode=electrode.rsplit("/", 1)[-1] if electrode is not None else "",
         base=base,
@@ -405,7 +421,7 @@ def _load_h5(path: str, group: Any, base: str, ref: Any = None) -> SeriesData:
         conversion=_attr(data, "conversion"),
         offset=_attr(data, "offset"),
         data=data,
-        timestamps=group.get("timestamps"),
+        timestamps=group["timestamps"] if "timestamps" in members else None,
         rate=_attr(starting, "rate") if starting is not None else None,
         starting_time=float(starting[()]) if starting is not None else None,
         start=start,
