@@ -20,6 +20,7 @@ import argparse
 import json
 import os
 import resource
+import shutil
 import subprocess
 import sys
 import tempfile
@@ -120,21 +121,30 @@ STRAIGHTFORWARD = textwrap.dedent(
 )
 
 
-def timed(cmd: list[str], **kwargs) -> tuple[float, int]:
-    """Wall time of a whole process and the peak RSS (kB) of it or any of its workers."""
+def timed(cmd: list[str], **kwargs) -> tuple[float, int, float]:
+    """Wall time of a whole process, the peak RSS (kB) of it or any of its workers, and the CPU
+    time (user + system, s) of it and its workers: on a shared machine the wall time depends on
+    what else runs, the CPU time much less."""
     probe = textwrap.dedent(
         """
         import resource, subprocess, sys, time
         t = time.perf_counter()
         subprocess.run(sys.argv[1:], check=True, stdout=subprocess.DEVNULL)
         dt = time.perf_counter() - t
-        print(dt, resource.getrusage(resource.RUSAGE_CHILDREN).ru_maxrss)
+        use = resource.getrusage(resource.RUSAGE_CHILDREN)
+        print(dt, use.ru_maxrss, use.ru_utime + use.ru_stime)
         """
     )
     out = subprocess.run(
         [sys.executable, "-c", probe, *cmd], check=True, capture_output=True, text=True, **kwargs
     ).stdout.split()
-    return float(out[0]), int(out[1])
+    return float(out[0]), int(out[1]), float(out[2])
+
+
+def fresh(out: Path) -> Path:
+    """An empty output folder: ``--force`` alone would reuse the analysis cache kept there."""
+    shutil.rmtree(out, ignore_errors=True)
+    return out
 
 
 def patchbatch(day: Path, out: Path, *args: str) -> list[str]:
@@ -163,7 +173,8 @@ def main() -> int:
         print(f"generated {args.cells} cells in {time.perf_counter() - t0:.1f} s -> {day}")
     n = args.cells
     env = {**os.environ, "PYTHONPATH": str(ROOT)}
-    results: dict[str, tuple[float, int]] = {}
+    print(f"load average before the runs: {' '.join(f'{x:.2f}' for x in os.getloadavg())}")
+    results: dict[str, tuple[float, int, float]] = {}
     results["h5py floor"] = timed([sys.executable, "-c", H5PY_FLOOR, str(day)], env=env)
     results["straightforward script"] = timed(
         [sys.executable, "-c", STRAIGHTFORWARD, str(day)], env=env
@@ -174,16 +185,21 @@ def main() -> int:
         "full -j 2": (base / "out-f2", ["-j", "2"]),
     }
     for label, (out, extra) in runs.items():
-        results[label] = timed(patchbatch(day, out, "--force", *extra), env=env)
+        results[label] = timed(patchbatch(day, fresh(out), *extra), env=env)
     results["re-run unchanged -j 2"] = timed(patchbatch(day, base / "out-f2", "-j", "2"), env=env)
 
     print(
         f"\n{n} cells x {len(PROTOCOL.amplitudes_a)} sweeps x {PROTOCOL.sweep_s} s at "
         f"{PROTOCOL.rate_hz / 1e3:g} kHz; whole processes, imports included"
     )
-    print(f"{'run':28s} {'seconds':>8s} {'s/cell':>8s} {'cells/s':>8s} {'peak MB':>8s}")
-    for label, (secs, rss) in results.items():
-        print(f"{label:28s} {secs:8.2f} {secs / n:8.3f} {n / secs:8.1f} {rss / 1024:8.0f}")
+    print(
+        f"{'run':28s} {'seconds':>8s} {'s/cell':>8s} {'cells/s':>8s} {'peak MB':>8s} {'CPU s':>8s}"
+    )
+    for label, (secs, rss, cpu) in results.items():
+        print(
+            f"{label:28s} {secs:8.2f} {secs / n:8.3f} {n / secs:8.1f} {rss / 1024:8.0f} {cpu:8.2f}"
+        )
+    print(f"load average after the runs: {' '.join(f'{x:.2f}' for x in os.getloadavg())}")
 
     print("\ntime in each stage (summed over workers, s), full -j 1:")
     for stage, secs in stage_times(base / "out-f1").items():
@@ -228,10 +244,9 @@ def main() -> int:
             make_day(small, 40, passive_only=True)
         mem = {}
         for label, folder in (("40", small), ("400", big)):
-            out = base / f"out-mem{label}"
+            out = fresh(base / f"out-mem{label}")
             mem[label] = (
-                timed(patchbatch(folder, out, "--force", "-j", "2", "--no-figures"), env=env)[1]
-                / 1024
+                timed(patchbatch(folder, out, "-j", "2", "--no-figures"), env=env)[1] / 1024
             )
         same = abs(mem["400"] - mem["40"]) <= 0.15 * mem["40"]
         print(
