@@ -405,3 +405,16 @@ def test_drift_across_sweeps_is_taken_out_of_the_deflections():
     assert cf.vrest_v == pytest.approx(VREST + 0.5e-3 * 0.2, abs=1e-7)
     raw = fit_cell(cell(traces), replace(plain, drift_correction=False), epochs=epochs())
     assert raw.rin_ohm < 0.96 * RIN
+
+
+def test_one_hyperpolarizing_sweep_and_a_slow_membrane():
+    """One hyperpolarizing step still gives Rin (no interval); tau longer than the step gives
+    a fit or NaN with a reason, never an exception."""
+    amps = (-50e-12, 50e-12)
+    cf = fit_cell(cell([rc_trace(a) for a in amps], amps), epochs=epochs(amps))
+    assert cf.rin_ohm == pytest.approx(RIN, rel=1e-4)
+    assert math.isnan(cf.rin_ci_ohm[0])
+    slow = [rc_trace(a, tau=2.0) for a in AMPS]  # tau 2 s, step 1 s
+    cf_slow = fit_cell(cell(slow), epochs=epochs())
+    assert cf_slow.status == "ok"
+    assert math.isnan(cf_slow.tau_s) or cf_slow.tau_s > 0.5

@@ -68,6 +68,8 @@ def _polynomial_at_rest(x: np.ndarray, y: np.ndarray, degree: int) -> tuple[_Slo
     dof = x.size - degree
     resid = y - design @ coef
     ssr = float(resid @ resid)
+    if dof <= 0:  # as many sweeps as coefficients: a slope, no error estimate
+        return _Slope(float(coef[0]) / scale, NAN, 0), ssr
     cov = ssr / dof * np.linalg.inv(design.T @ design)
     return _Slope(float(coef[0]) / scale, float(math.sqrt(cov[0, 0])) / scale, dof), ssr
 

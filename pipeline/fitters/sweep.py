@@ -452,7 +452,8 @@ def _charging_fit(
     j0, tau_fast = i0, NAN
     if s.fit_start_min_s <= 0:
         j_late = int(np.searchsorted(t, t[0] + fit.tau))
-        late = fit_from(j_late) if j_late - i0 >= s.min_fit_bins else fit
+        room = j_late - i0 >= s.min_fit_bins and t.size - j_late >= s.min_fit_bins
+        late = fit_from(j_late) if room else fit
         excess = (y[:j_late] - late.curve(t[:j_late])) * np.sign(fit.amp)  # > 0: data lags
         tau_fast = _fast_tau(t[:j_late], excess, noise)
         if np.isfinite(tau_fast) and tau_fast < late.tau / 2:
@@ -500,6 +501,8 @@ def fit_sag_model(
         With ``model="exp+sag"``; ``tau`` the frozen-gate membrane time constant. NaN if the fit
         failed.
     """
+    if t.size < 12 or not first.ok:
+        return ExpFit()
     # fine bins for the first tau, 4 together up to 4 tau, ``coarse`` together for the slow sag
     near, far = (int(np.searchsorted(t, t[0] + k * first.tau)) for k in (1.0, 4.0))
     tb, yb, count = _rebin(t, y, [0, near, max(near, far), t.size], [1, 4, coarse])
