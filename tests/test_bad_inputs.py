@@ -368,6 +368,12 @@ def build_header_only(tmp: Path, g: Goods) -> Path:
     return path
 
 
+def build_decimal_commas(tmp: Path, g: Goods) -> Path:
+    path = write_csv(g.template, tmp / "bad_decimal_comma.csv", decimals=3)
+    path.write_text(path.read_text().replace(",", ";").replace(".", ","))  # a spreadsheet export
+    return path
+
+
 # (id, builder, the whole status after "<resolved path>: ", as a regex)
 READ_FAILURES = [
     ("zero-length", build_empty, r"file is empty \(0 bytes\)"),
@@ -459,6 +465,12 @@ READ_FAILURES = [
         r"unknown extension '\.xyz'; supported: \.csv, \.nix, \.nwb, .*",
     ),
     ("header-only-csv", build_header_only, r"the table has a header but no samples"),
+    (
+        "decimal-commas-csv",
+        build_decimal_commas,
+        r"not a readable table \(ValueError: could not convert string to float: '[-0-9,]+'\); "
+        r"numbers need '\.' as the decimal point, not ','",
+    ),
 ]
 
 
@@ -1021,3 +1033,52 @@ def test_cell_without_current_is_analysed_from_the_config_schedule(goods, tmp_pa
     row = outcome.cells().loc[bad.stem]
     assert row["status"] == "ok" and row["rin_mohm"] == pytest.approx(222.2, rel=0.03)
     assert_good_cells_complete(outcome)
+
+
+def test_bom_and_crlf_text_file_is_read_like_any_other(goods, tmp_path):
+    day = tmp_path / "day"
+    day.mkdir()
+    (day / "good_a.nwb").write_bytes(goods.files[0].read_bytes())
+    text = goods.files[1].read_bytes().replace(b"\n", b"\r\n")
+    (day / "good_b.csv").write_bytes(b"\xef\xbb\xbf" + text)  # a spreadsheet's UTF-8 export
+    outcome = run_cli([day, "--no-figures"], tmp_path / "out")
+    assert outcome.code == 0, outcome.stderr
+    assert_good_cells_complete(outcome)
+
+
+def test_the_same_file_given_twice_is_analysed_once(goods, tmp_path):
+    twice = [goods.files[0], goods.files[0].parent / ".." / "goods0" / goods.files[0].name]
+    outcome = run_cli([*twice, goods.files[1], "--no-figures"], tmp_path / "out")
+    assert outcome.code == 0, outcome.stderr
+    assert list(outcome.cells().index) == list(GOOD)
+
+
+def test_qc_rule_naming_a_missing_column_warns_and_fails_the_cells(goods, tmp_path):
+    lab = tmp_path / "lab.toml"
+    lab.write_text(
+        '[[qc.rule]]\nname = "typo"\ncolumn = "rin_mohms"\nscope = "cell"\nmax = 3\n'
+        'action = "fail"\n'
+    )
+    outcome = run_cli([*goods.files, "-c", lab, "--no-figures"], tmp_path / "out")
+    assert outcome.code == 0, outcome.stderr
+    assert re.search(
+        r"QC rule 'typo' names column 'rin_mohms', not in the cell table \(did you mean "
+        r"'rin_mohm'\?\)",
+        outcome.stderr,
+    )
+    cells = outcome.cells()
+    assert (cells["status"] == "ok").all() and not cells["qc_pass"].any()
+    assert cells["qc_reasons"].str.contains("QC rule 'typo' names column 'rin_mohms'").all()
+
+
+@pytest.mark.xfail(
+    strict=True,
+    reason="batch.py: a folder without any recording runs silently (exit 0, empty tables, no "
+    "warning); a mistyped folder looks like an empty day",
+)
+def test_a_folder_without_recordings_is_reported(tmp_path):
+    empty = tmp_path / "day"
+    empty.mkdir()
+    (empty / "notes.docx").write_bytes(b"invented lab notes")
+    outcome = run_cli([empty, "--no-figures"], tmp_path / "out")
+    assert re.search(r"day: no recording files? found", outcome.stderr), outcome.stderr

@@ -72,7 +72,10 @@ def read(path: Path) -> list[Recording]:
     except RecordingError:
         raise
     except (ValueError, OSError, pd.errors.ParserError, UnicodeDecodeError) as exc:
-        raise CorruptFileError(name, f"not a readable table ({describe(exc)})") from exc
+        hint = ""
+        if re.search(r"'[-+]?\d*,\d+'", str(exc)):  # '-70,1': a spreadsheet's decimal comma
+            hint = "; numbers need '.' as the decimal point, not ','"
+        raise CorruptFileError(name, f"not a readable table ({describe(exc)}){hint}") from exc
     if table.empty:
         raise ShapeError(name, "the table has a header but no samples")
     return [_recording(path, table, columns)]
