@@ -418,3 +418,4 @@ def test_one_hyperpolarizing_sweep_and_a_slow_membrane():
     cf_slow = fit_cell(cell(slow), epochs=epochs())
     assert cf_slow.status == "ok"
     assert math.isnan(cf_slow.tau_s) or cf_slow.tau_s > 0.5
+    assert "steady state not reached" in cf_slow.sweeps[0].reason

@@ -796,6 +796,11 @@ def _measure(
         reasons.append(why)
     fit["charging"] = charging
     fit["tau_fast_s"] = tau_fast
+    left = (
+        math.exp(-(float(np.mean(w.ss)) / rate - epoch.onset) / charging.tau) if charging.ok else 0
+    )
+    if left > 0.01:  # the steady-state window is still on the charging curve
+        reasons.append(f"steady state not reached: {100 * left:.0f}% of the charging left")
     if s.two_exp and charging.ok and charging.model == "exp":
         end = int(np.searchsorted(t, charging.t1, side="right"))
         fit["charging2"] = fit_two_exponentials(t[:end], y[:end], charging, tau_fast)
