@@ -36,6 +36,10 @@ class OutputFolderError(PatchbatchError):
     """The output folder cannot be used as asked (exit status 2)."""
 
 
+class InputError(PatchbatchError):
+    """The inputs name nothing to analyse (exit status 2)."""
+
+
 @dataclass
 class BatchResult:
     """What a run produced: the tables as DataFrames and the run's record."""
@@ -57,6 +61,11 @@ def discover_inputs(inputs: Sequence[str | Path], exclude: Path | None = None) -
 
     The metadata sheet (``metadata.csv``) and anything inside ``exclude`` (the output folder) are
     left out. A path that does not exist is returned as is, so that it becomes an error row.
+
+    Raises
+    ------
+    InputError
+        Nothing at all to analyse (e.g. a folder that holds no recording).
     """
     from pipeline.readers import supported_extensions
 
@@ -70,6 +79,14 @@ def discover_inputs(inputs: Sequence[str | Path], exclude: Path | None = None) -
         else:
             found.append(item)
     unique = list(dict.fromkeys(p.resolve() for p in found))
+    if not unique:
+        raise InputError(
+            f"{', '.join(map(str, inputs)) or 'no input given'}: no recording files found "
+            f"(looked for {', '.join(sorted(exts))})"
+        )
+    for item in map(Path, inputs):
+        if item.is_dir() and not any(p.is_relative_to(item.resolve()) for p in unique):
+            log.warning("%s: no recording files found in this folder", item)
     return unique
 
 
@@ -137,10 +154,10 @@ def run_batch(
     # Usage errors (sheet, output folder) stop the run before anything is written.
     sheet_path = Path(sheet) if sheet is not None else find_sheet(inputs)
     the_sheet = read_sheet(sheet_path) if sheet_path is not None else None
+    files = discover_inputs(inputs, exclude=outdir)
     _prepare_outdir(outdir, inputs_given, config, force)
     handler = _log_to_file(outdir, quiet)
     try:
-        files = discover_inputs(inputs, exclude=outdir)
         log.info("patchbatch %s: %d input file(s) -> %s", __version__, len(files), outdir)
         try:
             results, hashes, stats = _analyse_all(

@@ -1071,11 +1071,6 @@ def test_qc_rule_naming_a_missing_column_warns_and_fails_the_cells(goods, tmp_pa
     assert cells["qc_reasons"].str.contains("QC rule 'typo' names column 'rin_mohms'").all()
 
 
-@pytest.mark.xfail(
-    strict=True,
-    reason="batch.py: a folder without any recording runs silently (exit 0, empty tables, no "
-    "warning); a mistyped folder looks like an empty day",
-)
 def test_a_folder_without_recordings_is_reported(tmp_path):
     empty = tmp_path / "day"
     empty.mkdir()
