@@ -237,6 +237,7 @@ def test_ih_like_sag_ratio_and_frozen_tau():
     assert cf.tau_s == pytest.approx(TAU, rel=1e-3)
     # Rin is the steady-state slope; Cm uses the input resistance before the gate moves
     assert cf.rin_ohm == pytest.approx(RIN, rel=1e-4)
+    assert cf.rin_frozen_ohm == pytest.approx(RIN * 1.5, rel=1e-2)  # 1 + kappa
     assert cf.cm_f == pytest.approx(TAU / (RIN * 1.5), rel=1e-2)
 
 

@@ -15,10 +15,11 @@
   minus the bridge error. ``iv_curvature`` = chord at the largest step / Rin - 1.
 - Tau: inverse-variance weighted mean (Birge-scaled interval) of the per-sweep tau0 fits within
   ``tau_range_v``; where the cell sags those are frozen-gate time constants of the exp+sag
-  model (within ``sag_tau_range_v``), and kappa (steady / instantaneous conductance - 1) is read
-  at rest from a line through the sweeps' values.
-- Cm = tau / (Rin (1 + kappa)): tau over the input resistance before the slow gate moves (plain
-  tau / Rin without sag), interval from the relative half-widths in quadrature.
+  model (within ``sag_tau_range_v``).
+- Cm = tau / R_frozen, R_frozen the input resistance before the slow gate moves: Rin plus the
+  part of each deflection the gate took back (kappa times the gated mode's deflection), read at
+  rest from a line through the sweeps' values; R_frozen = Rin without sag. Interval from the
+  relative half-widths in quadrature.
 
 References
 ----------
@@ -259,9 +260,10 @@ def summarize_cell(
     chord = ss[-1] / i[-1] - re
     tau, tau_ci, tau_se, tau_used = _tau(hyper, peak - re * i, s)
     wide_tau = [f for f, p in zip(hyper, peak - re * i, strict=True) if abs(p) <= s.tau_range_v]
-    kappa, kappa_half = _kappa(wide_tau, s.confidence)
+    excess, excess_half = _frozen_excess(wide_tau, re, s.confidence)
     rin_ci = _interval(rin, rin_se, apparent.dof, s.confidence)
-    cm, cm_ci = _cm(tau, tau_ci, rin * (1.0 + kappa), rin_ci, kappa_half / (1.0 + kappa))
+    rin_frozen = rin * (1.0 + excess)
+    cm, cm_ci = _cm(tau, tau_ci, rin_frozen, rin_ci, excess_half / (1.0 + excess))
     sag, at_target = _sag(hyper, i, ss, peak, re, s)
     used = sorted({hyper[k].sweep for k in pick} | {hyper[-1].sweep} | tau_used)
     peel = _peel([hyper[k] for k in pick], s) if s.two_exp else {}
@@ -271,7 +273,7 @@ def summarize_cell(
         excluded=excluded,
         rin_ohm=rin,
         rin_ci_ohm=rin_ci,
-        sag_kappa=kappa,
+        rin_frozen_ohm=rin_frozen,
         rin_peak_ohm=rin_peak,
         rin_apparent_ohm=apparent.value,
         rin_method=method,
@@ -328,18 +330,21 @@ def _tau_ok(f: SweepFit) -> bool:
     return f.charging.ok and math.isfinite(f.charging.tau_se) and f.charging.tau_se > 0
 
 
-def _kappa(fits: list[SweepFit], level: float) -> tuple[float, float]:
-    """Gate strength kappa at rest (0 without exp+sag fits) and its interval half-width.
+def _frozen_excess(fits: list[SweepFit], re: float, level: float) -> tuple[float, float]:
+    """How much the input resistance before the slow gate moves exceeds Rin, as a fraction at
+    rest (0 without exp+sag fits), and its interval half-width.
 
-    Kappa grows with the step (the gate opens further), so it is the intercept at zero current
-    of a line through the sweeps' (step, kappa), weighted by the fits' errors; their weighted
-    mean when fewer than 3 sweeps.
+    A sweep's frozen-gate deflection is its steady deflection plus kappa times the steady
+    deflection of the gated mode (``amp``), so the fraction is ``kappa * amp / dV_ss`` (bridge
+    jump removed). It grows with the step (the gate opens further): read at zero current from
+    an error-weighted line through the sweeps' values (their weighted mean below 3 sweeps).
     """
-    pts = [
-        (f.step_a, f.charging.kappa, f.charging.kappa_se)
-        for f in fits
-        if f.charging.model == "exp+sag"
-    ]
+    pts = []
+    for f in fits:
+        c = f.charging
+        dv = f.ss_dv - re * f.step_a
+        if c.model == "exp+sag" and dv != 0:
+            pts.append((f.step_a, c.kappa * c.amp / dv, c.kappa_se * abs(c.amp / dv)))
     pts = np.array([p for p in pts if np.isfinite(p).all() and p[2] > 0]).reshape(-1, 3)
     if pts.shape[0] == 0:
         return 0.0, 0.0
@@ -357,9 +362,9 @@ def _kappa(fits: list[SweepFit], level: float) -> tuple[float, float]:
     return float(coef[0]), (hi - lo) / 2
 
 
-def _cm(tau, tau_ci, r_inst, rin_ci, kappa_rel):
-    """Cm = tau / R_inst (F), R_inst = Rin (1 + kappa) the input resistance before any slow gate
-    moves, and its interval from the relative half-widths in quadrature."""
+def _cm(tau, tau_ci, r_inst, rin_ci, excess_rel):
+    """Cm = tau / R_inst (F), R_inst the input resistance before any slow gate moves, and its
+    interval from the relative half-widths of tau, Rin and the frozen excess in quadrature."""
     if not (math.isfinite(tau) and math.isfinite(r_inst) and r_inst > 0):
         return NAN, (NAN, NAN)
     cm = tau / r_inst
@@ -367,7 +372,7 @@ def _cm(tau, tau_ci, r_inst, rin_ci, kappa_rel):
     rel = math.sqrt(
         ((tau_ci[1] - tau_ci[0]) / 2 / tau) ** 2
         + ((rin_ci[1] - rin_ci[0]) / 2 / rin) ** 2
-        + kappa_rel**2
+        + excess_rel**2
     )
     return cm, (cm * (1 - rel), cm * (1 + rel)) if math.isfinite(rel) else (NAN, NAN)
 

@@ -253,7 +253,9 @@ class CellFit:
     electrotonic_length: float = NAN  # L = pi / sqrt(tau0/tau1 - 1) (Rall 1969)
     peel_status: str = ""  # 'ok' or why tau1 / L are not given
     notes: str = ""  # why some cell values are NaN or uncorrected, '; '-separated
-    sag_kappa: float = 0.0  # mean gate strength of the exp+sag fits (0 without sag); Cm uses it
+    rin_frozen_ohm: float = (
+        NAN  # input resistance before the slow (Ih) gate moves; = Rin without sag
+    )
 
     @property
     def n_sweeps(self) -> int:
@@ -285,7 +287,7 @@ class CellFit:
             "sag_ratio": self.sag_ratio,
             "sag_step_pa": _pa(self.sag_step_a),
             "sag_ratio_at_target": self.sag_ratio_at_target,
-            "sag_kappa": self.sag_kappa,
+            "rin_frozen_mohm": _mohm(self.rin_frozen_ohm),
             "rebound_mv": _mv(self.rebound_v),
             "status": self.status,
             "notes": self.notes,
