@@ -1,0 +1,40 @@
+"""Figure output path: the PNG writer is lossless, and the reused renderer leaks nothing."""
+
+from __future__ import annotations
+
+import io
+
+import numpy as np
+from PIL import Image
+from test_report_figures import fake_cell
+
+from pipeline.report.figures import cell_figure, png_bytes
+
+
+def test_png_bytes_round_trip_is_lossless():
+    rng = np.random.default_rng(7)
+    rgba = rng.integers(0, 256, size=(37, 53, 4), dtype=np.uint8)
+    data = png_bytes(rgba[..., :3], dpi=80.0, level=3)  # a strided view, as from the canvas
+    image = Image.open(io.BytesIO(data))
+    assert image.mode == "RGB" and image.size == (53, 37)
+    assert np.array_equal(np.asarray(image), rgba[..., :3])
+    # pHYs stores dots per metre (rounded): 80 dpi reads back within 0.01 dpi
+    assert abs(image.info["dpi"][0] - 80.0) < 0.01
+
+
+def _pixels(path) -> np.ndarray:
+    return np.asarray(Image.open(path))
+
+
+def test_reused_renderer_draws_each_figure_from_scratch(tmp_path):
+    """One renderer serves every figure of a size: nothing of one cell may show in the next."""
+    rec, epochs, fit, verdict = fake_cell("cellA")
+    cell_figure(rec, epochs, fit, verdict, tmp_path / "a1.png", dpi=40)
+    other = fake_cell("cellB", n_sweeps=5, seed=2)
+    cell_figure(*other, tmp_path / "b.png", dpi=40)
+    cell_figure(rec, epochs, fit, verdict, tmp_path / "small.png", dpi=30)  # another size
+    cell_figure(rec, epochs, fit, verdict, tmp_path / "a2.png", dpi=40)
+    first, again = _pixels(tmp_path / "a1.png"), _pixels(tmp_path / "a2.png")
+    assert np.array_equal(first, again)
+    assert not np.array_equal(first, _pixels(tmp_path / "b.png"))
+    assert _pixels(tmp_path / "small.png").shape[:2] == (round(8.6 * 30), 15 * 30)
