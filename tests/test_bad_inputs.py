@@ -40,6 +40,8 @@ from pynwb.icephys import (
 )
 
 from pipeline.cli import main
+from pipeline.errors import CorruptFileError
+from pipeline.readers import open_recordings
 from pipeline.recording import Recording, Sweep
 from pipeline.simulate import CellModel, IhChannel, Nuisance, StepProtocol, simulate_cell
 from pipeline.writers import write_csv, write_nwb
@@ -368,6 +370,16 @@ def build_header_only(tmp: Path, g: Goods) -> Path:
     return path
 
 
+def build_dangling_reference(tmp: Path, g: Goods) -> Path:
+    path = _nwb_of(g, tmp / "bad_dangling.nwb")
+    with h5py.File(path, "r+") as f:  # a table row pointing at an object that is not stored
+        rows = f["general/intracellular_ephys/intracellular_recordings/stimuli/stimulus"]
+        row = rows[0]
+        row["timeseries"] = f.create_group(None).ref  # unlinked: gone when the file closes
+        rows[0] = row
+    return path
+
+
 def build_decimal_commas(tmp: Path, g: Goods) -> Path:
     path = write_csv(g.template, tmp / "bad_decimal_comma.csv", decimals=3)
     path.write_text(path.read_text().replace(",", ";").replace(".", ","))  # a spreadsheet export
@@ -465,6 +477,11 @@ READ_FAILURES = [
         r"unknown extension '\.xyz'; supported: \.csv, \.nix, \.nwb, .*",
     ),
     ("header-only-csv", build_header_only, r"the table has a header but no samples"),
+    (
+        "dangling-reference-nwb",
+        build_dangling_reference,
+        r"cannot be read as NWB \(KeyError: 'Unable to open object by token.*'\)",
+    ),
     (
         "decimal-commas-csv",
         build_decimal_commas,
@@ -1077,3 +1094,16 @@ def test_a_folder_without_recordings_is_reported(tmp_path):
     (empty / "notes.docx").write_bytes(b"invented lab notes")
     outcome = run_cli([empty, "--no-figures"], tmp_path / "out")
     assert re.search(r"day: no recording files? found", outcome.stderr), outcome.stderr
+
+
+def test_nwb_the_direct_reader_finds_corrupt_is_not_handed_to_pynwb(goods, tmp_path, monkeypatch):
+    # Found by mutating bytes of a written file: for some damaged files the pynwb fallback
+    # crashed the process (segfault in h5py under hdmf), which takes a pool's other cells with it.
+    from pipeline.readers import nwb
+
+    calls = []
+    monkeypatch.setattr(nwb, "_read_pynwb", lambda path: calls.append(path) or [])
+    bad = build_dangling_reference(tmp_path, goods)
+    with pytest.raises(CorruptFileError, match=r"bad_dangling\.nwb: cannot be read as NWB"):
+        open_recordings(bad)
+    assert calls == []

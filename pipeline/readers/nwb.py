@@ -89,10 +89,12 @@ def read(path: Path, *, engine: str = "auto") -> list[Recording]:
     if engine != "pynwb":
         try:
             return _guarded(path, _read_h5)
-        except (NotUnderstood, CorruptFileError):
-            # pynwb reads what the direct path does not know, and words the corrupt-file error
+        except NotUnderstood:
+            # pynwb reads what the direct path does not know (extension types, other layouts)
             if engine == "h5py":
                 raise
+        # A file the direct path found corrupt is not handed to pynwb: on some damaged files
+        # (a dangling object reference) pynwb/h5py crash the whole process (segfault).
     return _guarded(path, _read_pynwb)
 
 
