@@ -90,7 +90,7 @@ class PassiveSettings:
     # |peak membrane deflection| bound of the hyperpolarizing sweeps whose fits give tau
     tau_range_v: float = 0.025
     # the same bound for exp+sag fits (the gate's linearisation holds near rest only)
-    sag_tau_range_v: float = 0.012
+    sag_tau_range_v: float = 0.008
     # smallest hyperpolarizing steps used when fewer lie in the linear range
     n_small_steps: int = 3
     # |membrane deflection| bound of the sweeps where V-I curvature is tested (and fitted)
