@@ -760,14 +760,7 @@ ANALYSED = [
     pytest.param(build_pa_labelled_amperes, check_pa_labelled_amperes, id="picoamps-as-amperes"),
     pytest.param(build_no_current, check_no_current, id="no-current-no-schedule"),
     pytest.param(
-        build_one_hyperpolarizing,
-        check_one_hyperpolarizing,
-        id="one-hyperpolarizing-step",
-        marks=pytest.mark.xfail(
-            strict=True,
-            reason="fitters/cell.py _polynomial_at_rest: dof = 0 with a single hyperpolarizing "
-            "sweep -> ZeroDivisionError; the cell is 'analysis failed' and the run exits 1",
-        ),
+        build_one_hyperpolarizing, check_one_hyperpolarizing, id="one-hyperpolarizing-step"
     ),
     pytest.param(
         build_zero_step,

@@ -9,13 +9,14 @@ every example is reproducible from its printed seed.
 
 from __future__ import annotations
 
+import gc
 import math
 import tempfile
 from pathlib import Path
 
 import numpy as np
 import pytest
-from hypothesis import HealthCheck, Phase, given, settings
+from hypothesis import HealthCheck, given, settings
 from hypothesis import strategies as st
 
 from pipeline.analysis import analyse_recording
@@ -347,21 +348,7 @@ def _check_analysis(recording: Recording) -> None:
             assert row["excluded_because"].strip(), row
 
 
-KNOWN_FITTER_BUGS = pytest.mark.xfail(
-    strict=True,
-    reason="fitters crash on some voltages (cell -> 'analysis failed'): "
-    "cell.py _polynomial_at_rest divides by dof = 0 when one hyperpolarizing sweep is in range "
-    "(ZeroDivisionError); sweep.py _charging_fit hands fit_sag_model empty arrays when tau is "
-    "longer than about the step (IndexError)",
-)
-# While known bugs make this fail, stop at the first failing example (no shrinking: fast).
-FIRST_FAILURE = settings(
-    FAST, max_examples=40, phases=[Phase.explicit, Phase.generate], report_multiple_bugs=False
-)
-
-
-@KNOWN_FITTER_BUGS
-@FIRST_FAILURE
+@settings(FAST, max_examples=40)
 @given(recording=cells())
 def test_fitters_on_random_voltages_give_values_or_nan_with_a_reason(recording):
     _check_analysis(recording)
@@ -398,23 +385,12 @@ def _clean_cell(tau_s: float, steps_a=STEPS_A) -> Recording:
     return Recording("slow", "slow.nwb", "e0", tuple(sweeps))
 
 
-@pytest.mark.xfail(
-    strict=True,
-    reason="fitters/sweep.py _charging_fit: when tau is longer than about the step, fit_from "
-    "(j_late) hands fit_sag_model empty arrays -> IndexError, the cell is lost as "
-    "'analysis failed' instead of tau NaN with a reason",
-)
 def test_noise_free_cell_with_tau_longer_than_the_step_is_not_lost():
     # 100 MOhm, tau 0.3 s, 0.25 s steps: the charging curve never levels off
     result = analyse_recording(_clean_cell(0.3), Config())
     assert not result["cell"]["status"].startswith("analysis failed"), result["cell"]["status"]
 
 
-@pytest.mark.xfail(
-    strict=True,
-    reason="fitters/cell.py _polynomial_at_rest: dof = 0 with a single hyperpolarizing sweep "
-    "in iv_range_v -> ZeroDivisionError, the cell is lost as 'analysis failed'",
-)
 @pytest.mark.parametrize("steps_pa", [(-60,), (-60, 40, 80)], ids=["one-step", "one-hyper"])
 def test_cell_with_a_single_hyperpolarizing_step_is_not_lost(steps_pa):
     # one hyperpolarizing step is a common protocol (Rin check before a depolarizing family)
@@ -422,3 +398,95 @@ def test_cell_with_a_single_hyperpolarizing_step_is_not_lost(steps_pa):
     cell = result["cell"]
     assert cell["status"] == "ok", cell["status"]
     assert cell["rin_mohm"] == pytest.approx(100.0, rel=0.02)  # 100 MOhm simulated
+
+
+# ---- NWB and NIX readers: files damaged object by object ----------------------------------------
+
+
+def _small_recording() -> Recording:
+    i = np.zeros(200)
+    i[50:150] = -20e-12
+    sweeps = [
+        Sweep(-0.07 + 1e-3 * np.sin(np.arange(200) / 7.0), i, 10_000.0, k, start_time=float(k))
+        for k in range(2)
+    ]
+    return Recording("fuzz", "", "e0", tuple(sweeps))
+
+
+@pytest.fixture(scope="module")
+def small_files(scratch):
+    """One small NWB and one small NIX file (2 sweeps x 200 samples), as bytes."""
+    from pipeline.writers import write_nix, write_nwb
+
+    rec = _small_recording()
+    return {
+        ".nwb": write_nwb([rec], scratch / "small.nwb", identifier="fuzz").read_bytes(),
+        ".nix": write_nix([rec], scratch / "small.nix").read_bytes(),
+    }
+
+
+def _objects(f) -> list[str]:
+    names: list[str] = []
+    f.visit(names.append)
+    return sorted(names)
+
+
+ATTRIBUTE_VALUES = st.sampled_from(
+    ["", "volts", "amperes", "mV", "furlongs", -1, 0, 2**40, np.nan, np.inf, -1e300, b"\xff\xfe"]
+)
+DATA_VALUES = st.sampled_from(
+    ["empty", "2d", "text", "ints", "nan", "inf", "scalar", "huge", "one"]
+)
+
+
+def _replacement(kind: str, n: int):
+    return {
+        "empty": np.zeros(0),
+        "2d": np.zeros((n, 3)),
+        "text": np.array([b"volts"] * max(n, 1)),
+        "ints": np.arange(n, dtype=np.int64),
+        "nan": np.full(n, np.nan),
+        "inf": np.full(n, -np.inf),
+        "scalar": np.float64(3.0),
+        "huge": np.full(n, 1e30),
+        "one": np.zeros(1),
+    }[kind]
+
+
+@settings(FAST, max_examples=50)
+@given(suffix=st.sampled_from([".nwb", ".nix"]), data=st.data())
+def test_readers_on_files_damaged_object_by_object(scratch, small_files, suffix, data):
+    """Delete objects, overwrite attributes and datasets of a written file (through h5py, so
+    the file stays valid HDF5): a RecordingError naming the file, or checked Recordings."""
+    import h5py
+
+    path = scratch / f"damaged{suffix}"
+    path.write_bytes(small_files[suffix])
+    with h5py.File(path, "r+") as f:
+        for _ in range(data.draw(st.integers(1, 3), label="n_changes")):
+            names = _objects(f)
+            if not names:
+                break
+            name = data.draw(st.sampled_from(names), label="object")
+            obj = f[name]
+            action = data.draw(st.sampled_from(["delete", "attribute", "data"]), label="action")
+            if action == "delete":
+                del f[name]
+            elif action == "attribute" and len(obj.attrs):
+                key = data.draw(st.sampled_from(sorted(obj.attrs)), label="attribute")
+                obj.attrs[key] = data.draw(ATTRIBUTE_VALUES, label="value")
+            elif action == "data" and isinstance(obj, h5py.Dataset):
+                n = obj.shape[0] if obj.shape else 1
+                del f[name]
+                f[name] = _replacement(data.draw(DATA_VALUES, label="replacement"), n)
+    got = _read_or_error(path)
+    if isinstance(got, RecordingError):
+        assert str(got).startswith(f"{path}: ") and "\n" not in str(got)
+        got = str(got)  # drop the exception: its traceback may hold the file open
+    else:
+        _check_recordings(got, path)
+    gc.collect()
+    open_files = [
+        h5py.h5f.FileID.get_name(i) for i in h5py.h5f.get_obj_ids(types=h5py.h5f.OBJ_FILE)
+    ]
+    assert open_files == [], got  # a reader left the file open
