@@ -121,24 +121,65 @@ STRAIGHTFORWARD = textwrap.dedent(
 )
 
 
-def timed(cmd: list[str], **kwargs) -> tuple[float, int, float]:
-    """Wall time of a whole process, the peak RSS (kB) of it or any of its workers, and the CPU
-    time (user + system, s) of it and its workers: on a shared machine the wall time depends on
-    what else runs, the CPU time much less."""
+def timed(cmd: list[str], **kwargs) -> tuple[float, int, float, int]:
+    """Run a whole process; its wall time, peak RSS (kB), CPU time and largest worker's peak.
+
+    Returns the wall time (s); the peak RSS of the main process (kB); the CPU time (user +
+    system, s) of it and its workers (on a shared machine the wall time depends on what else
+    runs, the CPU time much less); the largest peak RSS among its worker processes (kB; the
+    main process itself when it has none, as with ``-j 1``), from each process's ``VmHWM``
+    in /proc, sampled every 50 ms.
+    """
     probe = textwrap.dedent(
         """
-        import resource, subprocess, sys, time
+        import os, resource, subprocess, sys, time
+
+        def children(root):
+            found, todo = [], [root]
+            while todo:
+                parent = todo.pop()
+                for entry in os.listdir("/proc"):
+                    if entry.isdigit():
+                        try:
+                            with open(f"/proc/{entry}/stat") as fh:
+                                ppid = int(fh.read().rsplit(")", 1)[1].split()[1])
+                        except (OSError, IndexError, ValueError):
+                            continue
+                        if ppid == parent:
+                            found.append(int(entry))
+                            todo.append(int(entry))
+            return found
+
+        def hwm(pid):
+            try:
+                with open(f"/proc/{pid}/status") as fh:
+                    for line in fh:
+                        if line.startswith("VmHWM:"):
+                            return int(line.split()[1])
+            except OSError:
+                return 0
+            return 0
+
         t = time.perf_counter()
-        subprocess.run(sys.argv[1:], check=True, stdout=subprocess.DEVNULL)
+        proc = subprocess.Popen(sys.argv[1:], stdout=subprocess.DEVNULL)
+        main, workers = 0, {}
+        while proc.poll() is None:
+            main = max(main, hwm(proc.pid))
+            for pid in children(proc.pid):
+                workers[pid] = max(workers.get(pid, 0), hwm(pid))
+            time.sleep(0.05)
         dt = time.perf_counter() - t
+        if proc.returncode:
+            sys.exit(proc.returncode)
         use = resource.getrusage(resource.RUSAGE_CHILDREN)
-        print(dt, use.ru_maxrss, use.ru_utime + use.ru_stime)
+        main = max(main, use.ru_maxrss if not workers else 0)
+        print(dt, main, use.ru_utime + use.ru_stime, max(workers.values(), default=main))
         """
     )
     out = subprocess.run(
         [sys.executable, "-c", probe, *cmd], check=True, capture_output=True, text=True, **kwargs
     ).stdout.split()
-    return float(out[0]), int(out[1]), float(out[2])
+    return float(out[0]), int(out[1]), float(out[2]), int(out[3])
 
 
 def fresh(out: Path) -> Path:
@@ -174,7 +215,7 @@ def main() -> int:
     n = args.cells
     env = {**os.environ, "PYTHONPATH": str(ROOT)}
     print(f"load average before the runs: {' '.join(f'{x:.2f}' for x in os.getloadavg())}")
-    results: dict[str, tuple[float, int, float]] = {}
+    results: dict[str, tuple[float, int, float, int]] = {}
     results["h5py floor"] = timed([sys.executable, "-c", H5PY_FLOOR, str(day)], env=env)
     results["straightforward script"] = timed(
         [sys.executable, "-c", STRAIGHTFORWARD, str(day)], env=env
@@ -193,11 +234,13 @@ def main() -> int:
         f"{PROTOCOL.rate_hz / 1e3:g} kHz; whole processes, imports included"
     )
     print(
-        f"{'run':28s} {'seconds':>8s} {'s/cell':>8s} {'cells/s':>8s} {'peak MB':>8s} {'CPU s':>8s}"
+        f"{'run':28s} {'seconds':>8s} {'s/cell':>8s} {'cells/s':>8s} {'CPU s':>8s} "
+        f"{'main MB':>8s} {'worker MB':>9s}"
     )
-    for label, (secs, rss, cpu) in results.items():
+    for label, (secs, rss, cpu, worker) in results.items():
         print(
-            f"{label:28s} {secs:8.2f} {secs / n:8.3f} {n / secs:8.1f} {rss / 1024:8.0f} {cpu:8.2f}"
+            f"{label:28s} {secs:8.2f} {secs / n:8.3f} {n / secs:8.1f} {cpu:8.2f} "
+            f"{rss / 1024:8.0f} {worker / 1024:9.0f}"
         )
     print(f"load average after the runs: {' '.join(f'{x:.2f}' for x in os.getloadavg())}")
 
@@ -210,7 +253,8 @@ def main() -> int:
     tables = results["tables only -j 1"][0]
     full1, full2 = results["full -j 1"][0], results["full -j 2"][0]
     rerun = results["re-run unchanged -j 2"][0]
-    rss40 = max(results["full -j 1"][1], results["full -j 2"][1]) / 1024
+    # with -j 1 the main process is the worker
+    rss40 = max(results["full -j 1"][3], results["full -j 2"][3]) / 1024
     print("\ntargets:")
     print(
         f"  tables-only -j 1 >= 5x faster than the script: {script / tables:5.1f}x  "
@@ -245,9 +289,11 @@ def main() -> int:
         mem = {}
         for label, folder in (("40", small), ("400", big)):
             out = fresh(base / f"out-mem{label}")
-            mem[label] = (
-                timed(patchbatch(folder, out, "-j", "2", "--no-figures"), env=env)[1] / 1024
+            _, main_kb, _, worker_kb = timed(
+                patchbatch(folder, out, "-j", "2", "--no-figures"), env=env
             )
+            mem[label] = worker_kb / 1024
+            print(f"  ({label} cells, -j 2: main process {main_kb / 1024:.0f} MB)")
         same = abs(mem["400"] - mem["40"]) <= 0.15 * mem["40"]
         print(
             f"  peak memory per worker, 40 vs 400 cells:      {mem['40']:.0f} vs "
