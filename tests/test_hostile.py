@@ -249,3 +249,14 @@ def test_cache_entry_with_the_right_key_but_wrong_shape_is_rejected(cached_run):
     counts, again = _rerun(args, out)
     assert (counts["cached"], counts["analysed"]) == (1, 1)
     assert again == cells
+
+
+def test_symlink_loop_in_the_input_folder_is_not_followed(tmp_path):
+    day = tmp_path / "day"
+    (day / "sub").mkdir(parents=True)
+    write_nwb([_cell("good", 1)], day / "sub" / "good.nwb")
+    (day / "sub" / "loop").symlink_to(day, target_is_directory=True)  # day/sub/loop -> day
+    (day / "dangling.nwb").symlink_to(tmp_path / "nowhere.nwb")
+    code, err = run_cli([day, "-o", tmp_path / "out", "-j", "1", "--no-figures"])
+    assert code == 0, err
+    assert pd.read_csv(tmp_path / "out" / "cells.csv")["cell_id"].tolist() == ["good"]
