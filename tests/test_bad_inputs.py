@@ -1135,3 +1135,17 @@ def test_a_worker_that_dies_loses_only_its_own_file(goods, tmp_path, monkeypatch
     assert re.fullmatch(r".*a0-crash\.nwb: worker failed: .*", cells.loc["a0-crash", "status"])
     survivors = cells.drop(index="a0-crash")
     assert (survivors["status"] == "ok").all(), survivors["status"].to_dict()
+
+
+@pytest.mark.parametrize(
+    ("build", "status"),
+    [pytest.param(b, s, id=i) for i, b, s in READ_FAILURES],
+)
+def test_inspect_names_the_file_and_the_problem(goods, tmp_path, build, status):
+    bad = build(tmp_path, goods)
+    err = io.StringIO()
+    with contextlib.redirect_stderr(err), contextlib.redirect_stdout(io.StringIO()) as out:
+        code = main(["inspect", str(bad)])
+    assert code == 1, out.getvalue()
+    pattern = rf"patchbatch: {re.escape(str(bad))}: {status}\n"
+    assert re.fullmatch(pattern, err.getvalue()), err.getvalue()
