@@ -55,7 +55,9 @@ PROTOCOL = StepProtocol(
     amplitudes_a=tuple(a * PA for a in (-80, -60, -40, -20, 40, 80)),
 )
 RIG = Nuisance(noise_rms_v=0.1e-3, current_noise_a=1e-12)
-PASSIVE = CellModel(soma_area_m2=9000e-12, rm_ohm_m2=2.0)  # Rin 222 MOhm, tau 20 ms
+# One isopotential compartment: Rin = Rm / area = 2 / 9e-9 = 222 MOhm, tau = Rm Cm = 20 ms
+# (the RC circuit's analytic values; the simulator solves it exactly).
+PASSIVE = CellModel(soma_area_m2=9000e-12, rm_ohm_m2=2.0)
 WITH_IH = CellModel(soma_area_m2=12000e-12, rm_ohm_m2=2.0, ih=IhChannel(g_s_per_m2=0.5))
 GOOD = ("good_a", "good_b")
 
