@@ -96,14 +96,14 @@ def _analyse(
     recording: Recording, config: Config, figure_dir: str | None, timings: dict[str, float]
 ) -> dict[str, Any]:
     from pipeline import qc
-    from pipeline.fitters.passive import fit_sweep, summarize_cell
+    from pipeline.fitters.passive import fit_sweeps, summarize_cell
     from pipeline.fitters.spikes import fit_spiking
     from pipeline.steps import find_steps
 
     t0 = time.perf_counter()
     epochs = find_steps(recording, config.steps)
     by_number = {s.number: s for s in recording.sweeps}
-    fits = [fit_sweep(by_number[e.sweep], e, config.passive) for e in epochs if e.usable]
+    fits = fit_sweeps([(by_number[e.sweep], e) for e in epochs if e.usable], config.passive)
     spikes_all = fit_spiking(recording, epochs, config.spikes)
     sweep_rows = _sweep_rows(recording, epochs, fits, spikes_all)
     _add(timings, "fit", time.perf_counter() - t0)

@@ -85,20 +85,23 @@ def _run(args: argparse.Namespace) -> int:
 
     if args.workers is not None and args.workers < 1:
         raise ConfigError(f"-j/--workers must be at least 1, got {args.workers}")
-    _console_logging(args.quiet)
     config = load_config(args.config)
-    result = run_batch(
-        args.inputs,
-        config,
-        args.out,
-        sheet=args.sheet,
-        workers=args.workers,
-        scheduler=args.scheduler,
-        figures=False if args.no_figures else None,
-        force=args.force,
-        progress=None if not args.quiet else False,
-        quiet=args.quiet,
-    )
+    console = _console_logging(args.quiet)
+    try:
+        result = run_batch(
+            args.inputs,
+            config,
+            args.out,
+            sheet=args.sheet,
+            workers=args.workers,
+            scheduler=args.scheduler,
+            figures=False if args.no_figures else None,
+            force=args.force,
+            progress=None if not args.quiet else False,
+            quiet=args.quiet,
+        )
+    finally:
+        logging.getLogger("patchbatch").removeHandler(console)
     counts = result.info["counts"]
     if not args.quiet:
         print(
@@ -133,15 +136,15 @@ def _config(args: argparse.Namespace) -> int:
     return 0
 
 
-def _console_logging(quiet: bool) -> None:
-    logger = logging.getLogger("patchbatch")
-    if any(getattr(h, "_patchbatch_console", False) for h in logger.handlers):
-        return
+def _console_logging(quiet: bool) -> logging.Handler:
+    """Log to the current stderr (progress lines when it is not a terminal)."""
     handler = logging.StreamHandler(sys.stderr)
     handler.setLevel(logging.WARNING if quiet or sys.stderr.isatty() else logging.INFO)
     handler.setFormatter(logging.Formatter("%(levelname)s %(message)s"))
-    handler._patchbatch_console = True  # type: ignore[attr-defined]
+    logger = logging.getLogger("patchbatch")
+    logger.setLevel(logging.INFO)
     logger.addHandler(handler)
+    return handler
 
 
 _COMMANDS = {"run": _run, "inspect": _inspect, "sample": _sample, "config": _config}
