@@ -300,10 +300,34 @@ def _execute(todo, config, figure_dir, workers, scheduler) -> Iterator[tuple[int
         for job in todo:
             yield job.index, job.run(config, figure_dir)
         return
+    yield from _execute_pool(todo, config, figure_dir, n)
+
+
+def _execute_pool(todo, config, figure_dir, n) -> Iterator[tuple[int, dict]]:
+    """The process pool. A worker that dies (a crash in a C library, an OOM kill) breaks the
+    whole pool; the files that were then unfinished are re-run one per fresh process, so only
+    the file that kills its worker is lost."""
+    from concurrent.futures.process import BrokenProcessPool
+
+    unfinished = []
     with ProcessPoolExecutor(max_workers=n) as pool:
         futures = {pool.submit(job.run, config, figure_dir): job for job in todo}
         for future in as_completed(futures):
-            yield futures[future].index, _result_or_error(future, futures[future])
+            job = futures[future]
+            try:
+                yield job.index, future.result()
+            except BrokenProcessPool:
+                unfinished.append(job)
+            except Exception as exc:
+                yield job.index, _worker_failed(job, exc)
+    if unfinished:
+        log.warning("a worker died; re-running %d unfinished file(s) one by one", len(unfinished))
+    for job in sorted(unfinished, key=lambda j: j.index):
+        with ProcessPoolExecutor(max_workers=1) as solo:
+            try:
+                yield job.index, solo.submit(job.run, config, figure_dir).result()
+            except Exception as exc:
+                yield job.index, _worker_failed(job, exc)
 
 
 def _execute_dask(todo, config, figure_dir, scheduler, workers) -> Iterator[tuple[int, dict]]:
@@ -327,24 +351,26 @@ def _execute_dask(todo, config, figure_dir, scheduler, workers) -> Iterator[tupl
         with Client(address) as client:
             futures = {client.submit(job.run, config, figure_dir, pure=False): job for job in todo}
             for future in dask_completed(list(futures)):
-                yield futures[future].index, _result_or_error(future, futures[future])
+                job = futures[future]
+                try:
+                    yield job.index, future.result()
+                except Exception as exc:  # e.g. KilledWorker after Dask's own retries
+                    yield job.index, _worker_failed(job, exc)
     finally:
         if cluster is not None:
             cluster.close()
 
 
-def _result_or_error(future, job: Job) -> dict[str, Any]:
-    """A worker that died (out of memory, killed) still gives a row for its file."""
-    try:
-        return future.result()
-    except Exception as exc:
-        path = job.path
-        return {
-            "file": path,
-            "cells": [],
-            "error": {"stage": "worker", "message": f"{path}: worker failed: {exc}"},
-            "seconds": {},
-        }
+def _worker_failed(job: Job, exc: BaseException) -> dict[str, Any]:
+    """The row of a file whose worker died or raised outside the analysis' own guard."""
+    message = f"{job.path}: worker failed: {type(exc).__name__}: {exc}"
+    return {
+        "file": job.path,
+        "cell_id": job.id_prefix + Path(job.path).stem,
+        "cells": [],
+        "error": {"stage": "worker", "message": message},
+        "seconds": {},
+    }
 
 
 def _progress(total: int, progress: bool | None):

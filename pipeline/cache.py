@@ -41,7 +41,26 @@ def load_entry(outdir: str | Path, key: str) -> dict[str, Any] | None:
             data = json.load(fh)
     except (OSError, ValueError):
         return None
-    return data if isinstance(data, dict) and data.get("key") == key else None
+    if not isinstance(data, dict) or data.get("key") != key or not _well_formed(data):
+        return None  # tampered, truncated or from another layout: analyse again
+    return data
+
+
+def _well_formed(entry: dict[str, Any]) -> bool:
+    """The shape the batch relies on: a file, no error, cells with their rows."""
+    cells = entry.get("cells")
+    if not isinstance(entry.get("file"), str) or entry.get("error") is not None:
+        return False
+    if not isinstance(cells, list):
+        return False
+    for cell in cells:
+        if not isinstance(cell, dict) or not isinstance(cell.get("cell"), dict):
+            return False
+        if not all(isinstance(cell.get(k), list) for k in ("sweeps", "spikes")):
+            return False
+        if not all(isinstance(r, dict) for k in ("sweeps", "spikes") for r in cell[k]):
+            return False
+    return all("cell_id" in cell["cell"] for cell in cells)
 
 
 def store_entry(outdir: str | Path, key: str, result: dict[str, Any]) -> None:

@@ -1115,12 +1115,6 @@ def _dies_on_crash_files(path, *args, **kwargs):
     return analyse_file(path, *args, **kwargs)
 
 
-@pytest.mark.xfail(
-    strict=True,
-    reason="batch.py _execute: a worker that dies (segfault in a C library, OOM kill) breaks the "
-    "ProcessPoolExecutor; every file still running or queued becomes 'worker failed: A process "
-    "in the process pool was terminated abruptly', not only the file that killed it",
-)
 def test_a_worker_that_dies_loses_only_its_own_file(goods, tmp_path, monkeypatch):
     # Pool workers are forked, so they inherit the patched function (Linux default start).
     # The first file kills its worker at once, while the others are running or queued.

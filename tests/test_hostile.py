@@ -236,12 +236,6 @@ def test_truncated_cache_entry_is_ignored(cached_run):
     assert again == cells
 
 
-@pytest.mark.xfail(
-    strict=True,
-    reason="cache.py/batch.py: a cache entry with the right key but another shape (e.g. "
-    "'cells' not a list of cell records, no 'error') is trusted and the run crashes with a "
-    "traceback (KeyError: 'error' in batch._assemble)",
-)
 def test_cache_entry_with_the_right_key_but_wrong_shape_is_rejected(cached_run):
     args, out, entries, cells = cached_run
     data = json.loads(entries[0].read_text(encoding="utf-8"))
