@@ -76,6 +76,10 @@ class HHSoma:
         number: int = 0,
     ) -> HHRun:
         """Run one step (positive ``amp_a`` = depolarizing) and record v every time step."""
+        # NEURON's settings are global to the process: set every one this run relies on, as
+        # other test modules change them (e.g. secondorder = 2 for passive cells).
+        h.cvode_active(0)
+        h.secondorder = 0
         h.celsius = HH_CELSIUS
         h.dt = dt_s * 1e3
         h.steps_per_ms = 1.0 / h.dt
