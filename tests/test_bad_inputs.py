@@ -1145,3 +1145,30 @@ def test_inspect_names_the_file_and_the_problem(goods, tmp_path, build, status):
     assert code == 1, out.getvalue()
     pattern = rf"patchbatch: {re.escape(str(bad))}: {status}\n"
     assert re.fullmatch(pattern, err.getvalue()), err.getvalue()
+
+
+@pytest.mark.xfail(
+    strict=True,
+    reason="batch.py/cli.py: --scheduler with an address Dask cannot parse escapes main() as a "
+    "ValueError traceback ('missing port number in address') instead of exit 2",
+)
+def test_scheduler_address_that_is_not_one_exits_2(goods, tmp_path):
+    outcome = run_cli([*goods.files, "--scheduler", "nonsense", "--no-figures"], tmp_path / "o")
+    assert outcome.code == 2
+    assert re.fullmatch(r"patchbatch: .*'nonsense'.*\n", outcome.stderr), outcome.stderr
+
+
+@pytest.mark.xfail(
+    strict=True,
+    reason="batch.py: an unreachable --scheduler is reported as 'OUT: could not write (Timed out "
+    "trying to connect ...)': right exit status, but it blames the output folder",
+)
+def test_unreachable_scheduler_exits_2_naming_it(goods, tmp_path):
+    import dask
+
+    with dask.config.set({"distributed.comm.timeouts.connect": "1s"}):
+        outcome = run_cli(
+            [*goods.files, "--scheduler", "tcp://127.0.0.1:9", "--no-figures"], tmp_path / "o"
+        )
+    assert outcome.code == 2
+    assert "tcp://127.0.0.1:9" in outcome.stderr and "could not write" not in outcome.stderr
