@@ -34,7 +34,9 @@ PROTOCOL = StepProtocol(
     step_s=0.3,
     amplitudes_a=tuple(a * 1e-12 for a in (-80, -60, -40, -20, 40, 80)),
 )
-MODEL = CellModel(soma_area_m2=9000e-12, rm_ohm_m2=2.0)
+MODEL = CellModel(
+    soma_area_m2=9000e-12, rm_ohm_m2=2.0
+)  # one compartment: Rin = Rm / area = 222 MOhm
 SCRIPT = "<script>alert(1)</script>"
 ELECTRODES = (SCRIPT, "../../escape", "C:\\evil:1", "x/y", "x_y", "long" * 80)
 IMG_STEM = "<img src=x onerror=alert(2)>"
@@ -254,3 +256,22 @@ def test_symlink_loop_in_the_input_folder_is_not_followed(tmp_path):
     code, err = run_cli([day, "-o", tmp_path / "out", "-j", "1", "--no-figures"])
     assert code == 0, err
     assert pd.read_csv(tmp_path / "out" / "cells.csv")["cell_id"].tolist() == ["good"]
+
+
+def test_sheet_columns_cannot_overwrite_results(tmp_path):
+    day = tmp_path / "day"
+    day.mkdir()
+    write_nwb([_cell("good", 1)], day / "good.nwb")
+    (day / "broken.nwb").write_bytes(b"\x89HDF\r\n\x1a\n" + bytes(100))  # an HDF5 that ends early
+    sheet = "file,status,qc_pass,rin_mohm,condition\ngood.nwb,ok,true,1,ctrl\nbroken.nwb,ok,true,1,ctrl\n"
+    (day / "metadata.csv").write_text(sheet)
+    code, err = run_cli([day, "-o", tmp_path / "out", "-j", "1", "--no-figures"])
+    assert code == 1, err
+    cells = pd.read_csv(tmp_path / "out" / "cells.csv").set_index("cell_id")
+    status = cells.loc["broken", "status"]
+    assert re.fullmatch(r".*broken\.nwb: cannot be read as NWB \(.*\)", status), status
+    assert not cells.loc["broken", "qc_pass"]
+    assert cells.loc["good", "rin_mohm"] == pytest.approx(222.2, rel=0.03)  # not the sheet's 1
+    assert list(cells["condition"]) == ["ctrl", "ctrl"]
+    for column in ("status", "qc_pass", "rin_mohm"):
+        assert re.search(rf"column '{column}' clashes with a result column", err), err
