@@ -11,6 +11,7 @@ from __future__ import annotations
 import json
 import logging
 import os
+import re
 import sys
 import time
 from collections.abc import Iterator, Sequence
@@ -38,6 +39,23 @@ class OutputFolderError(PatchbatchError):
 
 class InputError(PatchbatchError):
     """The inputs name nothing to analyse (exit status 2)."""
+
+
+class SchedulerError(PatchbatchError):
+    """The Dask scheduler named by ``--scheduler`` is not an address or cannot be reached."""
+
+
+_ADDRESS = re.compile(r"^(tcp|tls|ucx|inproc)://[^\s/:]+(:\d+)?$")
+
+
+def check_scheduler(scheduler: str | None) -> None:
+    """Reject a ``--scheduler`` value that is neither ``local`` nor ``PROTOCOL://HOST:PORT``."""
+    if scheduler is None or scheduler == "local" or _ADDRESS.match(scheduler):
+        return
+    raise SchedulerError(
+        f"--scheduler {scheduler!r} is not a scheduler address: give tcp://HOST:PORT of a "
+        "running Dask scheduler, or 'local' to start one on this machine"
+    )
 
 
 @dataclass
@@ -147,6 +165,7 @@ def run_batch(
     BatchResult
     """
     started = datetime.now(UTC)
+    check_scheduler(scheduler)
     config = config if isinstance(config, Config) else load_config(config)
     outdir = Path(out)
     figures = config.report.figures if figures is None else figures
@@ -348,7 +367,11 @@ def _execute_dask(todo, config, figure_dir, scheduler, workers) -> Iterator[tupl
     else:
         address = scheduler
     try:
-        with Client(address) as client:
+        try:
+            client = Client(address)
+        except (OSError, TimeoutError) as exc:  # not an OSError of the output folder
+            raise SchedulerError(f"{scheduler}: cannot reach the Dask scheduler ({exc})") from None
+        with client:
             futures = {client.submit(job.run, config, figure_dir, pure=False): job for job in todo}
             for future in dask_completed(list(futures)):
                 job = futures[future]
