@@ -316,6 +316,47 @@ def build_dimensionless_nix(tmp: Path, g: Goods) -> Path:
     return path
 
 
+def _neo_nix(path: Path, signals: list[tuple[np.ndarray, str, str]]) -> Path:
+    """A NIX file of one segment holding the given (samples, units, name) signals."""
+    from neo.io import NixIO
+
+    block = neo.Block(name="recordings")
+    seg = neo.Segment(name="sweep 0", index=0)
+    for data, units, name in signals:
+        seg.analogsignals.append(
+            neo.AnalogSignal(
+                data.reshape(-1, 1), units=units, sampling_rate=10_000 * pq.Hz, name=name
+            )
+        )
+    block.segments.append(seg)
+    io_ = NixIO(str(path), mode="ow")
+    try:
+        io_.write_block(block)
+    finally:
+        io_.close()
+    return path
+
+
+def build_current_only_nix(tmp: Path, g: Goods) -> Path:
+    s = g.template.sweeps[0]
+    return _neo_nix(tmp / "bad_current_only.nix", [(s.current * 1e12, "pA", "I")])
+
+
+def build_unpairable_nix(tmp: Path, g: Goods) -> Path:
+    s = g.template.sweeps[0]
+    signals = [(s.voltage * 1e3, "mV", "V1"), (s.voltage * 1e3, "mV", "V2")]
+    return _neo_nix(tmp / "bad_unpairable.nix", [*signals, (s.current * 1e12, "pA", "I")])
+
+
+def build_truncated_nix(tmp: Path, g: Goods) -> Path:
+    from pipeline.writers import write_nix
+
+    path = write_nix([g.template], tmp / "bad_truncated.nix")
+    data = path.read_bytes()
+    path.write_bytes(data[: len(data) // 3])
+    return path
+
+
 def build_zero_rate(tmp: Path, g: Goods) -> Path:
     path = _nwb_of(g, tmp / "bad_rate.nwb")
     return _set_attr(path, f"{RESP0}/starting_time", "rate", 0.0)
@@ -445,6 +486,13 @@ READ_FAILURES = [
         build_dimensionless_nix,
         r"channel 'amplifier out': units 'dimensionless' are neither volts nor amperes",
     ),
+    ("current-only-nix", build_current_only_nix, r"no voltage channel in any segment"),
+    (
+        "unpairable-channels-nix",
+        build_unpairable_nix,
+        r"sweep 0: 2 voltage channels but 1 current channels; cannot pair them",
+    ),
+    ("truncated-nix", build_truncated_nix, r"cannot be read by neo \(OSError: .*truncated.*\)"),
     (
         "zero-rate",
         build_zero_rate,
@@ -1225,3 +1273,36 @@ def test_unreachable_scheduler_exits_2_naming_it(goods, tmp_path):
         )
     assert outcome.code == 2
     assert "tcp://127.0.0.1:9" in outcome.stderr and "could not write" not in outcome.stderr
+
+
+def test_nix_segment_with_current_only_is_listed_as_skipped(goods, tmp_path):
+    from neo.io import NixIO
+
+    block = neo.Block(name="recordings")
+    for s in goods.template.sweeps:
+        seg = neo.Segment(name=f"sweep {s.number}", index=s.number, sweep_number=s.number)
+        for data, units, name in ((s.voltage, "V", "Vm"), (s.current, "A", "I")):
+            seg.analogsignals.append(
+                neo.AnalogSignal(
+                    data.reshape(-1, 1), units=units, sampling_rate=s.rate * pq.Hz, name=name
+                )
+            )
+        block.segments.append(seg)
+    extra = neo.Segment(name="sweep 6", index=6, sweep_number=6)  # the voltage was not saved
+    extra.analogsignals.append(
+        neo.AnalogSignal(np.zeros((100, 1)), units="pA", sampling_rate=1e4 * pq.Hz, name="I")
+    )
+    block.segments.append(extra)
+    path = tmp_path / "odd_current_only_sweep.nix"
+    io_ = NixIO(str(path), mode="ow")
+    try:
+        io_.write_block(block)
+    finally:
+        io_.close()
+    (rec,) = open_recordings(path)
+    assert [s.number for s in rec.sweeps] == [0, 1, 2, 3, 4, 5]
+    assert rec.skipped == ("sweep 6 (current only, no voltage channel)",)
+    out = io.StringIO()
+    with contextlib.redirect_stdout(out):
+        assert main(["inspect", str(path)]) == 0
+    assert "skipped: sweep 6 (current only, no voltage channel)" in out.getvalue()

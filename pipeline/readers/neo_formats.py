@@ -102,6 +102,10 @@ def recordings_from_blocks(path: Path, blocks: list) -> list[Recording]:
     cells: dict[str, list[Sweep]] = {}
     for order, (seg, chans) in enumerate(zip(segments, per_segment, strict=True)):
         number = _sweep_number(seg, order)
+        if not any(c.base == "V" for c in chans):
+            if chans:  # current without a membrane potential: nothing to analyse, say so
+                skipped.append(f"sweep {number} (current only, no voltage channel)")
+            continue
         for key, v, i in _pairs(name, chans, use_electrodes, number):
             cells.setdefault(key, []).append(_sweep(name, seg, number, v, i))
     if not cells:
