@@ -174,6 +174,12 @@ class SweepFit:
     )
     jump_ssr_v2: float = 0.0  # residual sum of squares of the curved extrapolations, V^2
     jump_dof: int = 0  # their degrees of freedom
+    # the early responses themselves (after the electrode settling), for the cell's pooled fit:
+    # samples minus the level before the edge, V; empty where the edge was not measurable
+    onset_edge_v: tuple[float, ...] = ()
+    offset_edge_v: tuple[float, ...] = ()  # empty too when the membrane was not steady before it
+    edge_start_s: float = NAN  # time of their first sample after the edge, s
+    edge_dt_s: float = NAN  # their sample interval, s
 
     @property
     def baseline_shift_v(self) -> float:
@@ -244,7 +250,7 @@ class CellFit:
     rin_apparent_ohm: float = NAN  # steady-state slope before the bridge correction, ohm
     rin_method: str = ""  # 'linear' (slope of the linear range) or 'quadratic' (slope at rest)
     bridge_error_se_ohm: float = NAN
-    bridge_method: str = ""  # 'quadratic' or 'curved' (t^1.5 term) extrapolation of the jumps
+    bridge_method: str = ""  # jump extrapolation: 'quadratic', 'curved' (t^1.5) or 'cable'
     sag_ratio_at_target: float = NAN  # interpolated at PassiveSettings.sag_target_v
     two_exp: bool = False  # True when the two-exponential (peeling) values were asked for
     tau0_s: float = NAN  # slow time constant of the two-exponential fits

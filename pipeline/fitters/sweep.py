@@ -646,22 +646,49 @@ def _edge_extrapolations(v: np.ndarray, edge: int, first: int, count: int):
     return out[0], out[2], out[1], out[3]
 
 
-def _edge_jumps(v: np.ndarray, w: _Windows, on: int, off: int, base: float) -> dict[str, float]:
+# a rise this far above baseline and steady state within a step is a spike (subthreshold
+# overshoot from a deactivating sag current is a few mV)
+_SPIKE_V = 0.02
+
+
+def _edge_jumps(
+    v: np.ndarray, w: _Windows, edges: tuple[int, int], base: float, rms: float, rate: float
+) -> dict:
     """Fast jumps (V) at onset and offset: the membrane response extrapolated back to each edge
     from just after the electrode settling, minus the level just before the edge (the baseline
     mean; a line through the steady-state window at the offset). Both the plain and the curved
-    extrapolation are kept, with the residual sums that let the cell choose between them."""
+    extrapolation are kept, with the residual sums that let the cell choose between them, and
+    the early responses themselves for the cell's pooled fit.
+
+    The offset is not measured when the membrane was not steady before it: a steady-state window
+    scattered about its line by more than twice the baseline noise holds spikes (or the like),
+    whose after-potentials would be read as the edge's jump. Neither edge is measured in a
+    sweep that spikes during the step (``v`` more than :data:`_SPIKE_V` above both the baseline
+    and the steady state): sodium current bends its early response before the first spike.
+    """
+    on, off = edges
+    top = max(base, float(ss.mean())) if (ss := v[slice(*w.ss)]).size else base
+    spiking = float(np.max(v[on:off])) - top > _SPIKE_V
     nss = w.ss[1] - w.ss[0]
     pre = _edge_level(v, off, -nss, nss, degree=1)
-    j = {}
+    x = np.arange(nss) - (nss - 1) / 2
+    ss = v[slice(*w.ss)]
+    steady = float(np.std(ss - np.polyval(np.polyfit(x, ss, 1), x))) <= 2.0 * rms + 1e-9
+    j: dict = {}
     drop = ssr = dof = 0.0
     for name, edge, level in (("onset", on, base), ("offset", off, pre)):
         plain, curved, ssr_p, ssr_c = _edge_extrapolations(v, edge, w.settle, w.jump)
+        if spiking or (name == "offset" and not steady):
+            plain = curved = ssr_c = NAN
         j[f"{name}_jump_v"] = plain - level
         j[f"{name}_jump_curved_v"] = curved - level
+        seg = v[edge + w.settle : edge + w.settle + w.jump]
+        ok = math.isfinite(plain) and seg.size == w.jump
+        j[f"{name}_edge_v"] = tuple((seg - level).tolist()) if ok else ()
         if math.isfinite(ssr_c):
             drop, ssr, dof = drop + ssr_p - ssr_c, ssr + ssr_c, dof + w.jump - 4
     j.update(jump_ssr_drop_v2=drop, jump_ssr_v2=ssr, jump_dof=int(dof))
+    j.update(edge_start_s=w.settle / rate, edge_dt_s=1.0 / rate)
     return j
 
 
@@ -759,7 +786,7 @@ def _measure(
     if not usable(on, off, "step"):
         return SweepFit(**head, **fit, reason="; ".join(reasons))
     ss_dv = float(v[slice(*w.ss)].mean()) - base
-    jumps = _edge_jumps(v, w, on, off, base)
+    jumps = _edge_jumps(v, w, (on, off), base, rms, rate)
     j_on, j_off = jumps["onset_jump_v"], jumps["offset_jump_v"]
     sign = 1.0 if epoch.amplitude > 0 else -1.0
     smooth = _boxcar(v[on + w.settle : off], max(1, round(s.peak_smooth_s * rate)))
