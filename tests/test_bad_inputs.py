@@ -1306,3 +1306,29 @@ def test_nix_segment_with_current_only_is_listed_as_skipped(goods, tmp_path):
     with contextlib.redirect_stdout(out):
         assert main(["inspect", str(path)]) == 0
     assert "skipped: sweep 6 (current only, no voltage channel)" in out.getvalue()
+
+
+def test_a_figure_that_fails_midway_loses_only_that_figure(goods, tmp_path, monkeypatch):
+    from pipeline.report import atomic, figures
+
+    real = figures.cell_figure
+
+    def half_png_then_enospc(recording, *args, **kwargs):
+        if recording.cell_id != "good_b":
+            return real(recording, *args, **kwargs)
+        path = args[3]
+        with atomic.atomic_path(path) as tmp, open(tmp, "wb") as fh:
+            fh.write(b"\x89PNG\r\n\x1a\n" + bytes(500))  # a PNG cut short
+            raise OSError(errno.ENOSPC, "No space left on device", str(tmp))
+
+    monkeypatch.setattr(figures, "cell_figure", half_png_then_enospc)
+    outcome = run_cli([*goods.files], tmp_path / "out")
+    assert outcome.code == 0, outcome.stderr  # every input analysed; a warning, not an error
+    assert_good_cells_complete(outcome)  # good_b's values are kept
+    assert sorted(p.name for p in (outcome.out / "figures").iterdir()) == ["good_a.png"]
+    messages = [e["message"] for e in outcome.info()["errors"]] + outcome.info()["warnings"]
+    assert any(
+        re.search(r"good_b: figure not drawn \(OSError: .*No space left", m) for m in messages
+    )
+    page = (outcome.out / "index.html").read_text(encoding="utf-8")
+    assert "figures/good_b.png" not in page
