@@ -180,3 +180,26 @@ def test_a_rule_added_in_a_user_config_works():
     assert cell["qc_flags"] == "tau 20 ms above the lab's 15 ms"
     assert sweeps[0]["excluded_because"] == "step beyond -70 pA"
     assert sweeps[2]["used"]
+
+
+def test_spikes_that_do_not_overshoot_fail_and_cells_without_spikes_pass():
+    from pipeline.simulate import SpikingChannels
+
+    # A low sodium reversal: spikes that stop short of 0 mV (common practice: a sign of a poor cell or
+    # poor access). A passive cell has no spike and is not judged on this rule.
+    weak = CellModel(
+        soma_area_m2=9000e-12,
+        rm_ohm_m2=2.0,
+        spiking=SpikingChannels(g_na_s_per_m2=120.0, e_na_v=0.010),
+    )
+    steps = dataclasses.replace(
+        SHORT, amplitudes_a=(-60 * PA, -40 * PA, -20 * PA, 150 * PA, 250 * PA)
+    )
+    cell, _ = _run(_cell(weak, protocol=steps))
+    assert cell["first_spike_peak_mv"] < 0, cell["first_spike_peak_mv"]
+    assert "no overshoot" in cell["qc_reasons"]
+    healthy = CellModel(soma_area_m2=9000e-12, rm_ohm_m2=2.0, spiking=SpikingChannels())
+    cell, _ = _run(_cell(healthy, protocol=steps))
+    assert cell["first_spike_peak_mv"] > 0 and "no overshoot" not in cell["qc_reasons"]
+    cell, _ = _run(_cell())
+    assert cell["qc_pass"]
