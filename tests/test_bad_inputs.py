@@ -1332,3 +1332,32 @@ def test_a_figure_that_fails_midway_loses_only_that_figure(goods, tmp_path, monk
     )
     page = (outcome.out / "index.html").read_text(encoding="utf-8")
     assert "figures/good_b.png" not in page
+
+
+def test_failed_table_write_leaves_no_partial_table_and_the_rerun_completes(
+    goods, tmp_path, monkeypatch
+):
+    from pipeline.report import atomic
+
+    out = tmp_path / "out"
+    args = [*goods.files, "--no-figures"]
+    real = atomic.atomic_write_text
+
+    def sweeps_fail(path, text, encoding="utf-8"):
+        if Path(path).name != "sweeps.csv":
+            return real(path, text, encoding)
+        with atomic.atomic_path(path) as tmp, open(tmp, "w", encoding=encoding) as fh:
+            fh.write(text[: len(text) // 3])
+            raise OSError(errno.ENOSPC, "No space left on device", str(tmp))
+
+    with monkeypatch.context() as patch:
+        patch.setattr("pipeline.report.tables.atomic_write_text", sweeps_fail)
+        failed = _run_allowing_a_crash(args, out)
+    assert isinstance(failed, Outcome) and failed.code == 2
+    assert re.search(r"sweeps\.csv.*No space left on device", failed.stderr), failed.stderr
+    assert not (out / "sweeps.csv").exists() and leftovers(out) == []
+    assert not (out / "run.json").exists()
+    outcome = run_cli(args, out)  # the same command again brings the folder up to date
+    assert outcome.code == 0, outcome.stderr
+    assert_good_cells_complete(outcome)
+    assert outcome.info()["counts"]["cached"] == 2  # nothing analysed twice
