@@ -70,7 +70,7 @@ def store_entry(outdir: str | Path, key: str, result: dict[str, Any]) -> None:
     folder = Path(outdir) / CACHE_DIR
     folder.mkdir(parents=True, exist_ok=True)
     text = json.dumps({"key": key, **_nan_to_none(result)}, allow_nan=False)
-    atomic_write_text(folder / f"{key}.json", text)
+    atomic_write_text(folder / f"{key}.json", text, sync=False)
 
 
 def normalise(result: dict[str, Any]) -> dict[str, Any]:

@@ -20,7 +20,6 @@ from typing import NamedTuple
 import numpy as np
 from scipy.ndimage import maximum_filter1d
 from scipy.signal import savgol_filter
-from scipy.stats import linregress
 
 from pipeline.recording import Recording, Sweep
 from pipeline.steps import StepEpoch
@@ -650,6 +649,8 @@ def _fi_slope(depol: list[SweepSpiking], rheobase: float, settings: SpikeSetting
                 f"amplitudes before saturation or block, got {len(used)}"
             ),
         )
+    from scipy.stats import linregress  # heavy import; only the f-I fit needs it
+
     fit = linregress([r.step_a for r in used], [r.rate_hz for r in used])
     return float(fit.slope), float(fit.intercept), tuple(r.sweep for r in used), ""
 

@@ -60,7 +60,7 @@ def atomic_path(path: str | os.PathLike[str]) -> Iterator[Path]:
         raise
 
 
-def atomic_write_bytes(path: str | os.PathLike[str], data: bytes) -> Path:
+def atomic_write_bytes(path: str | os.PathLike[str], data: bytes, *, sync: bool = True) -> Path:
     """Write ``data`` to ``path`` atomically (flushed to disk before the rename).
 
     Parameters
@@ -69,6 +69,9 @@ def atomic_write_bytes(path: str | os.PathLike[str], data: bytes) -> Path:
         Destination file; its folder must exist.
     data : bytes
         Content.
+    sync : bool
+        fsync before the rename, so the file survives a power cut. The cache turns it off: a
+        lost entry is only analysed again, and the sync costs tens of ms per file.
 
     Returns
     -------
@@ -79,11 +82,14 @@ def atomic_write_bytes(path: str | os.PathLike[str], data: bytes) -> Path:
     with atomic_path(dest) as tmp, open(tmp, "wb") as fh:
         fh.write(data)
         fh.flush()
-        os.fsync(fh.fileno())
+        if sync:
+            os.fsync(fh.fileno())
     return dest
 
 
-def atomic_write_text(path: str | os.PathLike[str], text: str, encoding: str = "utf-8") -> Path:
+def atomic_write_text(
+    path: str | os.PathLike[str], text: str, encoding: str = "utf-8", *, sync: bool = True
+) -> Path:
     """Write ``text`` to ``path`` atomically, UTF-8 and ``\\n`` line ends by default.
 
     Parameters
@@ -94,10 +100,12 @@ def atomic_write_text(path: str | os.PathLike[str], text: str, encoding: str = "
         Content; line ends are written as given (no platform translation).
     encoding : str
         Text encoding.
+    sync : bool
+        As for :func:`atomic_write_bytes`.
 
     Returns
     -------
     pathlib.Path
         The destination.
     """
-    return atomic_write_bytes(path, text.encode(encoding))
+    return atomic_write_bytes(path, text.encode(encoding), sync=sync)
