@@ -275,3 +275,36 @@ def test_sheet_columns_cannot_overwrite_results(tmp_path):
     assert list(cells["condition"]) == ["ctrl", "ctrl"]
     for column in ("status", "qc_pass", "rin_mohm"):
         assert re.search(rf"column '{column}' clashes with a result column", err), err
+
+
+def test_nwb_declaring_more_samples_than_a_sweep_holds_is_refused_unread(tmp_path, monkeypatch):
+    # A small gzip-compressed file can declare billions of samples; the reader must refuse on
+    # the declared length, before reading. The limit is lowered so a regression stays harmless.
+    import h5py
+
+    from pipeline.readers import nwb
+
+    monkeypatch.setattr(nwb, "MAX_SERIES_SAMPLES", 10_000)
+    path = write_nwb([_cell("bomb", 1)], tmp_path / "bomb.nwb")
+    with h5py.File(path, "r+") as f:
+        group = f["acquisition/e0_response_0000"]
+        attrs = dict(group["data"].attrs)
+        del group["data"]
+        data = group.create_dataset(
+            "data",
+            shape=(50_000,),
+            dtype="f4",
+            chunks=(5_000,),
+            compression="gzip",
+            fillvalue=-0.07,
+        )
+        data.attrs.update(attrs)
+        del f["general/intracellular_ephys/intracellular_recordings"]  # whole series are read
+    code, err = run_cli([path, "-o", tmp_path / "out", "-j", "1", "--no-figures"])
+    assert code == 1
+    status = pd.read_csv(tmp_path / "out" / "cells.csv").loc[0, "status"]
+    assert re.fullmatch(
+        r".*bomb\.nwb: e0_response_0000 \(CurrentClampSeries\): 50000 samples, more than the "
+        r"10000 one sweep may hold",
+        status,
+    ), status

@@ -46,6 +46,7 @@ SETTINGS_KEYS = {
     "capacitance_compensation": "capacitance_compensation_f",
 }
 NO_DESCRIPTION = "N/A"  # pynwb's placeholder for an empty stimulus_description
+MAX_SERIES_SAMPLES = 100_000_000  # one sweep: 1 h at 25 kHz; 0.8 GB as float64
 
 
 @dataclass
@@ -136,6 +137,14 @@ def _series_data(
     """Scale one series to SI (schema: value = data * conversion + offset, in ``unit``)."""
     what = f"{name} ({kind})"
     factor = check_volts_or_amps(path, what, unit, base)
+    # The declared length is known before reading: a small compressed file can declare
+    # billions of samples (a decompression bomb), which must not reach memory.
+    total = _declared_length(data)
+    n = (total if stop is None else min(stop, total)) - start
+    if n > MAX_SERIES_SAMPLES:
+        raise ShapeError(
+            path, f"{what}: {n} samples, more than the {MAX_SERIES_SAMPLES} one sweep may hold"
+        )
     raw = np.asarray(data[start:stop], dtype=np.float64)
     if raw.ndim != 1 and not (raw.ndim == 2 and raw.shape[1] == 1):
         raise ShapeError(path, f"{what}: data of shape {raw.shape}, expected one channel")
@@ -161,6 +170,14 @@ def _series_data(
         protocol="" if protocol == NO_DESCRIPTION else protocol,
         settings={k: float(v) for k, v in settings.items() if v is not None and np.isfinite(v)},
     )
+
+
+def _declared_length(data: Any) -> int:
+    """Samples a series declares (its first dimension), without reading them."""
+    shape = getattr(data, "shape", None)
+    if shape is None:
+        return len(data)
+    return int(shape[0]) if len(shape) else 1
 
 
 def _finish(
