@@ -456,7 +456,7 @@ def _draw_residuals(ax, views: list[_SweepView]) -> None:
     ax.axhline(0, color="0.6", lw=0.8)
     ax.set_xlabel("time from fit start (ms)")
     ax.set_ylabel("residual (mV)")
-    _title(ax, "charging-curve fit residuals (data − fit)")
+    _title(ax, "charging-curve fit residuals (data − fit, 0.5 ms means; hum not removed here)")
     rms, n_drawn = [], 0
     for v in views:
         c: ExpFit | None = v.fit.charging if v.fit is not None else None
@@ -467,7 +467,14 @@ def _draw_residuals(ax, views: list[_SweepView]) -> None:
         if i1 - i0 < 2:
             continue
         resid = (v.sweep.voltage[i0:i1] - c.curve(t[i0:i1])) * 1e3
-        tt, rr = envelope((t[i0:i1] - c.t0) * 1e3, resid, 400)
+        # Means over 0.5 ms bins, as the fitter sees the trace: raw samples would show the
+        # noise, not whether the curve follows the data.
+        k = max(1, round(5e-4 * v.sweep.rate))
+        n = (resid.size // k) * k
+        if n < 2 * k:
+            continue
+        rr = np.nanmean(resid[:n].reshape(-1, k), axis=1)
+        tt = (t[i0 : i0 + n : k] + 0.5 * (k - 1) / v.sweep.rate - c.t0) * 1e3
         colour = v.colour if v.used else EXCLUDED_COLOUR
         ax.plot(tt, rr, color=colour, lw=0.7)
         n_drawn += 1
@@ -478,7 +485,7 @@ def _draw_residuals(ax, views: list[_SweepView]) -> None:
         return
     if rms:
         ax.text(
-            0.99, 0.96, f"RMS {min(rms):.2f}–{max(rms):.2f} mV, {len(rms)} fits",
+            0.99, 0.96, f"fit RMS (hum removed) {min(rms):.2f}–{max(rms):.2f} mV, {len(rms)} fits",
             transform=ax.transAxes, ha="right", va="top", fontsize=7,
         )  # fmt: skip
 
