@@ -1361,3 +1361,19 @@ def test_failed_table_write_leaves_no_partial_table_and_the_rerun_completes(
     assert outcome.code == 0, outcome.stderr
     assert_good_cells_complete(outcome)
     assert outcome.info()["counts"]["cached"] == 2  # nothing analysed twice
+
+
+def test_bad_files_on_a_dask_cluster_give_the_same_tables(goods, tmp_path):
+    pytest.importorskip("distributed")
+    day = tmp_path / "day"
+    day.mkdir()
+    for build in (build_empty, build_truncated, build_unpaired, build_nan_runs, build_zero_step):
+        build(day, goods)
+    for good in goods.files:
+        (day / good.name).write_bytes(good.read_bytes())
+    local = run_cli([day, "-j", "1", "--no-figures"], tmp_path / "local")
+    dask = run_cli([day, "--scheduler", "local", "-j", "2", "--no-figures"], tmp_path / "dask")
+    assert local.code == dask.code == 1, dask.stderr
+    for name in ("cells.csv", "sweeps.csv"):
+        assert (dask.out / name).read_bytes() == (local.out / name).read_bytes(), name
+    assert_good_cells_complete(dask)
