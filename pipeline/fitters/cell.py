@@ -34,7 +34,7 @@ from collections.abc import Mapping, Sequence
 from dataclasses import dataclass
 
 import numpy as np
-from scipy import stats
+from scipy import special, stats
 
 from pipeline.fitters.results import NAN, CellFit, SweepFit
 from pipeline.fitters.sweep import PassiveSettings
@@ -91,15 +91,22 @@ def _curved_slope(x: np.ndarray, y: np.ndarray, p_max: float) -> tuple[_Slope, i
     return best, degree
 
 
-def _robust_origin_slope(x: np.ndarray, y: np.ndarray) -> _Slope:
-    """Through-origin slope after dropping points beyond 5 robust SD (a spike at an edge)."""
+def _robust_origin_fit(x: np.ndarray, y: np.ndarray) -> tuple[_Slope, np.ndarray]:
+    """Through-origin slope after dropping points beyond 5 robust SD (a spike at an edge), and
+    the mask of the points kept."""
     fit = _through_origin(x, y)
+    everything = np.ones(x.size, dtype=bool)
     if x.size < 4:
-        return fit
+        return fit, everything
     resid = y - fit.value * x
     mad = 1.4826 * float(np.median(np.abs(resid - np.median(resid))))
-    keep = np.abs(resid) <= 5 * mad if mad > 0 else np.ones(x.size, bool)
-    return _through_origin(x[keep], y[keep]) if keep.sum() >= 2 else fit
+    keep = np.abs(resid) <= 5 * mad if mad > 0 else everything
+    return (_through_origin(x[keep], y[keep]), keep) if keep.sum() >= 2 else (fit, everything)
+
+
+def _robust_origin_slope(x: np.ndarray, y: np.ndarray) -> _Slope:
+    """Through-origin slope after dropping points beyond 5 robust SD (a spike at an edge)."""
+    return _robust_origin_fit(x, y)[0]
 
 
 def _interval(value: float, se: float, dof: int, level: float) -> tuple[float, float]:
@@ -182,6 +189,158 @@ def _bridge(fits: list[SweepFit], s: PassiveSettings, notes: list[str]) -> tuple
     return _robust_origin_slope(np.array(x), np.array(y)), ("curved" if curved else "quadratic")
 
 
+# cable-to-soma conductance ratios tried for the soma-cylinder extrapolation (0: no cable)
+_RHO_GRID = np.concatenate(([0.0], np.geomspace(0.1, 1000.0, 61)))
+
+
+def soma_cylinder_response(t: np.ndarray, tau: float, rho: float) -> np.ndarray:
+    """Soma potential after a unit current step into a soma on a semi-infinite cylinder.
+
+    Parameters
+    ----------
+    t : numpy.ndarray
+        Time since the step, s.
+    tau : float
+        Membrane time constant Rm*Cm, s (uniform membrane: soma and cylinder share it).
+    rho : float
+        Input conductance of the cylinder over that of the soma membrane, G_inf / G_s (0: a
+        lone soma).
+
+    Returns
+    -------
+    numpy.ndarray
+        ``V(t) * G_s`` (V per A times S: dimensionless), ``T = t / tau``::
+
+            [rho erf(sqrt T) - 1 + exp(-T) erfcx(rho sqrt T)] / (rho^2 - 1)
+
+        continuous at 0, rising as ``t / tau`` while the soma charges alone, then as
+        ``(2 rho / (rho^2 - 1)) sqrt(T / pi)`` on the cable, towards ``1 / (1 + rho)``.
+
+    Notes
+    -----
+    The inverse Laplace transform of ``1 / (s (G_s (1 + s tau) + G_inf sqrt(1 + s tau)))``,
+    the input admittance of a soma with a semi-infinite cylinder (Rall 1960, Exp Neurol
+    2:503-532; Jack, Noble & Tsien 1975, Electric Current Flow in Excitable Cells, ch. 7;
+    both from memory); derived here by partial fractions in ``sqrt(s + 1/tau)``.
+    """
+    tt = np.clip(np.asarray(t, dtype=float) / tau, 0.0, None)
+    if rho == 0.0:
+        return -np.expm1(-tt)
+    if abs(rho - 1.0) < 1e-4:  # removable singularity: step off it
+        rho = 1.0 + 1e-4
+    root = np.sqrt(tt)
+    num = rho * special.erf(root) - 1.0 + np.exp(-tt) * special.erfcx(rho * root)
+    return num / (rho * rho - 1.0)
+
+
+def _cylinder_table(t: np.ndarray, tau: float) -> np.ndarray:
+    """:func:`soma_cylinder_response` at ``t`` for every ratio of ``_RHO_GRID``, one row each,
+    scaled to 1 at the last sample."""
+    u = np.array([soma_cylinder_response(t, tau, rho) for rho in _RHO_GRID])
+    return u / u[:, -1:]
+
+
+@dataclass(frozen=True)
+class _Edges:
+    """The early edge responses of a cell's sweeps that share one sampling."""
+
+    y: np.ndarray  # (edges, samples) response minus the level before the edge, V
+    di: np.ndarray  # current change at each edge, A (onset +I, offset -I)
+    w: np.ndarray  # weights, 1/V^2 (baseline noise)
+    t: np.ndarray  # time of each sample after the edge, s
+
+
+def _edges(fits: list[SweepFit]) -> _Edges | None:
+    """Collect the stored early responses (the most common sampling only); None if < 3."""
+    rows: dict[tuple, list] = {}
+    for f in fits:
+        key0 = (f.edge_start_s, f.edge_dt_s)
+        rms = f.baseline_rms_v if math.isfinite(f.baseline_rms_v) and f.baseline_rms_v > 0 else 1.0
+        for seg, di in ((f.onset_edge_v, f.step_a), (f.offset_edge_v, -f.step_a)):
+            if len(seg) >= 6 and math.isfinite(di) and di != 0:
+                rows.setdefault((*key0, len(seg)), []).append((seg, di, 1.0 / rms**2))
+    if not rows:
+        return None
+    (start, dt, n), got = max(rows.items(), key=lambda kv: len(kv[1]))
+    if len(got) < 3 or not (math.isfinite(start) and math.isfinite(dt)):
+        return None
+    return _Edges(
+        np.array([g[0] for g in got]),
+        np.array([g[1] for g in got]),
+        np.array([g[2] for g in got]),
+        start + dt * np.arange(n),
+    )
+
+
+def _pooled_misfit(design: np.ndarray, ybar: np.ndarray) -> tuple[np.ndarray, float]:
+    """Least-squares coefficients of ``design`` on ``ybar`` and the residual sum of squares."""
+    coef, *_ = np.linalg.lstsq(design, ybar, rcond=None)
+    resid = ybar - design @ coef
+    return coef, float(resid @ resid)
+
+
+def _cable_shape(e: _Edges, keep: np.ndarray, tau: float):
+    """Pooled response per unit current of the kept edges and the information-criterion winner
+    among the quadratic, the curved (t^1.5) and the soma-cylinder extrapolation: returns its
+    name and, for the soma-cylinder, the membrane part of the fitted shape per unit current
+    (ohm, at the edge samples)."""
+    dI, w, y, t = e.di[keep], e.w[keep], e.y[keep], e.t
+    big_w = float(w @ dI**2)
+    ybar = (w * dI) @ y / big_w
+    # noise of ybar from the scatter of the edges about the common shape (weights' units)
+    dof = (dI.size - 1) * t.size
+    s2 = float(np.sum(w[:, None] * (y - dI[:, None] * ybar) ** 2)) / dof if dof > 0 else 0.0
+    scale = big_w / s2 if s2 > 0 else 1.0
+    x = t / t[-1]  # unit-scaled powers keep the designs well conditioned
+    one = np.ones_like(x)
+    scores = {}
+    for name, cols, k in (("quadratic", [x, x**2], 3), ("curved", [x, x**1.5, x**2], 4)):
+        coef, ssr = _pooled_misfit(np.column_stack([one, *cols]), ybar)
+        scores[name] = (scale * ssr + 2 * k, None)
+    # every rho at once: J + A u_rho(t) is a straight line in u, fitted in closed form
+    u = _cylinder_table(t, tau)
+    du = u - u.mean(axis=1, keepdims=True)
+    dy = ybar - ybar.mean()
+    amp = du @ dy / np.einsum("ij,ij->i", du, du)
+    ssr_all = dy @ dy - amp * (du @ dy)
+    k = int(np.argmin(ssr_all))
+    best = (float(ssr_all[k]), amp[k] * u[k])
+    scores["cable"] = (scale * best[0] + 2 * 3, best[1])  # J, amplitude and rho
+    # the physical shape (a lone soma at rho = 0) unless a polynomial fits clearly better
+    # (AIC lower by more than 2: Burnham & Anderson 2002, Model Selection, sec. 2.6; from memory)
+    poly = min(scores["quadratic"][0], scores["curved"][0])
+    if scores["cable"][0] <= poly + 2.0:
+        return "cable", best[1]
+    return min(scores, key=lambda k: scores[k][0]), None
+
+
+def _cable_bridge(fits: list[SweepFit], tau: float) -> _Slope | None:
+    """Bridge error (ohm) from the soma-cylinder extrapolation of the pooled early responses,
+    or None when a polynomial in t extrapolates them as well (a soma-dominated cell) or there
+    is too little to pool.
+
+    All edges of a linear membrane share one response shape, scaled by the current step; it is
+    fitted once on their current-weighted mean (the shape's sqrt(t) rise, which no polynomial
+    in t follows back to the edge, comes from a dendrite charging through the soma). Each
+    edge's jump is then its mean excess over that shape, and the bridge error the robust slope
+    of the jumps on the current; edges it rejects are left out of the shape, once.
+    """
+    e = _edges(fits)
+    if e is None or not (math.isfinite(tau) and tau > 0):
+        return None
+    keep = np.ones(e.di.size, dtype=bool)
+    for _ in range(2):
+        name, shape = _cable_shape(e, keep, tau)
+        if name != "cable":
+            return None
+        jumps = (e.y - e.di[:, None] * shape[None, :]).mean(axis=1)
+        slope, inside = _robust_origin_fit(e.di, jumps)
+        if inside.all() or inside.sum() < 3 or (inside == keep).all():
+            return slope
+        keep = inside
+    return slope
+
+
 def _pick_small(hyper: list[SweepFit], dv_m: np.ndarray, s: PassiveSettings) -> list[int]:
     """Indices of the sweeps in the linear range, or the n smallest steps if too few are."""
     inside = [i for i in range(len(hyper)) if abs(dv_m[i]) <= s.linear_range_v]
@@ -245,6 +404,11 @@ def summarize_cell(
     )
     re = bridge.value if math.isfinite(bridge.value) else 0.0
     i = np.array([f.step_a for f in hyper])
+    if s.bridge_correction:  # the soma-cylinder shape needs tau, which needs the jumps removed
+        tau0 = _tau(hyper, np.array([f.peak_dv for f in hyper]) - re * i, s)[0]
+        cable = _cable_bridge(fits, tau0)
+        if cable is not None and math.isfinite(cable.value):
+            bridge, bridge_method, re = cable, "cable", cable.value
     shift = np.array([_drift_shift(f, rate) for f in hyper]) if s.drift_correction else 0.0
     ss = np.array([f.ss_dv for f in hyper]) - shift
     peak = np.array([f.peak_dv for f in hyper]) - shift

@@ -56,6 +56,8 @@ class PassiveSettings:
     settle_s: float = 3e-4
     # span after settling used to extrapolate the membrane response back to an edge
     jump_fit_s: float = 2e-3
+    # span after settling of the early responses pooled across the cell's edges (>= jump_fit_s)
+    edge_pool_s: float = 3e-3
     # boxcar length for the noise-robust peak and rebound
     peak_smooth_s: float = 0.02
     # bin width of the trace fed to the exponential fits
@@ -138,6 +140,7 @@ class _Windows:
     after: tuple[int, int] | None
     settle: int
     jump: int
+    pool: int  # samples after the settling kept for the cell's pooled fit of the edges
 
 
 def count_nonfinite(v: np.ndarray) -> int:
@@ -274,7 +277,9 @@ def _windows(sweep: Sweep, epoch: StepEpoch, s: PassiveSettings) -> tuple[_Windo
     na = round(s.baseline_window_s * rate)
     if n - na >= off + round(s.after_delay_s * rate):
         after = (n - na, n)
-    return _Windows((on - nb, on), (off - nss, off), after, settle, jump), ""
+    pool = max(jump, round(s.edge_pool_s * rate))
+    pool = min(pool, (off - on) // 4 - settle)
+    return _Windows((on - nb, on), (off - nss, off), after, settle, jump, pool), ""
 
 
 def _finite(v: np.ndarray, a: int, b: int) -> bool:
@@ -682,8 +687,8 @@ def _edge_jumps(
             plain = curved = ssr_c = NAN
         j[f"{name}_jump_v"] = plain - level
         j[f"{name}_jump_curved_v"] = curved - level
-        seg = v[edge + w.settle : edge + w.settle + w.jump]
-        ok = math.isfinite(plain) and seg.size == w.jump
+        seg = v[edge + w.settle : edge + w.settle + w.pool]
+        ok = math.isfinite(plain) and seg.size == w.pool and bool(np.isfinite(seg).all())
         j[f"{name}_edge_v"] = tuple((seg - level).tolist()) if ok else ()
         if math.isfinite(ssr_c):
             drop, ssr, dof = drop + ssr_p - ssr_c, ssr + ssr_c, dof + w.jump - 4
