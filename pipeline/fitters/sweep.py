@@ -39,6 +39,11 @@ from pipeline.fitters.results import NAN, BiExpFit, ExpFit, SweepFit, sag_respon
 from pipeline.recording import Sweep
 from pipeline.steps import StepEpoch
 
+# span after the settling of the early responses kept for the cell's pooled (soma-cylinder) fit
+# of the edges, s: 3 ms, where a soma on a finite dendrite (L ~ 0.6, tau ~ 20 ms) still looks
+# semi-infinite yet the sqrt(t) rise is resolved (measured on the demo day's dendritic cells)
+EDGE_POOL_S = 3e-3
+
 
 @dataclass(frozen=True)
 class PassiveSettings:
@@ -56,8 +61,6 @@ class PassiveSettings:
     settle_s: float = 3e-4
     # span after settling used to extrapolate the membrane response back to an edge
     jump_fit_s: float = 2e-3
-    # span after settling of the early responses pooled across the cell's edges (>= jump_fit_s)
-    edge_pool_s: float = 3e-3
     # boxcar length for the noise-robust peak and rebound
     peak_smooth_s: float = 0.02
     # bin width of the trace fed to the exponential fits
@@ -277,7 +280,7 @@ def _windows(sweep: Sweep, epoch: StepEpoch, s: PassiveSettings) -> tuple[_Windo
     na = round(s.baseline_window_s * rate)
     if n - na >= off + round(s.after_delay_s * rate):
         after = (n - na, n)
-    pool = max(jump, round(s.edge_pool_s * rate))
+    pool = max(jump, round(EDGE_POOL_S * rate))
     pool = min(pool, (off - on) // 4 - settle)
     return _Windows((on - nb, on), (off - nss, off), after, settle, jump, pool), ""
 
