@@ -1266,6 +1266,7 @@ def test_scheduler_address_that_is_not_one_exits_2(goods, tmp_path):
 
 def test_unreachable_scheduler_exits_2_naming_it(goods, tmp_path):
     import dask
+    import distributed  # noqa: F401  (its defaults must be in the config before set() saves it)
 
     with dask.config.set({"distributed.comm.timeouts.connect": "1s"}):
         outcome = run_cli(
