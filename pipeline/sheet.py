@@ -102,13 +102,25 @@ def read_sheet(path: str | Path) -> Sheet:
 
 
 def _parse(text: str, where: str) -> pd.DataFrame:
+    import csv
     from io import StringIO
 
+    if not text.strip():
+        raise SheetError(f"{where}: not a readable CSV table (the sheet is empty)")
+    body = text.lstrip("\r\n")
+    try:
+        dialect = csv.Sniffer().sniff(body[:4096])
+    except csv.Error:
+        dialect = csv.excel
+    names = [h.strip() for h in next(csv.reader(StringIO(body), dialect))]
+    twice = sorted({n for n in names if n and names.count(n) > 1})
+    if twice:
+        raise SheetError(f"{where}: column {twice[0]!r} appears twice in the header")
     try:
         return pd.read_csv(
-            StringIO(text), dtype=str, keep_default_na=False, sep=None, engine="python"
+            StringIO(body), dtype=str, keep_default_na=False, sep=None, engine="python"
         )
-    except (pd.errors.ParserError, pd.errors.EmptyDataError, ValueError) as exc:
+    except (pd.errors.ParserError, pd.errors.EmptyDataError, ValueError, csv.Error) as exc:
         raise SheetError(f"{where}: not a readable CSV table ({exc})") from None
 
 

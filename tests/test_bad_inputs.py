@@ -947,21 +947,11 @@ USAGE_ERRORS = [
         sheet(""),
         r"\S*/sheet\.csv: not a readable CSV table.*",
         id="sheet-empty",
-        marks=pytest.mark.xfail(
-            strict=True,
-            reason="sheet.py _parse: an empty sheet raises csv.Error ('Could not determine "
-            "delimiter'), not caught: a traceback instead of exit 2",
-        ),
     ),
     pytest.param(
         sheet("file,condition, condition\ngood_a.nwb,ctrl,drug\n"),
         r"\S*/sheet\.csv: .*column 'condition' .*twice.*",
         id="sheet-duplicate-column-names",
-        marks=pytest.mark.xfail(
-            strict=True,
-            reason="sheet.py read_sheet: 'condition' and ' condition' become one name after "
-            "strip(); to_dict keeps one of them silently (pandas UserWarning only)",
-        ),
     ),
     pytest.param(
         lambda tmp, g: ["--sheet", str(tmp / "nowhere.csv")],

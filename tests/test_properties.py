@@ -500,11 +500,6 @@ SHEET_CELLS = st.one_of(
 )
 
 
-@pytest.mark.xfail(
-    strict=True,
-    reason="sheet.py _parse: an empty sheet (or blank lines only) raises csv.Error 'Could not "
-    "determine delimiter' from pandas' sniffer, which is not caught (a traceback, not SheetError)",
-)
 @settings(FAST, max_examples=80)
 @given(
     rows=st.lists(st.lists(SHEET_CELLS, max_size=4), max_size=6),
