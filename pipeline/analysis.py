@@ -121,7 +121,7 @@ def _analyse(
         fit_spiking(recording, epochs, config.spikes, exclude=excluded) if by_qc else spikes_all
     )
     for row in sweep_rows:
-        reason = excluded.get(row["sweep"], "")
+        reason = excluded.get(row["sweep"], "") or _nothing_measured(row)
         row["used"] = not reason
         row["excluded_because"] = reason
     cell_row = {
@@ -179,6 +179,14 @@ def _sweep_rows(recording, epochs, fits, spikes) -> list[dict[str, Any]]:
         row.update({k: v for k, v in spike_by.get(sweep.number, {}).items() if k != "sweep"})
         rows.append(row)
     return rows
+
+
+def _nothing_measured(row: dict[str, Any]) -> str:
+    """Why a usable step gave no value at all (neither passive nor spiking), or ''."""
+    if _finite(row.get("ss_dv_mv")) or _finite(row.get("spike_count")):
+        return ""
+    why = "; ".join(r for r in (row.get("fit_reason"), row.get("spiking_reason")) if r)
+    return f"nothing could be measured: {why or 'no reason given'}"
 
 
 def _derived(sweep_rows: list[dict[str, Any]]) -> dict[str, Any]:
