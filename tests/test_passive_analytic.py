@@ -420,3 +420,129 @@ def test_one_hyperpolarizing_sweep_and_a_slow_membrane():
     assert cf_slow.status == "ok"
     assert math.isnan(cf_slow.tau_s) or cf_slow.tau_s > 0.5
     assert "steady state not reached" in cf_slow.sweeps[0].reason
+
+
+# --------------------------------------------------------------------------- dendrite-dominated
+
+
+def _stehfest(n: int = 14) -> np.ndarray:
+    """Gaver-Stehfest weights (Stehfest 1970, Commun ACM 13:47-49; from memory)."""
+    w = np.zeros(n)
+    for k in range(1, n + 1):
+        for j in range((k + 1) // 2, min(k, n // 2) + 1):
+            w[k - 1] += (
+                j ** (n // 2)
+                * math.factorial(2 * j)
+                / (
+                    math.factorial(n // 2 - j)
+                    * math.factorial(j)
+                    * math.factorial(j - 1)
+                    * math.factorial(k - j)
+                    * math.factorial(2 * j - k)
+                )
+            )
+        w[k - 1] *= (-1) ** (k + n // 2)
+    return w
+
+
+@pytest.mark.parametrize("rho", [0.0, 0.5, 3.0, 20.0])
+def test_soma_cylinder_response_inverts_its_laplace_transform(rho):
+    from pipeline.fitters.cell import soma_cylinder_response
+
+    # V(s) G_s = 1 / (s ((1 + s tau) + rho sqrt(1 + s tau))): soma plus semi-infinite cylinder,
+    # uniform membrane (Rall 1960; Jack, Noble & Tsien 1975; from memory), inverted numerically
+    tau, t = 0.02, np.array([1e-4, 5e-4, 2e-3, 1e-2, 4e-2])
+    w, ln2 = _stehfest(), math.log(2.0)
+    s = np.outer(ln2 / t, np.arange(1, w.size + 1))
+    q = np.sqrt(1 + s * tau)
+    numeric = ln2 / t * ((1 / (s * (q * q + rho * q))) @ w)
+    assert soma_cylinder_response(t, tau, rho) == pytest.approx(numeric, rel=2e-4)
+    # steady state 1 / (1 + rho): soma and cylinder conductances in parallel
+    assert soma_cylinder_response(np.array([50 * tau]), tau, rho)[0] == pytest.approx(
+        1 / (1 + rho), rel=1e-4
+    )
+
+
+def test_soma_cylinder_response_limits():
+    from pipeline.fitters.cell import soma_cylinder_response
+
+    tau = 0.02
+    t = np.array([1e-3, 5e-3, 2e-2])
+    # a lone soma charges as 1 - exp(-t/tau) (Johnston & Wu 1995, ch. 2)
+    assert soma_cylinder_response(t, tau, 0.0) == pytest.approx(-np.expm1(-t / tau), rel=1e-12)
+    # a cylinder without soma: G_inf V = erf(sqrt(t/tau)) (Rall 1969; Jack, Noble & Tsien 1975),
+    # here less the soma's share, ~1/rho once the soma has charged
+    rho = 1e4
+    got = rho * soma_cylinder_response(t, tau, rho)
+    assert got == pytest.approx([math.erf(math.sqrt(x / tau)) for x in t], abs=2 / rho)
+    # continuous at the edge, rising as t/tau while the soma charges alone
+    early = soma_cylinder_response(np.array([0.0, 1e-11]), tau, 20.0)
+    assert early[0] == 0.0 and early[1] == pytest.approx(1e-11 / tau, rel=1e-3)
+
+
+def ball_and_stick(t: np.ndarray, rho: float, el: float, modes: int = 400) -> np.ndarray:
+    """Soma step response of a uniform soma + finite sealed cylinder, in units of 1/G_inf.
+
+    Residues of 1 / (p (eps q^2 + q tanh(L q))), q = sqrt(1 + p), p = s tau, eps = 1/rho: the
+    uniform mode exp(-T) and modes exp(-(1 + a_n^2) T) with tan(a_n L) = -eps a_n (the soma
+    eigenvalue equation of Rall 1969, Biophys J 9:1483-1508; derived here, t in units of tau).
+    """
+    from scipy.optimize import brentq
+
+    eps = 1.0 / rho
+    roots = []
+    for n in range(1, modes + 1):
+        lo, hi = (n - 0.5) * math.pi / el, n * math.pi / el
+        g = lambda a: math.sin(a * el) + eps * a * math.cos(a * el)  # noqa: E731
+        roots.append(brentq(g, lo + 1e-12, hi))
+    a2 = np.array(roots) ** 2
+    tt = np.clip(t, 0.0, None)[:, None]
+    fast = 2 * np.exp(-(1 + a2) * tt) / ((1 + a2) * (eps + el * (1 + eps**2 * a2)))
+    return 1 / (eps + math.tanh(el)) - np.exp(-tt[:, 0]) / (eps + el) - fast.sum(axis=1)
+
+
+def test_ball_and_stick_reference_starts_at_zero():
+    # the eigen-expansion must give 0 at the edge and the cable's input conductance at the end
+    got = ball_and_stick(np.array([0.0, 200.0]), rho=16.0, el=0.65)
+    assert abs(got[0]) < 1e-4 * got[1]
+    assert got[1] == pytest.approx(1 / (1 / 16 + math.tanh(0.65)), rel=1e-9)
+
+
+def dendritic_cell(seed: int, r_err: float, noise: float = 0.15e-3, rho: float = 16.0):
+    """A soma on a dendrite of electrotonic length 0.65 carrying 94% of the input conductance
+    (rho = 16: like the demo day's dendritic cells), tau 25 ms, Rin 236 Mohm, with white noise
+    and a bridge error through a 40 us electrode filter."""
+    rng = np.random.default_rng(seed)
+    tau, el, rin = 0.025, 0.65, 236e6
+    t = np.arange(N) / RATE
+    unit = ball_and_stick(np.arange(N) / RATE / tau, rho, el)
+    unit = unit / unit[-1]  # response per unit current scaled to Rin at steady state
+    on, off = np.zeros(N), np.zeros(N)
+    on[ON:], off[OFF:] = unit[: N - ON], unit[: N - OFF]
+    traces = []
+    for a in AMPS:
+        v = VREST + a * rin * (on - off) + bridge(a, r_err, tau_e=40e-6)
+        traces.append(v + noise * rng.standard_normal(N))
+    del t
+    return cell(traces), rin
+
+
+def test_dendrite_dominated_cell_noiseless_bridge():
+    # no polynomial in t follows the sqrt(t) rise back to the edge: the quadratic alone reads
+    # ~+6 Mohm of membrane as bridge error here; the soma-cylinder extrapolation gets within 1
+    rec, rin = dendritic_cell(0, 11e6, noise=0.0)
+    cf = fit_cell(rec, epochs=epochs())
+    assert cf.bridge_method == "cable"
+    assert cf.bridge_error_ohm == pytest.approx(11e6, abs=1e6)
+    assert cf.rin_ohm == pytest.approx(rin, rel=0.005)
+    plain = [f.onset_jump_v / f.step_a for f in cf.sweeps]
+    assert np.median(plain) > 14e6  # what the quadratic per edge says: the bias fixed above
+
+
+@pytest.mark.parametrize("seed", [3, 4])
+def test_dendrite_dominated_cell_with_noise(seed):
+    rec, rin = dendritic_cell(seed, 15e6)
+    cf = fit_cell(rec, epochs=epochs())
+    # 14 edges of <= 100 pA at 0.15 mV RMS: the pooled extrapolation's SD is ~1.5 Mohm
+    assert cf.bridge_error_ohm == pytest.approx(15e6, abs=4e6)
+    assert cf.rin_ohm == pytest.approx(rin, rel=0.02)

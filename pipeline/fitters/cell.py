@@ -191,6 +191,8 @@ def _bridge(fits: list[SweepFit], s: PassiveSettings, notes: list[str]) -> tuple
 
 # cable-to-soma conductance ratios tried for the soma-cylinder extrapolation (0: no cable)
 _RHO_GRID = np.concatenate(([0.0], np.geomspace(0.1, 1000.0, 61)))
+# chi^2 gain over a lone soma that calls for the cable: the 0.001 point of chi^2 with 1 dof
+_CABLE_GAIN = 10.83
 
 
 def soma_cylinder_response(t: np.ndarray, tau: float, rho: float) -> np.ndarray:
@@ -279,66 +281,81 @@ def _pooled_misfit(design: np.ndarray, ybar: np.ndarray) -> tuple[np.ndarray, fl
     return coef, float(resid @ resid)
 
 
-def _cable_shape(e: _Edges, keep: np.ndarray, tau: float):
-    """Pooled response per unit current of the kept edges and the information-criterion winner
-    among the quadratic, the curved (t^1.5) and the soma-cylinder extrapolation: returns its
-    name and, for the soma-cylinder, the membrane part of the fitted shape per unit current
-    (ohm, at the edge samples)."""
+@dataclass(frozen=True)
+class _CableFit:
+    """The soma-cylinder fit of a cell's pooled early responses."""
+
+    shape: np.ndarray  # membrane part per unit current at the edge samples, ohm
+    rho: float  # cable-to-soma conductance ratio of the best fit
+    gain: float  # chi^2 the best rho gains over a lone soma (rho = 0)
+    lead: float  # AIC by which it beats the best polynomial in t (negative: it loses)
+    jump_se: float  # SE of the pooled jump per unit current, ohm (noise and rho's profile)
+
+
+def _cable_shape(e: _Edges, keep: np.ndarray, tau: float) -> _CableFit:
+    """Fit the current-weighted mean response of the kept edges (per unit current) with the
+    soma-cylinder shape over a grid of rho, and score it against the quadratic and the curved
+    (t^1.5) polynomial by AIC, the noise taken from the edges' scatter about their mean."""
     dI, w, y, t = e.di[keep], e.w[keep], e.y[keep], e.t
     big_w = float(w @ dI**2)
     ybar = (w * dI) @ y / big_w
-    # noise of ybar from the scatter of the edges about the common shape (weights' units)
     dof = (dI.size - 1) * t.size
     s2 = float(np.sum(w[:, None] * (y - dI[:, None] * ybar) ** 2)) / dof if dof > 0 else 0.0
-    scale = big_w / s2 if s2 > 0 else 1.0
+    scale = big_w / s2 if s2 > 0 else 1.0  # chi^2 per unit residual sum of squares of ybar
     x = t / t[-1]  # unit-scaled powers keep the designs well conditioned
     one = np.ones_like(x)
-    scores = {}
-    for name, cols, k in (("quadratic", [x, x**2], 3), ("curved", [x, x**1.5, x**2], 4)):
-        coef, ssr = _pooled_misfit(np.column_stack([one, *cols]), ybar)
-        scores[name] = (scale * ssr + 2 * k, None)
+    poly = math.inf
+    for cols, k in (([x, x**2], 3), ([x, x**1.5, x**2], 4)):
+        poly = min(poly, scale * _pooled_misfit(np.column_stack([one, *cols]), ybar)[1] + 2 * k)
     # every rho at once: J + A u_rho(t) is a straight line in u, fitted in closed form
     u = _cylinder_table(t, tau)
-    du = u - u.mean(axis=1, keepdims=True)
+    mean_u = u.mean(axis=1)
+    du = u - mean_u[:, None]
     dy = ybar - ybar.mean()
-    amp = du @ dy / np.einsum("ij,ij->i", du, du)
-    ssr_all = dy @ dy - amp * (du @ dy)
-    k = int(np.argmin(ssr_all))
-    best = (float(ssr_all[k]), amp[k] * u[k])
-    scores["cable"] = (scale * best[0] + 2 * 3, best[1])  # J, amplitude and rho
-    # the physical shape (a lone soma at rho = 0) unless a polynomial fits clearly better
-    # (AIC lower by more than 2: Burnham & Anderson 2002, Model Selection, sec. 2.6; from memory)
-    poly = min(scores["quadratic"][0], scores["curved"][0])
-    if scores["cable"][0] <= poly + 2.0:
-        return "cable", best[1]
-    return min(scores, key=lambda k: scores[k][0]), None
+    suu = np.einsum("ij,ij->i", du, du)
+    amp = du @ dy / suu
+    chi2 = scale * (dy @ dy - amp * (du @ dy))
+    jump = ybar.mean() - amp * mean_u
+    k = int(np.argmin(chi2))
+    # profile over rho (chi^2 within 1 of the best) in quadrature with the linear fit's SE
+    near = jump[chi2 <= chi2[k] + 1.0]
+    se_lin = math.sqrt((1.0 / t.size + mean_u[k] ** 2 / suu[k]) / scale)
+    se = math.hypot(se_lin, (near.max() - near.min()) / 2)
+    return _CableFit(
+        amp[k] * u[k], float(_RHO_GRID[k]), float(chi2[0] - chi2[k]), poly - chi2[k] - 6, se
+    )
 
 
 def _cable_bridge(fits: list[SweepFit], tau: float) -> _Slope | None:
     """Bridge error (ohm) from the soma-cylinder extrapolation of the pooled early responses,
-    or None when a polynomial in t extrapolates them as well (a soma-dominated cell) or there
-    is too little to pool.
+    or None when the responses do not call for a cable (a lone soma fits as well, or a
+    polynomial in t fits better) or there is too little to pool.
 
     All edges of a linear membrane share one response shape, scaled by the current step; it is
     fitted once on their current-weighted mean (the shape's sqrt(t) rise, which no polynomial
     in t follows back to the edge, comes from a dendrite charging through the soma). Each
     edge's jump is then its mean excess over that shape, and the bridge error the robust slope
-    of the jumps on the current; edges it rejects are left out of the shape, once.
+    of the jumps on the current; edges it rejects are left out of the shape, once. The cable is
+    used when it beats a lone soma by a likelihood-ratio test at p < 0.001 (chi^2 gain > 10.8,
+    one parameter) and no polynomial beats it by more than 2 in AIC (Burnham & Anderson 2002,
+    Model Selection and Multimodel Inference, sec. 2.6; from memory). The SE adds the fitted
+    shape's own uncertainty, which every edge shares, to the slope's.
     """
     e = _edges(fits)
     if e is None or not (math.isfinite(tau) and tau > 0):
         return None
     keep = np.ones(e.di.size, dtype=bool)
     for _ in range(2):
-        name, shape = _cable_shape(e, keep, tau)
-        if name != "cable":
+        fit = _cable_shape(e, keep, tau)
+        if fit.gain <= _CABLE_GAIN or fit.lead < -2.0:
             return None
-        jumps = (e.y - e.di[:, None] * shape[None, :]).mean(axis=1)
+        jumps = (e.y - e.di[:, None] * fit.shape[None, :]).mean(axis=1)
         slope, inside = _robust_origin_fit(e.di, jumps)
         if inside.all() or inside.sum() < 3 or (inside == keep).all():
-            return slope
+            break
         keep = inside
-    return slope
+    se = math.hypot(slope.se, fit.jump_se) if math.isfinite(slope.se) else fit.jump_se
+    return _Slope(slope.value, se, slope.dof)
 
 
 def _pick_small(hyper: list[SweepFit], dv_m: np.ndarray, s: PassiveSettings) -> list[int]:
