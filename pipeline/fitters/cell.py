@@ -34,7 +34,7 @@ from collections.abc import Mapping, Sequence
 from dataclasses import dataclass
 
 import numpy as np
-from scipy import special, stats
+from scipy import special  # not scipy.stats: its import alone costs ~0.3 s per process
 
 from pipeline.fitters.results import NAN, CellFit, SweepFit
 from pipeline.fitters.sweep import PassiveSettings
@@ -85,7 +85,7 @@ def _curved_slope(x: np.ndarray, y: np.ndarray, p_max: float) -> tuple[_Slope, i
             break
         cand, ssr_d = _polynomial_at_rest(x, y, d)
         f = (ssr - ssr_d) / (ssr_d / cand.dof) if ssr_d > 0 else math.inf
-        if stats.f.sf(f, 1, cand.dof) >= p_max:
+        if _f_sf(1, cand.dof, f) >= p_max:
             break
         best, ssr, degree = cand, ssr_d, d
     return best, degree
@@ -109,11 +109,19 @@ def _robust_origin_slope(x: np.ndarray, y: np.ndarray) -> _Slope:
     return _robust_origin_fit(x, y)[0]
 
 
+def _f_sf(dfn: int, dfd: int, f: float) -> float:
+    """Upper tail of the F distribution (as scipy.stats.f.sf, without importing scipy.stats);
+    a statistic at or below 0 (rounding) has p = 1."""
+    if f <= 0:
+        return 1.0
+    return 0.0 if math.isinf(f) else float(special.fdtrc(dfn, dfd, f))
+
+
 def _interval(value: float, se: float, dof: int, level: float) -> tuple[float, float]:
     """Two-sided t interval (normal when dof is 0 and se is known)."""
     if not (math.isfinite(value) and math.isfinite(se)):
         return (NAN, NAN)
-    q = stats.t.ppf(0.5 + level / 2, dof) if dof > 0 else stats.norm.ppf(0.5 + level / 2)
+    q = special.stdtrit(dof, 0.5 + level / 2) if dof > 0 else special.ndtri(0.5 + level / 2)
     return (value - q * se, value + q * se)
 
 
@@ -167,7 +175,7 @@ def _bridge(fits: list[SweepFit], s: PassiveSettings, notes: list[str]) -> tuple
     edges = 2 * sum(1 for f in fits if f.jump_dof > 0)
     curved = False
     if edges and dof > edges and ssr > 0:
-        curved = bool(stats.f.sf((drop / edges) / (ssr / dof), edges, dof) < s.jump_curvature_p)
+        curved = bool(_f_sf(edges, dof, (drop / edges) / (ssr / dof)) < s.jump_curvature_p)
     elif edges and ssr == 0 and drop > 0:
         curved = True
     x, y = [], []

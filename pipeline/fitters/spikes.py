@@ -18,8 +18,6 @@ from dataclasses import dataclass, field, fields, replace
 from typing import NamedTuple
 
 import numpy as np
-from scipy.ndimage import maximum_filter1d
-from scipy.signal import savgol_filter
 
 from pipeline.recording import Recording, Sweep
 from pipeline.steps import StepEpoch
@@ -349,6 +347,8 @@ def _locate(
     refr_n = int(round(s.refractory_s * rate))
     guard_peak = _window_samples(s, rate) // 2 + 1  # the smoothed zero may lead the raw peak
     # vectorised pre-filter (noise makes many candidates): the largest V within max_rise_s ahead
+    from scipy.ndimage import maximum_filter1d  # heavy imports only where they are used
+
     ahead = maximum_filter1d(v, size=rise_n, origin=-(rise_n // 2), mode="nearest")
     ok = (ahead[cand] - v[cand] >= s.min_amplitude_v) & (ahead[cand] >= s.min_peak_v)
     found: list[_Found] = []
@@ -418,6 +418,8 @@ def _detect(
     """
     dt = 1.0 / rate
     w = _window_samples(settings, rate)
+    from scipy.signal import savgol_filter
+
     dvdt = savgol_filter(v, w, 2, deriv=1, delta=dt)  # exact for quadratic onsets
     guard_pre = w // 2 + 2  # the smoothing spreads an edge jump this far back
     guard = int(round(settings.edge_guard_s * rate))
