@@ -133,7 +133,6 @@ def run_batch(
     figures: bool | None = None,
     force: bool = False,
     progress: bool | None = None,
-    quiet: bool = False,
 ) -> BatchResult:
     """Analyse a day's recordings and write the tables, figures, page and run record.
 
@@ -157,8 +156,6 @@ def run_batch(
         Allow writing into a folder that holds another run's outputs.
     progress : bool, optional
         Show a progress bar; default: when stderr is a terminal.
-    quiet : bool
-        Log warnings and errors only.
 
     Returns
     -------
@@ -175,7 +172,7 @@ def run_batch(
     the_sheet = read_sheet(sheet_path) if sheet_path is not None else None
     files = discover_inputs(inputs, exclude=outdir)
     _prepare_outdir(outdir, inputs_given, config, force)
-    handler = _log_to_file(outdir, quiet)
+    handler = _log_to_file(outdir)
     try:
         log.info("patchbatch %s: %d input file(s) -> %s", __version__, len(files), outdir)
         try:
@@ -566,7 +563,8 @@ def _sha_or_none(path: Path) -> str | None:
         return None
 
 
-def _log_to_file(outdir: Path, quiet: bool) -> logging.Handler:
+def _log_to_file(outdir: Path) -> logging.Handler:
+    """The run's log file: every message, whatever the console shows."""
     logger = logging.getLogger("patchbatch")
     logger.setLevel(logging.INFO)
     handler = logging.FileHandler(outdir / "patchbatch.log", encoding="utf-8")

@@ -98,7 +98,6 @@ def _run(args: argparse.Namespace) -> int:
             figures=False if args.no_figures else None,
             force=args.force,
             progress=None if not args.quiet else False,
-            quiet=args.quiet,
         )
     finally:
         logging.getLogger("patchbatch").removeHandler(console)
