@@ -180,7 +180,7 @@ def run_batch(
                 files, config, outdir, figures, workers, scheduler, progress
             )
             run = {"inputs_given": inputs_given, "started": started, "hashes": hashes, **stats}
-            return _assemble(files, results, run, config, outdir, the_sheet)
+            return _assemble(files, results, run, config, outdir, the_sheet, figures)
         except OSError as exc:  # a full disk, a folder gone: say where, keep what is cached
             where = exc.filename or outdir
             raise OutputFolderError(
@@ -415,7 +415,7 @@ def _report_one(result: dict[str, Any], bar) -> None:
         bar.update(1)
 
 
-def _assemble(files, results, run, config, outdir, sheet):
+def _assemble(files, results, run, config, outdir, sheet, figures=True):
     from pipeline.report import page, tables
 
     cell_rows, sweep_rows, spike_rows, errors, fig_map = [], [], [], [], {}
@@ -457,7 +457,12 @@ def _assemble(files, results, run, config, outdir, sheet):
     info = _run_info(files, results, run, config, errors, warnings, sheet, seconds)
     t0 = time.perf_counter()
     page.write_page(
-        outdir, cells, run_info=info, figures=fig_map, group_column=config.report.group_column
+        outdir,
+        cells,
+        run_info=info,
+        figures=fig_map,
+        group_column=config.report.group_column,
+        plots=figures,
     )
     seconds["page"] = time.perf_counter() - t0
     info["finished"] = datetime.now(UTC).isoformat()

@@ -712,6 +712,34 @@ def test_supported_extensions():
     assert list(exts) == sorted(exts)
 
 
+def test_kept_neo_extensions_are_all_known_to_the_installed_neo():
+    # the folder search uses a list kept in the code (so it never imports neo); every entry
+    # must be an extension the installed neo really reads, and none of the excluded ones
+    from pipeline.readers import _NEO_EXCLUDED, _NEO_KNOWN, _neo_extensions
+
+    assert _NEO_KNOWN <= set(_neo_extensions())
+    assert not {e.lstrip(".") for e in _NEO_KNOWN} & _NEO_EXCLUDED
+
+
+def test_folder_search_and_nwb_reading_do_not_import_neo_or_matplotlib(tmp_path):
+    import subprocess
+    import sys
+
+    (tmp_path / "day").mkdir()
+    _standard_file(tmp_path / "day" / "cell.nwb", n_sweeps=1)
+    code = (
+        "import sys\n"
+        "from pipeline.batch import discover_inputs\n"
+        "from pipeline.readers import open_recordings\n"
+        f"files = discover_inputs([{str(tmp_path / 'day')!r}])\n"
+        "assert len(files) == 1, files\n"
+        "open_recordings(files[0])\n"
+        "print(sorted(m for m in ('neo', 'matplotlib') if m in sys.modules))\n"
+    )
+    out = subprocess.run([sys.executable, "-c", code], capture_output=True, text=True, check=True)
+    assert out.stdout.strip() == "[]"
+
+
 def test_file_of_the_wrong_format_is_corrupt_not_a_crash(tmp_path):
     nix = _write_neo_nix(_neo_block(channels=1), tmp_path / "a.nix")
     nwb = _standard_file(tmp_path / "b.nwb", n_sweeps=1)

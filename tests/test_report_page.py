@@ -203,3 +203,31 @@ def test_page_without_cells_or_summary_columns(tmp_path):
         render_page(fake_cells(), run_info={}, figures={}),
     )
     assert len(embedded) == 1 and _png_size(base64.b64decode(embedded[0]))[1] > 100
+
+
+def test_page_of_a_run_without_figures_has_no_plot_and_says_why():
+    text = render_page(fake_cells(), run_info={}, figures={}, plots=False)
+    assert "data:image/png" not in text
+    assert "this run drew no figures" in text
+    assert "Cells (9)" in text  # the table itself is all there
+
+
+def test_tables_only_run_never_imports_matplotlib(tmp_path):
+    # matplotlib costs ~0.5 s per process; a --no-figures run has no use for it
+    import subprocess
+    import sys
+
+    from day_factory import write_day
+
+    day = tmp_path / "day"
+    write_day(day, n_cells=1)
+    code = (
+        "import sys\n"
+        "from pipeline.batch import run_batch\n"
+        f"run_batch([{str(day)!r}], out={str(tmp_path / 'out')!r}, workers=1, figures=False,"
+        " progress=False)\n"
+        "print('matplotlib' in sys.modules)\n"
+    )
+    out = subprocess.run([sys.executable, "-c", code], capture_output=True, text=True, check=True)
+    assert out.stdout.strip().splitlines()[-1] == "False"
+    assert "drew no figures" in (tmp_path / "out" / "index.html").read_text(encoding="utf-8")

@@ -1,34 +1,43 @@
 """Report stage: tables (CSV, Parquet), per-cell figures, the day's page, the run record.
 
 Only reads results; never recomputes them. Every file is written atomically.
+
+The names below are loaded on first use (PEP 562): importing ``pipeline.report.atomic`` or
+``pipeline.report.tables`` must not import matplotlib, which a tables-only run never needs.
 """
 
-from pipeline.report.atomic import atomic_path, atomic_write_bytes, atomic_write_text
-from pipeline.report.figures import FigureSettings, cell_figure, figure_names, safe_name
-from pipeline.report.page import render_page, write_page
-from pipeline.report.tables import (
-    cells_frame,
-    read_table_csv,
-    spikes_frame,
-    sweeps_frame,
-    write_run_json,
-    write_tables,
-)
+from __future__ import annotations
 
-__all__ = [
-    "FigureSettings",
-    "atomic_path",
-    "atomic_write_bytes",
-    "atomic_write_text",
-    "cell_figure",
-    "cells_frame",
-    "figure_names",
-    "read_table_csv",
-    "render_page",
-    "safe_name",
-    "spikes_frame",
-    "sweeps_frame",
-    "write_page",
-    "write_run_json",
-    "write_tables",
-]
+import importlib
+from typing import Any
+
+_WHERE = {
+    "atomic_path": "atomic",
+    "atomic_write_bytes": "atomic",
+    "atomic_write_text": "atomic",
+    "FigureSettings": "figures",
+    "cell_figure": "figures",
+    "figure_names": "figures",
+    "safe_name": "figures",
+    "render_page": "page",
+    "write_page": "page",
+    "cells_frame": "tables",
+    "read_table_csv": "tables",
+    "spikes_frame": "tables",
+    "sweeps_frame": "tables",
+    "write_run_json": "tables",
+    "write_tables": "tables",
+}
+
+__all__ = sorted(_WHERE)
+
+
+def __getattr__(name: str) -> Any:
+    module = _WHERE.get(name)
+    if module is None:
+        raise AttributeError(f"module {__name__!r} has no attribute {name!r}")
+    return getattr(importlib.import_module(f"{__name__}.{module}"), name)
+
+
+def __dir__() -> list[str]:
+    return sorted({*globals(), *_WHERE})

@@ -19,14 +19,10 @@ from typing import Any
 from urllib.parse import quote
 
 import jinja2
-import matplotlib
 import numpy as np
 import pandas as pd
-from matplotlib.backends.backend_agg import FigureCanvasAgg
-from matplotlib.figure import Figure
 
 from pipeline.report.atomic import atomic_write_text
-from pipeline.report.figures import EXCLUDED_COLOUR, FAIL_COLOUR, PASS_COLOUR
 from pipeline.report.tables import to_jsonable
 
 TEMPLATES = Path(__file__).parent / "templates"
@@ -196,6 +192,11 @@ def summary_png(
     order = [g for g in order if has_value[labels == g].any()] or order
     states = [_row_state(r) for r in cells.to_dict(orient="records")]
     passed = pd.Series([st == "pass" for st in states], index=cells.index)
+    # matplotlib only here: a tables-only run (no figures, no plots) never imports it
+    import matplotlib
+    from matplotlib.backends.backend_agg import FigureCanvasAgg
+    from matplotlib.figure import Figure
+
     rng = np.random.default_rng(0)  # fixed jitter: the page is identical run to run
     with matplotlib.rc_context({"text.parse_math": False, "font.size": 8}):
         fig = Figure(
@@ -216,6 +217,8 @@ def summary_png(
 def _strip_box(
     ax, values: pd.Series, labels: pd.Series, order: list[str], passed: pd.Series, rng
 ) -> None:
+    from pipeline.report.figures import EXCLUDED_COLOUR, FAIL_COLOUR, PASS_COLOUR
+
     positions = np.arange(len(order))
     boxes, box_pos = [], []
     for pos, group in zip(positions, order, strict=True):
@@ -283,12 +286,13 @@ def render_page(
     figures: Mapping[str, str],
     summary_columns: Sequence[str] = DEFAULT_SUMMARY,
     group_column: str | None = "condition",
+    plots: bool = True,
 ) -> str:
     """Render the day's page to a string (what :func:`write_page` writes).
 
     Parameters
     ----------
-    cells, run_info, figures, summary_columns, group_column
+    cells, run_info, figures, summary_columns, group_column, plots
         As for :func:`write_page`.
 
     Returns
@@ -296,7 +300,13 @@ def render_page(
     str
         The HTML document.
     """
-    png = summary_png(cells, summary_columns, group_column)
+    png = summary_png(cells, summary_columns, group_column) if plots else None
+    if png:
+        no_plot = ""
+    elif not plots:
+        no_plot = "No summary plot: this run drew no figures (--no-figures)."
+    else:
+        no_plot = "No summary plot: the table has none of the summary columns, or no cells."
     context = {
         "title": f"patchbatch day summary ({len(cells)} cells)",
         "caution": CAUTION,
@@ -306,6 +316,7 @@ def render_page(
         "finished": str(run_info.get("finished", "") or ""),
         "group_column": group_column if group_column and group_column in cells.columns else "",
         "summary_png": base64.b64encode(png).decode("ascii") if png else "",
+        "no_plot": no_plot,
         "table": _table(cells, figures, [c for c in (group_column, *summary_columns) if c]),
         "errors": _errors(run_info),
         "warnings": [str(w) for w in run_info.get("warnings") or ()],
@@ -331,6 +342,7 @@ def write_page(
     figures: Mapping[str, str],
     summary_columns: Sequence[str] = DEFAULT_SUMMARY,
     group_column: str | None = "condition",
+    plots: bool = True,
 ) -> Path:
     """Write ``index.html`` for the day into ``outdir`` (atomically).
 
@@ -351,6 +363,8 @@ def write_page(
     group_column : str or None
         Column that groups cells in the plots (e.g. ``condition`` from the sheet); one group
         when it is absent.
+    plots : bool
+        Draw the summary plots (matplotlib); False for a tables-only run, whose page says so.
 
     Returns
     -------
@@ -363,6 +377,7 @@ def write_page(
         figures=figures,
         summary_columns=summary_columns,
         group_column=group_column,
+        plots=plots,
     )
     out = Path(outdir)
     out.mkdir(parents=True, exist_ok=True)
