@@ -538,3 +538,129 @@ def test_slow_adapting_train_is_not_block():
     # the same silence after a fast burst (ISIs 10 ms) is block
     fast = train([0.11, 0.12, 0.13, 0.14])
     assert fast.block and math.isnan(fast.rate_hz)
+
+
+# ---------------------------------------------------------------- numpy stand-ins for scipy
+# The detector uses small numpy versions of three scipy functions (importing scipy.signal,
+# scipy.ndimage and scipy.stats costs ~1 s per worker process); scipy is the reference here.
+
+
+def _traces(rng: np.random.Generator, n: int) -> list[np.ndarray]:
+    """Random walks near rest, white noise, a constant, a quadratic and a step."""
+    t = np.arange(n) * DT
+    return [
+        V0 + np.cumsum(rng.normal(0.0, 2e-4, n)),
+        rng.normal(0.0, 1.0, n),
+        np.full(n, V0),
+        V0 + 3e4 * (t - t[n // 2]) ** 2,
+        np.where(np.arange(n) < n // 2, V0, V0 + 0.02),
+    ]
+
+
+@pytest.mark.parametrize(
+    ("n", "window", "order"),
+    [(4000, 5, 2), (4000, 11, 2), (500, 9, 3), (200, 3, 1), (5, 5, 2), (7, 5, 2), (3, 3, 2)],
+)
+def test_savgol_derivative_matches_scipy(n, window, order):
+    # scipy.signal.savgol_filter documents mode='interp' (its default): a least-squares
+    # polynomial of degree polyorder through each window, and for the window_length // 2
+    # samples at either end the polynomial fitted to the first or last window_length samples
+    from scipy.signal import savgol_filter
+
+    from pipeline.fitters.spikes import savgol_derivative
+
+    rng = np.random.default_rng(n + window + order)
+    for v in _traces(rng, n):
+        got = savgol_derivative(v, window, order, DT)
+        want = savgol_filter(v, window, order, deriv=1, delta=DT)
+        # rounding: a few ulps of the samples' size per sample interval
+        np.testing.assert_allclose(got, want, rtol=1e-12, atol=1e-12 * np.abs(v).max() / DT)
+
+
+def test_savgol_derivative_is_exact_on_a_quadratic():
+    from pipeline.fitters.spikes import savgol_derivative
+
+    t = np.arange(50) * DT
+    v = V0 + 2.0 * t + 3e4 * t**2
+    np.testing.assert_allclose(savgol_derivative(v, 7, 2, DT), 2.0 + 6e4 * t, rtol=1e-9)
+
+
+@pytest.mark.parametrize(("n", "size"), [(3000, 250), (3000, 1), (3000, 2), (40, 100), (1, 3)])
+def test_max_ahead_matches_scipy(n, size):
+    # scipy.ndimage.maximum_filter1d with origin=-(size // 2) puts the window at [i, i + size)
+    # (origin shifts it; scipy.ndimage docs), mode='nearest' repeats the last sample past the end
+    from scipy.ndimage import maximum_filter1d
+
+    from pipeline.fitters.spikes import max_ahead
+
+    rng = np.random.default_rng(n + size)
+    for v in [*_traces(rng, n), np.round(rng.normal(0, 1, n))]:  # rounded: ties
+        at = np.unique(np.concatenate(([0, n - 1], rng.integers(0, n, 300))))
+        want = maximum_filter1d(v, size=size, origin=-(size // 2), mode="nearest")[at]
+        np.testing.assert_array_equal(max_ahead(v, at, size), want)
+    assert max_ahead(np.ones(5), np.array([], dtype=int), 3).size == 0
+
+
+@pytest.mark.parametrize(
+    ("x", "y"),
+    [
+        ([40e-12, 60e-12, 80e-12, 100e-12], [4.0, 9.0, 12.0, 17.0]),  # f-I like scales
+        ([1.0, 2.0], [3.0, -1.0]),  # two points
+        ([1.0, 2.0, 3.0], [5.0, 5.0, 5.0]),  # flat
+        ([0.0, 1.0, 1.0, 2.0], [0.0, 2.0, 2.0, 4.0]),  # exact line with a repeat
+        ([1e6 + 1, 1e6 + 2, 1e6 + 4], [1.0, 2.0, 3.5]),  # far from the origin
+    ],
+)
+def test_least_squares_line_matches_scipy(x, y):
+    # scipy.stats.linregress: slope = ssxym / ssxm from np.cov(x, y, bias=1),
+    # intercept = mean(y) - slope * mean(x)
+    from scipy.stats import linregress
+
+    from pipeline.fitters.spikes import least_squares_line
+
+    want = linregress(x, y)
+    slope, intercept = least_squares_line(x, y)
+    assert slope == pytest.approx(want.slope, rel=1e-12)
+    assert intercept == pytest.approx(want.intercept, rel=1e-12, abs=1e-12 * max(map(abs, y)))
+
+
+def test_least_squares_line_matches_scipy_on_random_points():
+    from scipy.stats import linregress
+
+    from pipeline.fitters.spikes import least_squares_line
+
+    rng = np.random.default_rng(3)
+    for n in range(2, 30):
+        x, y = rng.normal(0, 1e-10, n), rng.normal(20, 5, n)
+        want = linregress(x, y)
+        slope, intercept = least_squares_line(x, y)
+        assert slope == pytest.approx(want.slope, rel=1e-12)
+        assert intercept == pytest.approx(want.intercept, rel=1e-12)
+
+
+def test_spiking_imports_no_scipy_signal_ndimage_or_stats():
+    # each of these costs 0.3-1 s per worker process; a fresh interpreter shows what is loaded
+    import subprocess
+    import sys
+
+    code = (
+        "import sys, numpy as np\n"
+        "from pipeline.fitters.spikes import fit_spiking\n"
+        "from pipeline.recording import Recording, Sweep\n"
+        "from pipeline.steps import StepEpoch\n"
+        "rate, v = 50000.0, np.full(40000, -0.065)\n"
+        "t = np.arange(v.size) / rate\n"
+        "for t0 in (0.2, 0.3, 0.4):\n"
+        "    v += 0.1 * np.exp(-((t - t0) ** 2) / (2 * 3e-4 ** 2))\n"
+        "fit = None\n"
+        "sweeps, eps = [], []\n"
+        "for k, amp in enumerate((20e-12, 40e-12, 60e-12)):\n"
+        "    sweeps.append(Sweep(voltage=v.copy(), current=None, rate=rate, number=k))\n"
+        "    eps.append(StepEpoch(k, True, 'step', '', 0.0, amp, 0.1, 0.6, 5000, 30000))\n"
+        "fit = fit_spiking(Recording('c', 'c.nwb', 'e0', tuple(sweeps)), eps)\n"
+        "assert fit.first_spike is not None and len(fit.fi_sweeps) == 3, fit\n"
+        "print(sorted(m for m in ('scipy.signal', 'scipy.ndimage', 'scipy.stats')"
+        " if m in sys.modules))\n"
+    )
+    out = subprocess.run([sys.executable, "-c", code], capture_output=True, text=True, check=True)
+    assert out.stdout.strip() == "[]"

@@ -12,6 +12,7 @@ SI units inside (V, A, s, Hz); ``*_row(s)`` methods give report units (mV, pA, m
 
 from __future__ import annotations
 
+import functools
 import math
 from collections.abc import Mapping, Sequence
 from dataclasses import dataclass, field, fields, replace
@@ -250,6 +251,110 @@ class SpikeFit:
         ]
 
 
+# ---------------------------------------------------------------- numerics
+# Small numpy versions of three scipy functions: importing scipy.signal (which pulls in
+# scipy.stats), scipy.ndimage and scipy.stats costs ~1 s per worker process, more than the
+# spiking analysis of a whole cell. tests/test_spikes.py checks them against scipy.
+
+
+@functools.lru_cache(maxsize=8)
+def _savgol_weights(window: int, order: int) -> np.ndarray:
+    """Weights ``m`` with ``m[p] @ y`` = first derivative (per sample) at sample ``p`` of the
+    least-squares polynomial of ``order`` through the ``window`` samples ``y``; read-only."""
+    x = np.arange(window) - window // 2  # centred powers keep the fit well conditioned
+    pinv = np.linalg.pinv(np.vander(x.astype(float), order + 1, increasing=True))
+    # d/dx sum_k a_k x^k = sum_k k a_k x^(k-1)
+    slope = np.vander(x.astype(float), order, increasing=True) * np.arange(1, order + 1)
+    m = slope @ pinv[1:]
+    m.setflags(write=False)
+    return m
+
+
+def savgol_derivative(v: np.ndarray, window: int, order: int, dt: float) -> np.ndarray:
+    """First derivative of ``v`` by a Savitzky-Golay filter.
+
+    The same definition as ``scipy.signal.savgol_filter(v, window, order, deriv=1, delta=dt)``
+    (its default ``mode='interp'``): each sample gets the slope of the least-squares polynomial
+    of degree ``order`` through the ``window`` samples centred on it, and the ``window // 2``
+    samples at each end the slope of the polynomial through the first or last ``window``.
+
+    Parameters
+    ----------
+    v : numpy.ndarray
+        Samples (e.g. V), at least ``window`` of them.
+    window : int
+        Odd window length, samples.
+    order : int
+        Polynomial degree, below ``window``.
+    dt : float
+        Sample interval, s.
+
+    Returns
+    -------
+    numpy.ndarray
+        dv/dt, units of ``v`` per s, same length as ``v``.
+    """
+    m, h, n = _savgol_weights(window, order), window // 2, v.size
+    out = np.empty(n)
+    out[h : n - h] = np.correlate(v, m[h], mode="valid")
+    out[:h] = m[:h] @ v[:window]
+    out[n - h :] = m[window - h :] @ v[n - window :]
+    out /= dt
+    return out
+
+
+def max_ahead(v: np.ndarray, at: np.ndarray, size: int) -> np.ndarray:
+    """Largest sample of ``v[i : i + size]`` (cut at the end of ``v``) for each index ``i``.
+
+    Equals ``scipy.ndimage.maximum_filter1d(v, size, origin=-(size // 2), mode='nearest')[at]``
+    (a window starting at the sample; past the end the last sample repeats), computed only at
+    the indices asked for.
+
+    Parameters
+    ----------
+    v : numpy.ndarray
+        Samples, e.g. V.
+    at : numpy.ndarray of int
+        Indices into ``v`` (0 <= i < v.size).
+    size : int
+        Window length, samples (>= 1).
+
+    Returns
+    -------
+    numpy.ndarray
+        One maximum per index, units of ``v``.
+    """
+    if at.size == 0:
+        return np.empty(0, dtype=v.dtype)
+    padded = np.append(v, v[-1])  # reduceat needs every bound below its array's length
+    bounds = np.empty(2 * at.size, dtype=np.intp)
+    bounds[0::2] = at
+    bounds[1::2] = np.minimum(at + size, v.size)
+    return np.maximum.reduceat(padded, bounds)[0::2]
+
+
+def least_squares_line(x: Sequence[float], y: Sequence[float]) -> tuple[float, float]:
+    """Slope and intercept of the ordinary least-squares line ``y = slope * x + intercept``.
+
+    The formulas of ``scipy.stats.linregress``: slope = cov(x, y) / var(x) (population
+    moments), intercept = mean(y) - slope * mean(x).
+
+    Parameters
+    ----------
+    x, y : sequence of float
+        At least two points, not all ``x`` equal.
+
+    Returns
+    -------
+    tuple of float
+        Slope (units of y per unit of x) and intercept (units of y).
+    """
+    x, y = np.asarray(x, dtype=float), np.asarray(y, dtype=float)
+    ssxm, ssxym, _, _ = np.cov(x, y, bias=True).flat
+    slope = ssxym / ssxm
+    return float(slope), float(np.mean(y) - slope * np.mean(x))
+
+
 # ---------------------------------------------------------------- detection
 
 
@@ -347,10 +452,8 @@ def _locate(
     refr_n = int(round(s.refractory_s * rate))
     guard_peak = _window_samples(s, rate) // 2 + 1  # the smoothed zero may lead the raw peak
     # vectorised pre-filter (noise makes many candidates): the largest V within max_rise_s ahead
-    from scipy.ndimage import maximum_filter1d  # heavy imports only where they are used
-
-    ahead = maximum_filter1d(v, size=rise_n, origin=-(rise_n // 2), mode="nearest")
-    ok = (ahead[cand] - v[cand] >= s.min_amplitude_v) & (ahead[cand] >= s.min_peak_v)
+    ahead = max_ahead(v, cand, rise_n)
+    ok = (ahead - v[cand] >= s.min_amplitude_v) & (ahead >= s.min_peak_v)
     found: list[_Found] = []
     resume = 0
     for c in cand[ok]:
@@ -418,9 +521,7 @@ def _detect(
     """
     dt = 1.0 / rate
     w = _window_samples(settings, rate)
-    from scipy.signal import savgol_filter
-
-    dvdt = savgol_filter(v, w, 2, deriv=1, delta=dt)  # exact for quadratic onsets
+    dvdt = savgol_derivative(v, w, 2, dt)  # exact for quadratic onsets
     guard_pre = w // 2 + 2  # the smoothing spreads an edge jump this far back
     guard = int(round(settings.edge_guard_s * rate))
     noise = _robust_sd(dvdt[: max(0, onset - guard_pre)])
@@ -651,10 +752,8 @@ def _fi_slope(depol: list[SweepSpiking], rheobase: float, settings: SpikeSetting
                 f"amplitudes before saturation or block, got {len(used)}"
             ),
         )
-    from scipy.stats import linregress  # heavy import; only the f-I fit needs it
-
-    fit = linregress([r.step_a for r in used], [r.rate_hz for r in used])
-    return float(fit.slope), float(fit.intercept), tuple(r.sweep for r in used), ""
+    slope, intercept = least_squares_line([r.step_a for r in used], [r.rate_hz for r in used])
+    return slope, intercept, tuple(r.sweep for r in used), ""
 
 
 def fit_spiking(
