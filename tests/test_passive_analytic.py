@@ -393,6 +393,40 @@ def test_fit_sweeps_then_summarize_equals_fit_cell():
     assert summarize_cell("c1", fits, PassiveSettings()) == fit_cell(rec, epochs=epochs())
 
 
+def test_charging_refit_from_a_measurement_equals_a_fresh_fit():
+    """fit_sweeps measures each trace once and redoes only the charging fit in its second pass:
+    that must equal fitting the sweep afresh with the second pass's settings."""
+    from pipeline.fitters.sweep import SweepMeasure, complete_sweep, measure_sweep
+
+    kw = dict(tau=TAU, tau_sag=0.08, kappa=0.5)
+    sagging = Sweep(rc_trace(-80e-12, shape=sag_shape, **kw) + bridge(-80e-12, 10e6), None, RATE, 0)
+    plain = noisy_cell(5).sweeps[1]
+    first = PassiveSettings()
+    for sw in (sagging, plain):
+        m = measure_sweep(sw, epoch(-80e-12), first)
+        assert isinstance(m, SweepMeasure)
+        for second in (
+            first,
+            replace(first, charging_model="exp+sag", fit_start_min_s=0.004),
+            replace(first, charging_model="exp"),
+            replace(first, charging_model="none"),
+        ):
+            assert complete_sweep(m, second) == fit_sweep(sw, epoch(-80e-12), second)
+        with pytest.raises(ValueError, match="beyond the fit"):
+            complete_sweep(m, replace(first, bin_s=1e-3))
+    # 'auto' on a sagging sweep is the exp+sag fit; on a plain one the exp fit
+    m_sag = measure_sweep(sagging, epoch(-80e-12), first)
+    m_plain = measure_sweep(plain, epoch(-80e-12), first)
+    assert m_sag.sagging and not m_plain.sagging
+    assert m_sag.same_charging(first, replace(first, charging_model="exp+sag"))
+    assert not m_sag.same_charging(first, replace(first, charging_model="exp"))
+    assert m_plain.same_charging(first, replace(first, charging_model="exp"))
+    assert not m_plain.same_charging(first, replace(first, fit_start_min_s=0.004))
+    # a depolarizing sweep is finished at once
+    up = measure_sweep(Sweep(rc_trace(40e-12), None, RATE, 0), epoch(40e-12), first)
+    assert complete_sweep(up, first) is up
+
+
 def test_drift_across_sweeps_is_taken_out_of_the_deflections():
     """A steady 0.5 mV/s baseline drift: 0.5 mV between the baseline and steady-state windows
     of every sweep (5% of a 10 mV deflection) unless corrected."""

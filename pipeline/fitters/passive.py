@@ -17,7 +17,13 @@ import numpy as np
 from pipeline.errors import RecordingError
 from pipeline.fitters.cell import summarize_cell
 from pipeline.fitters.results import CellFit, SweepFit
-from pipeline.fitters.sweep import PassiveSettings, fit_sweep
+from pipeline.fitters.sweep import (
+    PassiveSettings,
+    SweepMeasure,
+    complete_sweep,
+    fit_sweep,
+    measure_sweep,
+)
 from pipeline.recording import Recording, Sweep
 from pipeline.steps import StepEpoch, StepSettings
 
@@ -108,19 +114,26 @@ def fit_sweeps(
     )
     pilots = set(hyper[:3])
     skip = replace(settings, charging_model="none")
-    fits = [
-        fit_sweep(sw, ep, settings if k in pilots else skip) for k, (sw, ep) in enumerate(pairs)
-    ]
+    # traces are measured once; only the charging fit is redone in the second pass
+    measured = [measure_sweep(sw, ep, settings) for sw, ep in pairs]
+    fits = [complete_sweep(m, settings if k in pilots else skip) for k, m in enumerate(measured)]
     second = _second_pass_settings([fits[k] for k in pilots], settings) or settings
     for k in hyper:
-        if k not in pilots or second is not settings:
-            fits[k] = _refit(fits[k], *pairs[k], second)
+        m = measured[k]
+        if k in pilots and (second is settings or _same_fit(m, settings, second)):
+            continue  # the second pass would repeat the first
+        fits[k] = _refit(fits[k], m, second)
     return fits
 
 
-def _refit(first: SweepFit, sweep, epoch: StepEpoch, settings: PassiveSettings) -> SweepFit:
+def _same_fit(m: SweepFit | SweepMeasure, a: PassiveSettings, b: PassiveSettings) -> bool:
+    """True when the sweep's charging fit is the same under settings ``a`` and ``b``."""
+    return isinstance(m, SweepFit) or m.same_charging(a, b)
+
+
+def _refit(first: SweepFit, m: SweepFit | SweepMeasure, settings: PassiveSettings) -> SweepFit:
     """Second-pass fit of a sweep, keeping the fast time constant the first pass peeled."""
-    again = fit_sweep(sweep, epoch, settings)
+    again = complete_sweep(m, settings)
     return replace(again, tau_fast_s=first.tau_fast_s) if math.isnan(again.tau_fast_s) else again
 
 

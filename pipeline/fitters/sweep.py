@@ -30,7 +30,7 @@ import contextlib
 import functools
 import math
 import warnings
-from dataclasses import dataclass
+from dataclasses import dataclass, replace
 
 import numpy as np
 from scipy.optimize import OptimizeWarning, curve_fit
@@ -158,12 +158,17 @@ def clipped_runs(v: np.ndarray, min_run: int) -> list[tuple[int, int]]:
     with a real step; noise never does. Runs touching the sweep's ends, or entered or left by
     less than 1 nV (a noiseless simulated plateau reached asymptotically), are not counted.
     """
-    finite = v[np.isfinite(v)]
-    if finite.size == 0:
-        return []
+    top, bottom = v.max(), v.min()
+    if not (math.isfinite(top) and math.isfinite(bottom)):  # NaN or inf: the finite extremes
+        finite = v[np.isfinite(v)]
+        if finite.size == 0:
+            return []
+        top, bottom = finite.max(), finite.min()
     runs = []
-    for extreme in (finite.max(), finite.min()):
+    for extreme in (top, bottom):
         at = np.flatnonzero(v == extreme)  # few samples unless clipped
+        if at.size < min_run:
+            continue
         breaks = np.flatnonzero(np.diff(at) > 1)
         starts = np.concatenate(([at[0]], at[breaks + 1]))
         stops = np.concatenate((at[breaks], [at[-1]])) + 1
@@ -679,9 +684,10 @@ def _edge_jumps(
     spiking = float(np.max(v[on:off])) - top > _SPIKE_V
     nss = w.ss[1] - w.ss[0]
     pre = _edge_level(v, off, -nss, nss, degree=1)
-    x = np.arange(nss) - (nss - 1) / 2
+    x = np.arange(nss) - (nss - 1) / 2  # centred: the least-squares line is mean + slope * x
     ss = v[slice(*w.ss)]
-    steady = float(np.std(ss - np.polyval(np.polyfit(x, ss, 1), x))) <= 2.0 * rms + 1e-9
+    line = ss.mean() + (float(x @ ss) / float(x @ x)) * x  # closed form: polyfit is 20x slower
+    steady = float(np.std(ss - line)) <= 2.0 * rms + 1e-9
     j: dict = {}
     drop = ssr = dof = 0.0
     for name, edge, level in (("onset", on, base), ("offset", off, pre)):
@@ -725,6 +731,65 @@ def fit_sweep(sweep: Sweep, epoch: StepEpoch, settings: PassiveSettings) -> Swee
     ``sag_ratio = (V_peak - V_ss) / (V_peak - V_base)``, 0 = no sag, with the bridge jump removed
     from the peak deflection (*common practice* definition, one of several in use).
     """
+    return complete_sweep(measure_sweep(sweep, epoch, settings), settings)
+
+
+@dataclass(frozen=True)
+class SweepMeasure:
+    """A hyperpolarizing sweep measured up to its charging-curve fit.
+
+    What :func:`complete_sweep` needs to fit the charging curve, so that a cell's second pass
+    (other ``fit_start_min_s`` or ``charging_model``) re-reads no trace. Times in s from the
+    sweep start, voltages in V.
+    """
+
+    settings: PassiveSettings  # those it was measured with
+    head: dict  # SweepFit fields known before any window is measured
+    fit: dict  # SweepFit fields measured so far
+    reasons: tuple[str, ...]  # why some of them are NaN
+    t: np.ndarray  # bin centres over the step from just after the onset settling, s
+    y: np.ndarray  # bin means, V (hum removed)
+    r: np.ndarray  # membrane response normalised to its peak (bridge jump removed)
+    i_peak: int  # bin of the peak
+    sagging: bool  # the response sags back from its peak by more than the noise
+    noise: float  # SD of a bin mean, V
+    onset: float  # step onset, s
+    ss_mid: float  # middle of the steady-state window, s
+
+    def same_charging(self, a: PassiveSettings, b: PassiveSettings) -> bool:
+        """True when the charging fit of this sweep is the same computation under ``a`` and
+        ``b`` (e.g. 'auto' and 'exp+sag' for a sweep that sags)."""
+        return _effective_model(a, self.sagging) == _effective_model(b, self.sagging)
+
+
+def _effective_model(s: PassiveSettings, sagging: bool) -> PassiveSettings:
+    """``s`` with ``charging_model`` resolved to what a sweep that does (not) sag gets."""
+    model = s.charging_model
+    if model == "auto":
+        model = "exp+sag" if sagging else "exp"
+    return replace(s, charging_model=model)
+
+
+def measure_sweep(
+    sweep: Sweep, epoch: StepEpoch, settings: PassiveSettings
+) -> SweepFit | SweepMeasure:
+    """Everything :func:`fit_sweep` measures before the charging-curve fit.
+
+    Parameters
+    ----------
+    sweep : Sweep
+        The recorded sweep (V, A, Hz).
+    epoch : StepEpoch
+        Its step epoch.
+    settings : PassiveSettings
+        Windows and fit options.
+
+    Returns
+    -------
+    SweepFit or SweepMeasure
+        The finished SweepFit when the sweep gets no charging fit (depolarizing, unusable,
+        within the noise...), else what :func:`complete_sweep` fits it from.
+    """
     v = sweep.voltage
     head = dict(
         sweep=sweep.number,
@@ -746,6 +811,52 @@ def fit_sweep(sweep: Sweep, epoch: StepEpoch, settings: PassiveSettings) -> Swee
     return _measure(sweep, epoch, settings, w, head)
 
 
+def complete_sweep(m: SweepFit | SweepMeasure, settings: PassiveSettings) -> SweepFit:
+    """Fit the charging curve of a measured sweep.
+
+    Parameters
+    ----------
+    m : SweepFit or SweepMeasure
+        From :func:`measure_sweep`; a SweepFit is returned as it is.
+    settings : PassiveSettings
+        Those ``m`` was measured with, up to ``fit_start_min_s`` and ``charging_model`` (the
+        only ones the charging fit reads that a cell's second pass changes).
+
+    Returns
+    -------
+    SweepFit
+        As :func:`fit_sweep` gives it.
+
+    Raises
+    ------
+    ValueError
+        When ``settings`` differs from those of ``m`` in anything else.
+    """
+    if isinstance(m, SweepFit):
+        return m
+    charging_only = dict(fit_start_min_s=m.settings.fit_start_min_s)
+    if replace(settings, charging_model=m.settings.charging_model, **charging_only) != m.settings:
+        raise ValueError("complete_sweep: settings differ from the measurement's beyond the fit")
+    reasons = list(m.reasons)
+    if settings.charging_model == "none":
+        return SweepFit(
+            **m.head, **m.fit, reason="; ".join(reasons + ["charging curve not fitted"])
+        )
+    charging, tau_fast, why = _charging_fit(
+        m.t, m.y, m.r, m.i_peak, m.sagging, m.noise, m.onset, settings
+    )
+    if why:
+        reasons.append(why)
+    fit = dict(m.fit, charging=charging, tau_fast_s=tau_fast)
+    left = math.exp(-(m.ss_mid - m.onset) / charging.tau) if charging.ok else 0
+    if left > 0.01:  # the steady-state window is still on the charging curve
+        reasons.append(f"steady state not reached: {100 * left:.0f}% of the charging left")
+    if settings.two_exp and charging.ok and charging.model == "exp":
+        end = int(np.searchsorted(m.t, charging.t1, side="right"))
+        fit["charging2"] = fit_two_exponentials(m.t[:end], m.y[:end], charging, tau_fast)
+    return SweepFit(**m.head, **fit, reason="; ".join(reasons))
+
+
 def _bias(sweep: Sweep) -> float:
     value = sweep.settings.get("bias_current_a", 0.0)
     try:
@@ -756,7 +867,7 @@ def _bias(sweep: Sweep) -> float:
 
 def _measure(
     sweep: Sweep, epoch: StepEpoch, s: PassiveSettings, w: _Windows, head: dict
-) -> SweepFit:
+) -> SweepFit | SweepMeasure:
     """The measurements proper, once the windows are known to fit in the sweep."""
     raw, rate = sweep.voltage, sweep.rate
     on, off = epoch.onset_index, epoch.offset_index
@@ -824,22 +935,10 @@ def _measure(
     i_peak = min(int((k_peak + ksm / 2) // k), t.size - 1)
     noise = max(rms / math.sqrt(k), 1e-7)  # floor: noiseless traces still have rounding
     sagging = ss_dv - peak_dv > max(5 * rms / math.sqrt(ksm), 0.01 * abs(peak_m))
-    if s.charging_model == "none":
-        return SweepFit(**head, **fit, reason="; ".join(reasons + ["charging curve not fitted"]))
-    charging, tau_fast, why = _charging_fit(t, y, r, i_peak, sagging, noise, epoch.onset, s)
-    if why:
-        reasons.append(why)
-    fit["charging"] = charging
-    fit["tau_fast_s"] = tau_fast
-    left = (
-        math.exp(-(float(np.mean(w.ss)) / rate - epoch.onset) / charging.tau) if charging.ok else 0
+    ss_mid = float(np.mean(w.ss)) / rate
+    return SweepMeasure(
+        s, head, fit, tuple(reasons), t, y, r, i_peak, sagging, noise, epoch.onset, ss_mid
     )
-    if left > 0.01:  # the steady-state window is still on the charging curve
-        reasons.append(f"steady state not reached: {100 * left:.0f}% of the charging left")
-    if s.two_exp and charging.ok and charging.model == "exp":
-        end = int(np.searchsorted(t, charging.t1, side="right"))
-        fit["charging2"] = fit_two_exponentials(t[:end], y[:end], charging, tau_fast)
-    return SweepFit(**head, **fit, reason="; ".join(reasons))
 
 
 def _mean_jump(j_on: float, j_off: float) -> float:
