@@ -27,10 +27,10 @@ from typing import Any
 import matplotlib
 import numpy as np
 from matplotlib.backends.backend_agg import FigureCanvasAgg, RendererAgg
-from matplotlib.cm import ScalarMappable
 from matplotlib.colors import Normalize
 from matplotlib.figure import Figure
-from matplotlib.ticker import MaxNLocator
+from matplotlib.ticker import MaxNLocator, ScalarFormatter
+from matplotlib.transforms import Bbox
 
 from pipeline.fitters.results import CellFit, ExpFit, SweepFit
 from pipeline.qc import CellVerdict
@@ -364,21 +364,28 @@ def _levels_mv(v: _SweepView) -> list[float]:
     return out
 
 
-def _draw_colourbar(fig: Figure, rect: tuple, views: list[_SweepView], cmap_name: str) -> None:
+def _draw_colourbar(cax, views: list[_SweepView], cmap_name: str) -> None:
+    """The step-current scale of the coloured sweeps, as an image in its fixed slot.
+
+    A plain axes with a 256-row image: ``Figure.colorbar`` builds a new Colorbar (and its
+    mesh) per figure, which cannot be kept from one cell to the next.
+    """
     hyper = [v.step_a for v in views if _finite(v.step_a) and v.step_a < 0]
     if not hyper:
-        return
+        return  # the slot stays hidden
     norm = _step_norm(hyper)
-    cmap = matplotlib.colormaps[cmap_name]
-    colours = cmap(np.linspace(0, 0.9, 256))
-    sm = ScalarMappable(norm=norm, cmap=matplotlib.colors.ListedColormap(colours))
-    # a fixed slot: colorbar(ax=...) would re-grid the traces panel on every figure
-    bar = fig.colorbar(sm, cax=fig.add_axes(rect))
+    colours = matplotlib.colormaps[cmap_name](np.linspace(0, 0.9, 256))[:, None, :3]
+    cax.set_visible(True)
+    cax.imshow(
+        colours, extent=(0.0, 1.0, norm.vmin, norm.vmax), origin="lower", aspect="auto",
+        interpolation="nearest",
+    )  # fmt: skip
+    cax.set_ylim(norm.vmin, norm.vmax)
+    cax.set_xticks([])
     steps = sorted({round(h * 1e12, 1) for h in hyper})
     if len(steps) <= 10:
-        bar.set_ticks(steps, labels=[f"{x:.0f}" for x in steps])
-    bar.set_label("step current (pA)", fontsize=8)
-    bar.ax.tick_params(labelsize=7)
+        cax.set_yticks(steps, labels=[f"{x:.0f}" for x in steps])
+    cax.set_ylabel("step current (pA)", fontsize=8)
 
 
 def _points(ax, x, y, marker: str, area: float, face: Any, edge: Any, **kw: Any) -> None:
@@ -729,7 +736,14 @@ def _draw_fi(ax, views: list[_SweepView], spikes: Any) -> None:
     _title(ax, title)
 
 
-def _layout(fig: Figure, with_spikes: bool) -> dict[str, Any]:
+def _ticks(axis) -> None:
+    """The panels' tick rule: few ticks, as each tick is several artists drawn every time."""
+    axis.set_major_locator(MaxNLocator(6, steps=[1, 2, 2.5, 5, 10]))
+    axis.set_major_formatter(ScalarFormatter())
+
+
+def _layout(fig: Figure, with_spikes: bool) -> tuple[dict[str, Any], Any]:
+    """Build the panels once per figure: returns the axes by name and the text column's box."""
     rows = 3 if with_spikes else 2
     heights = [1.25, 1.0, 1.0][:rows]
     gs = fig.add_gridspec(
@@ -745,19 +759,86 @@ def _layout(fig: Figure, with_spikes: bool) -> dict[str, Any]:
         "iv": fig.add_subplot(gs[0, 1]),
         "resid": fig.add_subplot(gs[1, 0]),
         "baseline": fig.add_subplot(gs[1, 1]),
+        "colourbar": fig.add_axes(
+            (traces.x1 - bar_w * 0.55, traces.y0, bar_w * 0.55, traces.height)
+        ),
     }
     if with_spikes:
         axes["spike_sweep"] = fig.add_subplot(gs[2, 0])
         axes["fi"] = fig.add_subplot(gs[2, 1])
+    cax = axes["colourbar"]
+    cax.yaxis.tick_right()
+    cax.yaxis.set_label_position("right")
+    cax.tick_params(labelsize=7)
+    cax.set_visible(False)
     for ax in axes.values():
-        # fewer ticks: each tick is several artists and dominates the drawing time
-        ax.xaxis.set_major_locator(MaxNLocator(6, steps=[1, 2, 2.5, 5, 10]))
-        ax.yaxis.set_major_locator(MaxNLocator(6, steps=[1, 2, 2.5, 5, 10]))
-    return {
-        **axes,
-        "text": gs[:, 2].get_position(fig),
-        "colourbar": (traces.x1 - bar_w * 0.55, traces.y0, bar_w * 0.55, traces.height),
-    }
+        _ticks(ax.xaxis)
+        _ticks(ax.yaxis)
+    return axes, gs[:, 2].get_position(fig)
+
+
+@dataclass
+class _Page:
+    """A built figure kept for the next cell of the same layout: axes and ticks stay."""
+
+    fig: Figure
+    axes: dict[str, Any]
+    text_box: Any
+
+    def clear(self) -> None:
+        """Back to the state :func:`_layout` left: no artists, limits, legends or tick rules.
+
+        What a cell changes is undone here; :func:`test_figure_reuse` checks pixel for
+        pixel that a cell drawn after others equals the same cell in a fresh figure.
+        """
+        for text in [*self.fig.texts]:
+            text.remove()
+        for ax in self.axes.values():
+            if ax.get_legend() is not None:
+                ax.get_legend().remove()
+            for artist in [*ax.lines, *ax.patches, *ax.collections, *ax.texts, *ax.images]:
+                artist.remove()
+            ax.set_prop_cycle(None)
+            ax.dataLim.set_points(Bbox.null().get_points())
+            ax.ignore_existing_data_limits = True
+            ax.set_xlim(0.0, 1.0, auto=True)  # as a new axes: (0, 1), autoscaled
+            ax.set_ylim(0.0, 1.0, auto=True)
+            for axis in (ax.xaxis, ax.yaxis):
+                _ticks(axis)
+                axis.label.set_text("")
+        self.axes["colourbar"].set_visible(False)
+
+
+_PAGES = threading.local()
+_MAX_PAGES = 4  # layouts kept per thread (with and without spikes, a dpi or two)
+
+
+def clear_figure_cache() -> None:
+    """Forget this thread's kept figures and renderers: the next figure is built anew."""
+    _PAGES.value = {}
+    _RENDERERS.value = {}
+
+
+def _page(cfg: FigureSettings, with_spikes: bool) -> _Page:
+    """This thread's figure for the layout, built on first use (under the figure's rcParams)."""
+    height = cfg.height_in + (cfg.spikes_height_in if with_spikes else 0.0)
+    key = (cfg.width_in, height, cfg.dpi, with_spikes)
+    pages = getattr(_PAGES, "value", None)
+    if pages is None:
+        pages = _PAGES.value = {}
+    page = pages.pop(key, None)
+    if page is None:
+        fig = Figure(figsize=(cfg.width_in, height), dpi=cfg.dpi)
+        _Canvas(fig)
+        page = _Page(fig, *_layout(fig, with_spikes))
+    while len(pages) >= _MAX_PAGES:
+        pages.pop(next(iter(pages)))  # the least recently used
+    return page
+
+
+def _keep(cfg: FigureSettings, with_spikes: bool, page: _Page) -> None:
+    height = cfg.height_in + (cfg.spikes_height_in if with_spikes else 0.0)
+    _PAGES.value[(cfg.width_in, height, cfg.dpi, with_spikes)] = page
 
 
 _RENDERERS = threading.local()
@@ -770,21 +851,151 @@ _RC = {
 }
 
 
+def _glyph_api() -> bool:
+    """Whether this matplotlib lays out and renders glyphs one by one as 3.11 does.
+
+    :class:`_TextRenderer` repeats those private steps to keep their result; with another
+    matplotlib it draws text the stock way.
+    """
+    from matplotlib import ft2font
+    from matplotlib.backends import backend_agg
+
+    font = ft2font.FT2Font
+    return (
+        hasattr(RendererAgg, "_draw_text_glyphs_and_boxes")
+        and hasattr(RendererAgg, "_prepare_font")
+        and hasattr(backend_agg, "get_hinting_flag")
+        and hasattr(ft2font, "RenderMode")
+        and all(hasattr(font, n) for n in ("_layout", "_set_transform", "_render_glyph"))
+    )
+
+
+_GLYPHS_ONE_BY_ONE = _glyph_api()
+_MAX_TEXT_BITMAPS = 4096  # per renderer; a text line's bitmap is a few kB
+
+
+class _TextRenderer(RendererAgg):
+    """Agg renderer that keeps each drawn text line as one bitmap and reuses it.
+
+    Matplotlib 3.11 lays a string out and renders and composites it glyph by glyph on every
+    draw (~1 ms per tick label). The same tick labels, axis labels and titles come back in
+    every figure, so the line's glyphs are rendered once, merged into one coverage bitmap
+    and composited in one call. The bitmap depends on the text, font, size, dpi, angle,
+    antialiasing, hinting and the position's fraction of a pixel (FreeType's 1/64 steps),
+    all of which are in the key; whole-pixel moves only move the bitmap. Where glyph boxes
+    overlap, coverage is merged as two blends would be, which can differ from stock drawing
+    by one level of 255.
+    """
+
+    def __init__(self, width: int, height: int, dpi: float) -> None:
+        super().__init__(width, height, dpi)
+        self._bitmaps: dict[tuple, tuple[np.ndarray | None, int, int]] = {}
+
+    def draw_text(self, gc, x, y, s, prop, angle, ismath=False, mtext=None) -> None:
+        global _GLYPHS_ONE_BY_ONE
+        if ismath or angle not in (0, 90) or not _GLYPHS_ONE_BY_ONE:
+            # other angles: glyph offsets are not whole 1/64 px, so a bitmap would not repeat
+            return super().draw_text(gc, x, y, s, prop, angle, ismath, mtext)
+        from matplotlib.backends.backend_agg import get_hinting_flag
+
+        features = mtext.get_fontfeatures() if mtext is not None else None
+        language = mtext.get_language() if mtext is not None else None
+        flags = get_hinting_flag()
+        antialiased = bool(gc.get_antialiased())
+        font = self._prepare_font(prop)
+        tx, ty = round(64 * x), round(64 * (self.height - y))  # 26.6 fixed point, y upwards
+        key = (
+            s, prop, font.fname, matplotlib.rcParams["text.hinting_factor"], self.dpi, angle,
+            antialiased, flags, _hashable(features), _hashable(language), tx & 63, ty & 63,
+        )  # fmt: skip
+        entry = self._bitmaps.get(key)
+        if entry is None:
+            try:
+                entry = self._line_bitmap(font, s, prop, x, y, angle, antialiased, flags,
+                                          features, language, tx >> 6, ty >> 6)  # fmt: skip
+            except (AttributeError, TypeError, ValueError):
+                _GLYPHS_ONE_BY_ONE = False  # private API changed: stock drawing from now on
+                return super().draw_text(gc, x, y, s, prop, angle, ismath, mtext)
+            if len(self._bitmaps) >= _MAX_TEXT_BITMAPS:
+                self._bitmaps.pop(next(iter(self._bitmaps)))
+            self._bitmaps[key] = entry
+        image, left, top = entry
+        if image is not None:
+            top += ty >> 6
+            # draw_text_image's y is downwards and the bitmap's bottom side
+            self._renderer.draw_text_image(
+                image, (tx >> 6) + left, int(self.height) - top + image.shape[0], 0, gc
+            )
+
+    def _line_bitmap(
+        self, font, s, prop, x, y, angle, antialiased, flags, features, language, bx, by
+    ) -> tuple[np.ndarray | None, int, int]:
+        """Render the glyphs as ``RendererAgg._draw_text_glyphs_and_boxes`` does; merge them.
+
+        Returns the merged coverage (uint8) and its left and top pixel relative to the
+        whole-pixel part of the position (``bx``, ``by``; y upwards).
+        """
+        from matplotlib.ft2font import RenderMode
+
+        items = font._layout(s, flags=flags, features=features, language=language)
+        size = prop.get_size_in_points()
+        cos, sin = math.cos(math.radians(angle)), math.sin(math.radians(angle))
+        matrix = (0x10000 * np.array([[cos, -sin], [sin, cos]])).round().astype(int)
+        mode = RenderMode.NORMAL if antialiased else RenderMode.MONO
+        glyphs = []
+        for item in items:
+            item.ft_object.set_size(size, self.dpi)
+            item.ft_object._set_transform(
+                matrix,
+                [
+                    round(0x40 * (x + item.x * cos - item.y * sin)),
+                    round(0x40 * (self.height - y + item.x * sin + item.y * cos)),
+                ],
+            )
+            bitmap = item.ft_object._render_glyph(item.glyph_index, flags, mode)
+            cover = np.asarray(bitmap.buffer, dtype=np.float64)
+            if cover.size:
+                glyphs.append((bitmap.left, bitmap.top, cover if antialiased else cover * 255))
+        if not glyphs:
+            return None, 0, 0
+        left, top = min(g[0] for g in glyphs), max(g[1] for g in glyphs)
+        right = max(g[0] + g[2].shape[1] for g in glyphs)
+        bottom = min(g[1] - g[2].shape[0] for g in glyphs)
+        clear = np.ones((top - bottom, right - left))  # 1 - coverage, as successive blends
+        for g_left, g_top, cover in glyphs:
+            r, c = top - g_top, g_left - left
+            clear[r : r + cover.shape[0], c : c + cover.shape[1]] *= 1.0 - cover / 255.0
+        image = np.round(255.0 * (1.0 - clear)).astype(np.uint8)
+        return image, left - bx, top - by
+
+
+def _hashable(value: Any) -> Any:
+    if value is None or isinstance(value, str):
+        return value
+    return tuple(tuple(v) if isinstance(v, list) else v for v in value)
+
+
 class _Canvas(FigureCanvasAgg):
     """Agg canvas that reuses this thread's renderer for figures of the same pixel size.
 
-    Matplotlib caches text extents per renderer: with a fresh renderer per figure every tick
-    label, axis label and title is measured again. Writes PNGs with :func:`png_bytes`.
+    Matplotlib caches text extents per renderer, and :class:`_TextRenderer` keeps text
+    bitmaps: with a fresh renderer per figure every label would be measured and rendered
+    again. Writes PNGs with :func:`png_bytes`.
     """
 
     def get_renderer(self) -> RendererAgg:
         w, h = self.get_width_height(physical=True)
         key = (w, h, self.figure.dpi)
-        cached = getattr(_RENDERERS, "value", None)
-        if cached is None or cached[0] != key:
-            cached = _RENDERERS.value = (key, RendererAgg(w, h, self.figure.dpi))
-        self.renderer = cached[1]
-        return self.renderer
+        kept = getattr(_RENDERERS, "value", None)
+        if kept is None:
+            kept = _RENDERERS.value = {}
+        renderer = kept.get(key)
+        if renderer is None:
+            while len(kept) >= _MAX_PAGES:
+                kept.pop(next(iter(kept)))
+            renderer = kept[key] = _TextRenderer(w, h, self.figure.dpi)
+        self.renderer = renderer
+        return renderer
 
     def print_png(
         self, filename_or_obj: Any, *, metadata: Any = None, pil_kwargs: Any = None, **_: Any
@@ -910,29 +1121,41 @@ def _gc_paused():
 def _cell_figure(
     recording, epochs, cell_fit, verdict, path: Path, spikes, cfg: FigureSettings
 ) -> None:
-    height = cfg.height_in + (cfg.spikes_height_in if spikes is not None else 0.0)
-    with matplotlib.rc_context(_RC):
-        fig = Figure(figsize=(cfg.width_in, height), dpi=cfg.dpi)
-        _Canvas(fig)
-        cell_id = (
-            recording.cell_id if recording is not None else (cell_fit.cell_id if cell_fit else "?")
+    with_spikes = spikes is not None
+    # One figure at a time per process: rc_context changes the global rcParams.
+    with _DRAW_LOCK, matplotlib.rc_context(_RC):
+        page = _page(cfg, with_spikes)
+        _draw_page(page, recording, epochs, cell_fit, verdict, path, spikes, cfg)
+        # kept only when drawn and cleared without error: a failure may leave any state
+        page.clear()
+        _keep(cfg, with_spikes, page)
+
+
+_DRAW_LOCK = threading.Lock()
+
+
+def _draw_page(
+    page: _Page, recording, epochs, cell_fit, verdict, path: Path, spikes, cfg: FigureSettings
+) -> None:
+    fig, axes = page.fig, page.axes
+    cell_id = (
+        recording.cell_id if recording is not None else (cell_fit.cell_id if cell_fit else "?")
+    )
+    views = _sweep_views(recording, _epoch_map(epochs), cell_fit, verdict, cfg.step_cmap)
+    fig.text(0.055, 0.985, cell_id, fontsize=12, ha="left", va="top", weight="bold")
+    _draw_traces(axes["traces"], fig, views, cell_fit, cfg.dpi)
+    _draw_colourbar(axes["colourbar"], views, cfg.step_cmap)
+    _draw_iv(axes["iv"], views, cell_fit)
+    _draw_residuals(axes["resid"], views)
+    _draw_baselines(axes["baseline"], views)
+    _draw_text(page.text_box, fig, recording, cell_fit, verdict, views, cell_id, spikes)
+    if spikes is not None:
+        _draw_rheobase(axes["spike_sweep"], fig, views, spikes, cfg.dpi)
+        _draw_fi(axes["fi"], views, spikes)
+    with atomic_path(path) as tmp:
+        fig.savefig(
+            tmp,
+            format="png",
+            dpi=cfg.dpi,
+            pil_kwargs={"compress_level": cfg.png_compress_level},
         )
-        views = _sweep_views(recording, _epoch_map(epochs), cell_fit, verdict, cfg.step_cmap)
-        axes = _layout(fig, spikes is not None)
-        fig.text(0.055, 0.985, cell_id, fontsize=12, ha="left", va="top", weight="bold")
-        _draw_traces(axes["traces"], fig, views, cell_fit, cfg.dpi)
-        _draw_colourbar(fig, axes["colourbar"], views, cfg.step_cmap)
-        _draw_iv(axes["iv"], views, cell_fit)
-        _draw_residuals(axes["resid"], views)
-        _draw_baselines(axes["baseline"], views)
-        _draw_text(axes["text"], fig, recording, cell_fit, verdict, views, cell_id, spikes)
-        if spikes is not None:
-            _draw_rheobase(axes["spike_sweep"], fig, views, spikes, cfg.dpi)
-            _draw_fi(axes["fi"], views, spikes)
-        with atomic_path(path) as tmp:
-            fig.savefig(
-                tmp,
-                format="png",
-                dpi=cfg.dpi,
-                pil_kwargs={"compress_level": cfg.png_compress_level},
-            )
