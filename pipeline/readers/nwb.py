@@ -17,6 +17,7 @@ from __future__ import annotations
 
 import contextlib
 import datetime as dt
+import functools
 import math
 import re
 import warnings
@@ -145,14 +146,19 @@ def _series_data(
         raise ShapeError(
             path, f"{what}: {n} samples, more than the {MAX_SERIES_SAMPLES} one sweep may hold"
         )
-    raw = np.asarray(data[start:stop], dtype=np.float64)
+    raw = _float_samples(data, start, stop)  # a new array: scaled in place
     if raw.ndim != 1 and not (raw.ndim == 2 and raw.shape[1] == 1):
         raise ShapeError(path, f"{what}: data of shape {raw.shape}, expected one channel")
     conversion = 1.0 if conversion is None else float(conversion)
     offset = 0.0 if offset is None else float(offset)
-    values = (raw.reshape(-1) * conversion + offset) * factor
+    values = raw.reshape(-1)
+    if conversion != 1.0:  # x * 1.0 is x: the pass is skipped, not the arithmetic changed
+        values *= conversion
+    values += offset  # always: -0.0 + 0.0 is +0.0
+    if factor != 1.0:
+        values *= factor
     if timestamps is not None:
-        times = np.asarray(timestamps[start:stop], dtype=np.float64)
+        times = _float_samples(timestamps, start, stop)
         rate = rate_from_times(path, times, what)
         t0 = float(times[0])
     else:
@@ -324,6 +330,13 @@ def _text(value: Any) -> str:
 
 
 # ---- h5py engine: the NWB 2 core layout read directly ----------------------------------------
+#
+# A file's read time is mostly HDF5 metadata, and h5py's object API adds 50-250 us to each
+# attribute, member or scalar dataset it opens (a file of 30 series opens ~500 of them). So the
+# series are walked with h5py's low-level API: the same HDF5 calls and memory types as the
+# object API, without its wrappers. Only the storage kinds NWB writers use (numbers, fixed- and
+# variable-length strings, simple 1-D samples) are read that way; any other kind is handed to
+# the object API, so every helper returns what the object API would.
 
 CLAMP_TYPES = ("CurrentClampSeries", "IZeroClampSeries")
 STIMULUS_TYPES = ("CurrentClampStimulusSeries",)
@@ -363,7 +376,7 @@ def _read_h5(path: Path) -> list[Recording]:
 
 
 def _children(f: Any, top: str) -> list[tuple[str, Any]]:
-    """(name, group) under ``top``; a type from an extension namespace may subclass ours."""
+    """(name, group id) under ``top``; a type from an extension namespace may subclass ours."""
     import h5py
 
     if top not in f:
@@ -371,11 +384,11 @@ def _children(f: Any, top: str) -> list[tuple[str, Any]]:
     parent = f[top]
     out = []
     for key in parent:
-        obj = parent[key]
+        obj = _open(parent.id, key) if isinstance(parent, h5py.Group) else parent[key]
         namespace = _attr(obj, "namespace")
         if namespace is not None and namespace not in KNOWN_NAMESPACES:
             raise NotUnderstood(f"extension type in {top}/{key}")
-        if isinstance(obj, h5py.Group):
+        if isinstance(obj, h5py.h5g.GroupID):
             out.append((key, obj))
     return out
 
@@ -392,14 +405,14 @@ def _rows_h5(path: str, f: Any, known: dict[Any, tuple[str, str | None]]) -> lis
     for resp, stim in zip(responses, stimuli, strict=True):
         if resp["idx_start"] < 0 or not resp["timeseries"]:
             continue
-        group = f[resp["timeseries"]]
+        group = _dereference(f, resp["timeseries"])
         kind = known[group][1] if group in known else _attr(group, "neurodata_type")
         if kind not in CLAMP_TYPES:
             continue  # voltage-clamp rows
         r = _load_h5(path, group, "V", resp, known)
         s = None
         if stim["idx_start"] >= 0 and stim["timeseries"]:
-            s = _load_h5(path, f[stim["timeseries"]], "A", stim, known)
+            s = _load_h5(path, _dereference(f, stim["timeseries"]), "A", stim, known)
         rows.append((r, s))
     return rows or None
 
@@ -411,25 +424,31 @@ def _load_h5(
     ref: Any = None,
     known: dict[Any, tuple[str, str | None]] | None = None,
 ) -> SeriesData:
+    """Load one series (a low-level id) into memory, in SI, honouring a table row's range."""
+    import h5py
+
     name, kind = (known or {}).get(group) or (None, None)
     if name is None:  # a table row pointing outside acquisition and stimulus
-        name, kind = group.name.rsplit("/", 1)[-1], _attr(group, "neurodata_type")
-    members = set(group)  # one pass over the links instead of lookups that may fail
-    data = group["data"]
+        name, kind = _wrap(group).name.rsplit("/", 1)[-1], _attr(group, "neurodata_type")
+    if isinstance(group, h5py.h5g.GroupID):
+        has = _link_exists(group)
+        data = _open(group, "data")
+    else:  # a row pointing at a dataset (a damaged file): what the object API makes of it
+        has = set(_wrap(group)).__contains__
+        data = _wrap(group)["data"]
     start, stop = 0, None
     if ref is not None:
         start, stop = int(ref["idx_start"]), int(ref["idx_start"]) + int(ref["count"])
-    starting = group["starting_time"] if "starting_time" in members else None
+    starting = _open(group, "starting_time") if has("starting_time") else None
     if kind == "IZeroClampSeries":  # pynwb fixes these for I=0 series, whatever is stored
         settings: dict[str, Any] = dict.fromkeys(SETTINGS_KEYS.values(), 0.0)
         protocol = None
     else:
         settings = {
-            key: _scalar(group, attr) if attr in members else None
-            for attr, key in SETTINGS_KEYS.items()
+            key: _scalar(group, attr) if has(attr) else None for attr, key in SETTINGS_KEYS.items()
         }
         protocol = _attr(group, "stimulus_description")
-    electrode = _link_target(group, "electrode") if "electrode" in members else None
+    electrode = _link_target(group, "electrode") if has("electrode") else None
     return _series_data(
         path,
         name=name,
@@ -440,9 +459,9 @@ def _load_h5(
         conversion=_attr(data, "conversion"),
         offset=_attr(data, "offset"),
         data=data,
-        timestamps=group["timestamps"] if "timestamps" in members else None,
+        timestamps=_open(group, "timestamps") if has("timestamps") else None,
         rate=_attr(starting, "rate") if starting is not None else None,
-        starting_time=float(starting[()]) if starting is not None else None,
+        starting_time=float(_value(starting)) if starting is not None else None,
         start=start,
         stop=stop,
         sweep_number=_attr(group, "sweep_number"),
@@ -451,31 +470,229 @@ def _load_h5(
     )
 
 
+def _link_exists(group: Any) -> Any:
+    """Whether ``group`` has a link of a name: ``name in set(h5py.Group(group))``, unlisted."""
+    exists = group.links.exists
+    return lambda name: exists(name.encode())
+
+
+def _open(parent: Any, key: str | bytes) -> Any:
+    """``parent[key]`` as a low-level id (what h5py's object API opens, without wrapping it)."""
+    import h5py
+
+    name = key.encode() if isinstance(key, str) else key  # h5py's encoding of names
+    oid = h5py.h5o.open(parent, name)
+    if h5py.h5i.get_type(oid) not in (h5py.h5i.GROUP, h5py.h5i.DATASET, h5py.h5i.DATATYPE):
+        raise TypeError("Unknown object type")  # as h5py's object API
+    return oid
+
+
+def _dereference(f: Any, ref: Any) -> Any:
+    """``f[ref]`` as a low-level id."""
+    import h5py
+
+    oid = h5py.h5r.dereference(ref, f.id)
+    if oid is None:
+        raise ValueError("Invalid HDF5 object reference")  # as h5py's object API
+    if h5py.h5i.get_type(oid) not in (h5py.h5i.GROUP, h5py.h5i.DATASET, h5py.h5i.DATATYPE):
+        raise TypeError("Unknown object type")
+    return oid
+
+
+def _wrap(obj: Any) -> Any:
+    """h5py's object for a low-level id (anything else as it is), for the object API's path."""
+    import h5py
+
+    if isinstance(obj, h5py.h5g.GroupID):
+        return h5py.Group(obj)
+    if isinstance(obj, h5py.h5d.DatasetID):
+        return h5py.Dataset(obj, readonly=True)  # the file is open read-only
+    if isinstance(obj, h5py.h5t.TypeID):
+        return h5py.Datatype(obj)
+    return obj
+
+
+def _id(obj: Any) -> Any:
+    """The low-level id of an h5py object or id; None for anything else."""
+    import h5py
+
+    if isinstance(obj, h5py.HLObject):
+        return obj.id
+    ids = (h5py.h5g.GroupID, h5py.h5d.DatasetID, h5py.h5t.TypeID)
+    return obj if isinstance(obj, ids) else None
+
+
 def _link_target(group: Any, key: str) -> str | None:
     """Path a link points to (NWB stores links to electrodes as HDF5 soft links)."""
     import h5py
 
-    link = group.get(key, getlink=True)
-    if link is None:
+    if not isinstance(group, h5py.h5g.GroupID):
+        link = _wrap(group).get(key, getlink=True)  # a damaged file: the object API's way
+        if link is not None and not isinstance(link, h5py.SoftLink):
+            raise NotUnderstood(f"{_wrap(group).name}/{key} is not a soft link")
+        return None if link is None else link.path
+    if key not in h5py.Group(group):  # as h5py's get(getlink=True): a dangling link is no link
         return None
-    if not isinstance(link, h5py.SoftLink):
-        raise NotUnderstood(f"{group.name}/{key} is not a soft link")
-    return link.path
+    kind = group.links.get_info(key.encode()).type
+    if kind == h5py.h5l.TYPE_SOFT:
+        target = group.links.get_val(key.encode())
+        with contextlib.suppress(UnicodeDecodeError):  # h5py keeps undecodable paths as bytes
+            target = target.decode("utf8")
+        return target
+    if kind in (h5py.h5l.TYPE_EXTERNAL, h5py.h5l.TYPE_HARD):
+        raise NotUnderstood(f"{_wrap(group).name}/{key} is not a soft link")
+    raise TypeError("Unknown link type")  # as h5py's object API
 
 
 def _attr(obj: Any, key: str) -> Any:
-    value = obj.attrs.get(key)
+    """``obj.attrs.get(key)`` (obj an h5py object or low-level id), with any string as str."""
+    value = _plain_attr(obj, key)
+    if value is _OTHER:
+        value = _wrap(obj).attrs.get(key)
     if isinstance(value, bytes | str):
         return _text(value)
     return value
 
 
 def _scalar(group: Any, key: str) -> Any:
-    ds = group.get(key)
+    """The value of the scalar dataset ``group[key]`` (str for text), or None without one."""
+    import h5py
+
+    gid = _id(group)
+    if isinstance(gid, h5py.h5g.GroupID):
+        try:
+            ds = _open(gid, key)
+        except KeyError:  # as h5py's get(): missing, or a dangling link
+            ds = None
+    else:
+        ds = _wrap(group).get(key)  # a damaged file: whatever h5py makes of it
     if ds is None:
         return None
-    value = ds[()]
+    value = _value(ds)
     return _text(value) if isinstance(value, bytes) else value
+
+
+_OTHER = object()  # a storage kind the low-level readers leave to h5py's object API
+_PLAIN_TYPES: list[tuple[Any, np.dtype, Any]] = []  # (HDF5 type, h5py's dtype, memory type)
+_MAX_PLAIN_TYPES = 16  # a file has a handful; a hostile one must not grow the list for ever
+
+
+def _plain_type(tid: Any) -> tuple[np.dtype, Any] | None:
+    """(dtype, memory type) h5py reads the HDF5 type ``tid`` as, or None if not plain.
+
+    Plain: numbers, fixed-length byte strings and variable-length strings, which is what NWB
+    writers store in attributes and scalar datasets. Equal HDF5 types (``H5Tequal``: class,
+    size, order, sign, character set, ...) give equal dtypes, so h5py's dtype and memory type
+    (``py_create``) are made once per type rather than once per attribute.
+    """
+    import h5py
+
+    for known, dtype, mtype in _PLAIN_TYPES:
+        if tid == known:
+            return dtype, mtype
+    dtype = tid.dtype
+    info = h5py.check_string_dtype(dtype)
+    vlen_text = info is not None and info.length is None
+    if not (vlen_text or dtype.kind in "fiuS"):
+        return None
+    mtype = h5py.h5t.py_create(dtype)
+    if len(_PLAIN_TYPES) < _MAX_PLAIN_TYPES:
+        _PLAIN_TYPES.append((tid.copy(), dtype, mtype))  # a copy: free of the file
+    return dtype, mtype
+
+
+def _plain_attr(obj: Any, key: str) -> Any:
+    """``obj.attrs.get(key)`` for a plain scalar, read as h5py's ``AttributeManager`` does.
+
+    None when missing; _OTHER for what to leave to the object API (an empty attribute, an
+    array, compounds, references, ...).
+    """
+    import h5py
+
+    oid = _id(obj)
+    if oid is None:
+        return _OTHER
+    try:
+        attr = h5py.h5a.open(oid, key.encode())
+    except KeyError:  # what the object API's get() takes for a missing attribute
+        return None
+    plain = _plain_type(attr.get_type())
+    if plain is None or attr.get_storage_size() == 0:  # no storage: an empty dataspace
+        return _OTHER
+    dtype, mtype = plain
+    out = np.zeros((), dtype=dtype)
+    try:
+        attr.read(out, mtype=mtype)  # h5py checks the rank of the dataspace against out's
+    except TypeError:  # an array, even of one value
+        return _OTHER
+    value = out[()]
+    if dtype.kind == "O":  # h5py decodes variable-length strings so, whatever their encoding
+        return value.decode("utf-8", "surrogateescape")
+    return value
+
+
+def _value(ds: Any) -> Any:
+    """``ds[()]`` (ds an h5py object or low-level id): bytes for text, as h5py gives it."""
+    import h5py
+
+    did = _id(ds)
+    if isinstance(did, h5py.h5d.DatasetID):
+        if did.get_space().get_simple_extent_type() == h5py.h5s.SCALAR:
+            plain = _plain_type(did.get_type())
+            if plain is not None:
+                out = np.zeros((), dtype=plain[0])
+                did.read(h5py.h5s.ALL, h5py.h5s.ALL, out, plain[1])
+                return out[()]
+    return _wrap(ds)[()]
+
+
+def _float_samples(data: Any, start: int, stop: int | None) -> np.ndarray:
+    """``data[start:stop]`` (an h5py dataset, low-level id or array) as a new float64 array.
+
+    The values are numpy's conversion of h5py's array. A low-level id of a 1-D (or one-column)
+    dataset of IEEE 32- or 64-bit floats is read as one hyperslab straight into float64 (HDF5
+    widens exactly, as numpy does): no intermediate array, whose fresh pages cost more than the
+    copy. The pynwb engine hands h5py datasets, read as h5py reads them (its reference).
+    """
+    import h5py
+
+    if isinstance(data, h5py.h5d.DatasetID):
+        out = _read_floats(data, start, stop)
+        if out is not None:
+            return out
+        data = _wrap(data)
+    raw = data[start:stop]
+    values = np.asarray(raw, dtype=np.float64)
+    return values.copy() if values is raw else values  # the caller scales it in place
+
+
+def _read_floats(did: Any, start: int, stop: int | None) -> np.ndarray | None:
+    """``did[start:stop]`` into float64 for a plain float dataset of one channel, else None."""
+    import h5py
+
+    if not any(did.get_type() == t for t in _ieee_floats()):
+        return None
+    space = did.get_space()
+    if space.get_simple_extent_type() != h5py.h5s.SIMPLE:
+        return None
+    shape = space.get_simple_extent_dims()
+    first, last, _ = slice(start, stop).indices(shape[0])
+    if last <= first or shape[1:] not in ((), (1,)):
+        return None  # nothing to read, or not one channel: the object API's array and error
+    count = (last - first, *shape[1:])
+    space.select_hyperslab((first, *(0 for _ in shape[1:])), count)
+    out = np.empty(count, dtype=np.float64)
+    did.read(h5py.h5s.create_simple(count), space, out, h5py.h5t.NATIVE_DOUBLE)
+    return out
+
+
+@functools.cache
+def _ieee_floats() -> tuple[Any, ...]:
+    """HDF5's IEEE float types, 32 and 64 bits, little- and big-endian."""
+    import h5py
+
+    t = h5py.h5t
+    return (t.IEEE_F32LE, t.IEEE_F64LE, t.IEEE_F32BE, t.IEEE_F64BE)
 
 
 def _metadata_h5(f: Any) -> dict[str, str]:
