@@ -163,10 +163,12 @@ def find_step(sweep: Sweep, settings: StepSettings, index: int = 0) -> StepEpoch
     if sweep.current is None:
         return _from_schedule(sweep, settings, index)
     current = np.asarray(sweep.current, dtype=np.float64)
+    if math.isfinite(np.add.reduce(current)):  # NaN or inf anywhere makes the sum non-finite
+        return _from_current(sweep, current, settings)
     finite = np.isfinite(current)
     if not finite.any():
         return _unusable(sweep, "no current", "the stored current is all NaN")
-    if finite.all():
+    if finite.all():  # finite samples whose sum overflows
         return _from_current(sweep, current, settings)
     idx = np.arange(current.size)
     epoch = _from_current(sweep, np.interp(idx, idx[finite], current[finite]), settings)
@@ -240,9 +242,11 @@ def _check_step(
 
 def _window_noise(current: np.ndarray, width: int) -> np.ndarray:
     """Robust RMS noise per window of ``width`` samples from second differences, A."""
-    d2 = np.abs(np.diff(current, 2))
+    d2 = np.diff(current, 2)
+    np.abs(d2, out=d2)  # in place: full-length temporaries are what this stage spends on
     n_win = d2.size // width
-    windows = np.sort(d2[: n_win * width].reshape(n_win, width), axis=1)  # faster than median
+    windows = d2[: n_win * width].reshape(n_win, width)
+    windows.partition(width // 2, axis=1)  # the (upper) median of each window, in place
     return windows[:, width // 2] * _SIGMA_PER_MAD2
 
 
@@ -269,7 +273,8 @@ def _level(part: np.ndarray, spread: float | None = None) -> float:
 def _edges(d: np.ndarray, threshold: float) -> list[tuple[int, int]]:
     """Runs (start, stop) of the edge detector above half the threshold with one sign that
     peak above the threshold."""
-    idx = np.flatnonzero(np.abs(d) > 0.5 * threshold)
+    half = 0.5 * threshold
+    idx = np.flatnonzero((d > half) | (d < -half))  # |d| > half without a float temporary
     if idx.size == 0:
         return []
     rising = d[idx] > 0
@@ -317,7 +322,11 @@ def _from_current(sweep: Sweep, current: np.ndarray, settings: StepSettings) -> 
     cum = np.empty(n + 1)
     cum[0] = 0.0
     np.cumsum(current, out=cum[1:])
-    d = (cum[2 * k :] - 2.0 * cum[k:-k] + cum[: -2 * k]) / k  # mean after - mean before sample i+k
+    # mean after - mean before sample i+k: (cum[2k:] - 2 cum[k:-k] + cum[:-2k]) / k, in place
+    d = np.multiply(cum[k:-k], 2.0)
+    np.subtract(cum[2 * k :], d, out=d)
+    np.add(d, cum[: -2 * k], out=d)
+    d /= k
     threshold = max(settings.min_amplitude_a, 6.0 * sigma * math.sqrt(2.0 / k))
     runs = [(a + k, b + k) for a, b in _edges(d, threshold)]  # as sample indices
     wide = [(a, b) for a, b in runs if b - a > 3 * k]

@@ -664,3 +664,24 @@ def test_spiking_imports_no_scipy_signal_ndimage_or_stats():
     )
     out = subprocess.run([sys.executable, "-c", code], capture_output=True, text=True, check=True)
     assert out.stdout.strip() == "[]"
+
+
+def test_gradient_on_a_span_equals_numpy_gradient():
+    from pipeline.fitters.spikes import _gradient
+
+    rng = np.random.default_rng(8)
+    for n in (2, 3, 50):
+        v = rng.normal(V0, 0.01, n)
+        full = np.gradient(v, DT)
+        for a in range(n):
+            for b in range(a + 1, n + 1):
+                np.testing.assert_array_equal(_gradient(v, a, b, DT), full[a:b])
+
+
+def test_median_equals_numpy_median():
+    from pipeline.fitters.spikes import _median
+
+    rng = np.random.default_rng(9)
+    for n in range(1, 60):
+        for x in (rng.normal(size=n), np.round(rng.normal(size=n)), np.full(n, V0)):
+            assert _median(x) == np.median(x)

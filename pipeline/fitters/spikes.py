@@ -333,6 +333,21 @@ def max_ahead(v: np.ndarray, at: np.ndarray, size: int) -> np.ndarray:
     return np.maximum.reduceat(padded, bounds)[0::2]
 
 
+def _gradient(v: np.ndarray, a: int, b: int, dt: float) -> np.ndarray:
+    """``np.gradient(v, dt)[a:b]`` (0 <= a < b <= v.size, v.size >= 2) computed on that span
+    only: central differences inside, one-sided ones at the ends of ``v``; units of v per s."""
+    n = v.size
+    out = np.empty(b - a)
+    lo, hi = max(a, 1), min(b, n - 1)
+    if hi > lo:
+        out[lo - a : hi - a] = (v[lo + 1 : hi + 1] - v[lo - 1 : hi - 1]) / (2.0 * dt)
+    if a == 0:
+        out[0] = (v[1] - v[0]) / dt
+    if b == n:
+        out[-1] = (v[n - 1] - v[n - 2]) / dt
+    return out
+
+
 def least_squares_line(x: Sequence[float], y: Sequence[float]) -> tuple[float, float]:
     """Slope and intercept of the ordinary least-squares line ``y = slope * x + intercept``.
 
@@ -392,9 +407,19 @@ def _precheck(sweep: Sweep, epoch: StepEpoch, settings: SpikeSettings) -> str:
     return ""
 
 
+def _median(x: np.ndarray) -> float:
+    """``np.median`` of a finite 1-D array without its checks (a few times faster on the short
+    windows measured here): the middle value, or the mean of the middle two."""
+    m = x.size // 2
+    if x.size % 2:
+        return float(np.partition(x, m)[m])
+    part = np.partition(x, (m - 1, m))
+    return float((part[m - 1] + part[m]) / 2.0)
+
+
 def _robust_sd(x: np.ndarray) -> float:
     """Standard deviation from the median absolute deviation (insensitive to a few spikes)."""
-    return float(1.4826 * np.median(np.abs(x - np.median(x)))) if x.size else NAN
+    return float(1.4826 * _median(np.abs(x - _median(x)))) if x.size else NAN
 
 
 def _crossings(dvdt: np.ndarray, threshold: float) -> np.ndarray:
@@ -485,9 +510,7 @@ def _locate(
     return found
 
 
-def _shape(
-    v: np.ndarray, raw: np.ndarray, f: _Found, end: int, in_step: bool, dt: float, t0: float
-) -> Spike:
+def _shape(v: np.ndarray, f: _Found, end: int, in_step: bool, dt: float, t0: float) -> Spike:
     """Measure one located spike; ``end`` bounds the after-hyperpolarization trough search."""
     trough = f.down + int(np.argmin(v[f.down : max(end, f.down + 1)]))
     amp = float(v[f.peak] - f.v_thr)
@@ -504,8 +527,8 @@ def _shape(
         width_s=width * unknown,
         ahp_v=float(f.v_thr - v[trough]) * unknown,
         ahp_time_s=float((trough - f.x) * dt),
-        max_rise_v_per_s=float(raw[f.start - 1 : f.peak + 1].max()),
-        max_fall_v_per_s=float(raw[f.peak : trough + 1].min()),
+        max_rise_v_per_s=float(_gradient(v, f.start - 1, f.peak + 1, dt).max()),
+        max_fall_v_per_s=float(_gradient(v, f.peak, trough + 1, dt).min()),
         in_step=in_step,
         note=_knee_note(f.hidden) if f.knee else "",
     )
@@ -529,7 +552,6 @@ def _detect(
         dvdt, settings.dvdt_threshold_v_per_s, (onset, offset), guard_pre, guard
     )
     found = _locate(v, dvdt, cand, knees, rate, settings)
-    raw = np.gradient(v, dt)
     ahp_n = max(1, int(round(settings.ahp_window_s * rate)))
     spikes = []
     for k, f in enumerate(found):
@@ -537,7 +559,7 @@ def _detect(
         end = min(f.down + ahp_n, offset if in_step else v.size)
         if k + 1 < len(found):
             end = min(end, found[k + 1].start)  # the trough lies before the next spike
-        spikes.append(_shape(v, raw, f, end, in_step, dt, t0))
+        spikes.append(_shape(v, f, end, in_step, dt, t0))
     return spikes, noise
 
 
@@ -622,7 +644,7 @@ def _silent_tail(
         t_end = epoch.onset + s.edge_guard_s
     i0 = int(round((epoch.offset - s.block_min_s / 2) * rate))
     tail = v[max(i0, 0) : epoch.offset_index]
-    return t_end, float(np.median(tail)) if tail.size else NAN
+    return t_end, _median(tail) if tail.size else NAN
 
 
 def _with_block(

@@ -224,47 +224,48 @@ def remove_hum(
     """
     basis = _hum_basis(v.size, rate, harmonics)
     stride = max(1, int(rate // 2500))  # 2.5 kHz is ample for 240 Hz and keeps the fit cheap
-    rows, trend = [], []
-    for j, (a, b) in enumerate(regions):
-        idx = np.arange(a, b, stride)
-        idx = idx[np.isfinite(v[idx])]
-        rows.append(idx)
-        t = (idx - (a + b) / 2) / rate
-        trend.append((j, t))
-    idx = np.concatenate(rows)
-    if idx.size < 4 * basis.shape[1]:
+    rows = [np.arange(a, b, stride) for a, b in regions]
+    if all(np.isfinite(v[r]).all() for r in rows):  # the usual case: the cell's sweeps share it
+        fit = _hum_design(v.size, rate, harmonics, tuple(regions))
+    else:
+        fit = _design(basis, rate, regions, [r[np.isfinite(v[r])] for r in rows])
+    if fit is None:
         return v
-    local = np.zeros((idx.size, 2 * len(regions)))
-    pos = 0
-    for j, t in trend:
-        local[pos : pos + t.size, 2 * j] = 1.0
-        local[pos : pos + t.size, 2 * j + 1] = t
-        pos += t.size
-    design = np.hstack([basis[idx], local])
-    # normal equations: columns are O(1) and few, and this avoids LAPACK's thread start-up cost
-    gram = design.T @ design
+    idx, design, gram = fit
     try:
         coef = np.linalg.solve(gram, design.T @ v[idx])
     except np.linalg.LinAlgError:
         return v
-    return v - basis @ coef[: basis.shape[1]]
+    hum = basis @ coef[: basis.shape[1]]
+    return np.subtract(v, hum, out=hum)  # in place: one full-length temporary fewer
 
 
-_HUM_CACHE: dict[tuple, tuple[np.ndarray, np.ndarray]] = {}
+def _design(basis: np.ndarray, rate: float, regions, rows: list[np.ndarray]):
+    """Rows ``idx`` of the hum fit, its design (hum columns, then an offset and a slope per
+    region) and the normal matrix; None with too few rows."""
+    idx = np.concatenate(rows)
+    if idx.size < 4 * basis.shape[1]:
+        return None
+    local = np.zeros((idx.size, 2 * len(regions)))
+    pos = 0
+    for j, ((a, b), r) in enumerate(zip(regions, rows, strict=True)):
+        local[pos : pos + r.size, 2 * j] = 1.0
+        local[pos : pos + r.size, 2 * j + 1] = (r - (a + b) / 2) / rate
+        pos += r.size
+    design = np.hstack([basis[idx], local])
+    # normal equations: columns are O(1) and few, and this avoids LAPACK's thread start-up cost
+    gram = design.T @ design
+    for a in (idx, design, gram):
+        a.setflags(write=False)
+    return idx, design, gram
 
 
-def _dehummed(raw: np.ndarray, rate: float, regions: tuple, harmonics: int) -> np.ndarray:
-    """:func:`remove_hum`, remembered for the last few traces (fit_cell refits the charging
-    curves of a cell's sweeps; the hum does not change). Keyed by identity: sweeps are frozen."""
-    key = (id(raw), rate, regions, harmonics)
-    hit = _HUM_CACHE.get(key)
-    if hit is not None and hit[0] is raw:
-        return hit[1]
-    clean = remove_hum(raw, rate, list(regions), harmonics)
-    if len(_HUM_CACHE) >= 32:
-        _HUM_CACHE.pop(next(iter(_HUM_CACHE)))
-    _HUM_CACHE[key] = (raw, clean)
-    return clean
+@functools.lru_cache(maxsize=8)
+def _hum_design(n: int, rate: float, harmonics: int, regions: tuple):
+    """:func:`_design` of finite sweeps of ``n`` samples, cached: a cell's sweeps share it."""
+    stride = max(1, int(rate // 2500))
+    rows = [np.arange(a, b, stride) for a, b in regions]
+    return _design(_hum_basis(n, rate, harmonics), rate, regions, rows)
 
 
 def _windows(sweep: Sweep, epoch: StepEpoch, s: PassiveSettings) -> tuple[_Windows | None, str]:
@@ -322,8 +323,12 @@ def _edge_level(v: np.ndarray, edge: int, first: int, count: int, degree: int = 
 def _boxcar(v: np.ndarray, k: int) -> np.ndarray:
     """Moving average of ``k`` samples ('valid' part), via cumulative sums."""
     k = max(1, min(k, v.size))
-    c = np.concatenate(([0.0], np.cumsum(v)))
-    return (c[k:] - c[:-k]) / k
+    c = np.empty(v.size + 1)
+    c[0] = 0.0
+    np.cumsum(v, out=c[1:])
+    out = np.subtract(c[k:], c[:-k])
+    out /= k
+    return out
 
 
 def _bin(
@@ -529,12 +534,20 @@ def fit_sag_model(
     tau_sag0 = max(2 * first.tau, t_peak - onset)
     tt = tb - onset
 
+    last: dict = {}  # x(t) at the last parameters: the Jacobian is asked where f just was
+
+    def shape(x, log_tau, log_tau_sag, kappa):
+        key = (log_tau, log_tau_sag, kappa)
+        if last.get("key") != key:
+            last.update(key=key, x=sag_response(x, math.exp(log_tau), math.exp(log_tau_sag), kappa))
+        return last["x"]
+
     def model(x, v_inf, g, log_tau, log_tau_sag, kappa):
-        return v_inf - g + g * sag_response(x, math.exp(log_tau), math.exp(log_tau_sag), kappa)
+        return v_inf - g + g * shape(x, log_tau, log_tau_sag, kappa)
 
     def jac(x, v_inf, g, log_tau, log_tau_sag, kappa):
         # x(t) is shared by all columns: 3 extra evaluations instead of curve_fit's 5
-        base = sag_response(x, math.exp(log_tau), math.exp(log_tau_sag), kappa)
+        base = shape(x, log_tau, log_tau_sag, kappa)
         cols = [np.ones_like(x), base - 1.0]
         for k, h in ((0, 1e-6), (1, 1e-6), (2, 1e-6 * max(1.0, abs(kappa)))):
             q = [log_tau, log_tau_sag, kappa]
@@ -659,6 +672,24 @@ def _edge_extrapolations(v: np.ndarray, edge: int, first: int, count: int):
     return out[0], out[2], out[1], out[3]
 
 
+@functools.lru_cache(maxsize=8)
+def _centred(n: int) -> tuple[np.ndarray, float]:
+    """Sample positions centred on the middle of ``n`` samples, and their sum of squares."""
+    x = np.arange(n) - (n - 1) / 2
+    x.setflags(write=False)
+    return x, float(x @ x)
+
+
+def _scatter_about_line(y: np.ndarray, mean: float) -> float:
+    """RMS scatter (units of ``y``) of ``y`` about its least-squares line (``mean`` = its mean),
+    as ``np.std(y - line)``; in closed form (polyfit costs 20 times more)."""
+    x, sxx = _centred(y.size)
+    r = y - mean
+    r -= (float(x @ y) / sxx) * x
+    r -= r.mean()
+    return math.sqrt(float(r @ r) / y.size)
+
+
 # a rise this far above baseline and steady state within a step is a spike (subthreshold
 # overshoot from a deactivating sag current is a few mV)
 _SPIKE_V = 0.02
@@ -680,14 +711,12 @@ def _edge_jumps(
     and the steady state): sodium current bends its early response before the first spike.
     """
     on, off = edges
-    top = max(base, float(ss.mean())) if (ss := v[slice(*w.ss)]).size else base
-    spiking = float(np.max(v[on:off])) - top > _SPIKE_V
+    ss = v[slice(*w.ss)]
+    ss_mean = float(ss.mean())
+    spiking = float(np.max(v[on:off])) - max(base, ss_mean) > _SPIKE_V
     nss = w.ss[1] - w.ss[0]
     pre = _edge_level(v, off, -nss, nss, degree=1)
-    x = np.arange(nss) - (nss - 1) / 2  # centred: the least-squares line is mean + slope * x
-    ss = v[slice(*w.ss)]
-    line = ss.mean() + (float(x @ ss) / float(x @ x)) * x  # closed form: polyfit is 20x slower
-    steady = float(np.std(ss - line)) <= 2.0 * rms + 1e-9
+    steady = _scatter_about_line(ss, ss_mean) <= 2.0 * rms + 1e-9
     j: dict = {}
     drop = ssr = dof = 0.0
     for name, edge, level in (("onset", on, base), ("offset", off, pre)):
@@ -887,7 +916,7 @@ def _measure(
         return SweepFit(**head, baseline_window=_secs(w.base, rate), reason="; ".join(reasons))
     # hum is fitted before the step and late in it, where the membrane is flat; the after-step
     # tail still relaxes (and rebounds) and would leak into the sinusoids
-    v = _dehummed(raw, rate, ((0, on), w.ss), s.hum_harmonics) if s.remove_hum else raw
+    v = remove_hum(raw, rate, [(0, on), w.ss], s.hum_harmonics) if s.remove_hum else raw
     base = float(v[slice(*w.base)].mean())
     rms = float(raw[slice(*w.base)].std())
     after = NAN
@@ -909,7 +938,7 @@ def _measure(
     j_on, j_off = jumps["onset_jump_v"], jumps["offset_jump_v"]
     sign = 1.0 if epoch.amplitude > 0 else -1.0
     smooth = _boxcar(v[on + w.settle : off], max(1, round(s.peak_smooth_s * rate)))
-    k_peak = int(np.argmax(sign * smooth))
+    k_peak = int(np.argmax(smooth) if sign > 0 else np.argmin(smooth))
     peak_dv = float(smooth[k_peak]) - base
     fit.update(ss_dv=ss_dv, peak_dv=peak_dv, **jumps)
     fit["rin_ohm"] = ss_dv / epoch.amplitude
