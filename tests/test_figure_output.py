@@ -38,3 +38,12 @@ def test_reused_renderer_draws_each_figure_from_scratch(tmp_path):
     assert np.array_equal(first, again)
     assert not np.array_equal(first, _pixels(tmp_path / "b.png"))
     assert _pixels(tmp_path / "small.png").shape[:2] == (round(8.6 * 30), 15 * 30)
+
+
+def test_rgb_of_rgba_drops_only_alpha():
+    from pipeline.report.figures import _rgb
+
+    rgba = np.random.default_rng(3).integers(0, 256, size=(9, 13, 4), dtype=np.uint8)
+    rgb = _rgb(rgba)
+    assert rgb.shape == (9, 13, 3) and rgb.flags["C_CONTIGUOUS"]
+    assert np.array_equal(rgb, rgba[..., :3])
