@@ -497,6 +497,18 @@ def test_soma_cylinder_response_inverts_its_laplace_transform(rho):
     )
 
 
+def test_cylinder_table_is_the_response_at_every_ratio():
+    """The bridge fit tabulates the soma-cylinder shape for all its ratios at once; each row
+    must be soma_cylinder_response itself (scaled to 1 at the last sample)."""
+    from pipeline.fitters.cell import _RHO_GRID, _cylinder_table, soma_cylinder_response
+
+    assert _RHO_GRID[0] == 0.0 and np.any(np.abs(_RHO_GRID - 1.0) < 1e-4)  # both special cases
+    t = 1.5e-4 + np.arange(60) / RATE
+    for tau in (0.005, 0.03):
+        rows = np.array([soma_cylinder_response(t, tau, rho) for rho in _RHO_GRID])
+        np.testing.assert_array_equal(_cylinder_table(t, tau), rows / rows[:, -1:])
+
+
 def test_soma_cylinder_response_limits():
     from pipeline.fitters.cell import soma_cylinder_response
 

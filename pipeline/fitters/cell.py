@@ -197,7 +197,7 @@ def _bridge(fits: list[SweepFit], s: PassiveSettings, notes: list[str]) -> tuple
     return _robust_origin_slope(np.array(x), np.array(y)), ("curved" if curved else "quadratic")
 
 
-# cable-to-soma conductance ratios tried for the soma-cylinder extrapolation (0: no cable)
+# cable-to-soma conductance ratios tried for the soma-cylinder extrapolation (0 first: no cable)
 _RHO_GRID = np.concatenate(([0.0], np.geomspace(0.1, 1000.0, 61)))
 # chi^2 gain over a lone soma that calls for the cable: the 0.001 point of chi^2 with 1 dof
 _CABLE_GAIN = 10.83
@@ -246,7 +246,15 @@ def soma_cylinder_response(t: np.ndarray, tau: float, rho: float) -> np.ndarray:
 def _cylinder_table(t: np.ndarray, tau: float) -> np.ndarray:
     """:func:`soma_cylinder_response` at ``t`` for every ratio of ``_RHO_GRID``, one row each,
     scaled to 1 at the last sample."""
-    u = np.array([soma_cylinder_response(t, tau, rho) for rho in _RHO_GRID])
+    # all ratios at once (one row each, the same arithmetic): 62 calls cost ~1.5 ms a cell
+    tt = np.clip(np.asarray(t, dtype=float) / tau, 0.0, None)
+    rho = _RHO_GRID[1:, None]
+    rho = np.where(np.abs(rho - 1.0) < 1e-4, 1.0 + 1e-4, rho)  # as soma_cylinder_response
+    root = np.sqrt(tt)
+    num = rho * special.erf(root) - 1.0 + np.exp(-tt) * special.erfcx(rho * root)
+    u = np.empty((_RHO_GRID.size, tt.size))
+    u[0] = -np.expm1(-tt)  # the lone soma (rho = 0)
+    u[1:] = num / (rho * rho - 1.0)
     return u / u[:, -1:]
 
 
