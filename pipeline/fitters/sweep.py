@@ -863,8 +863,7 @@ def complete_sweep(m: SweepFit | SweepMeasure, settings: PassiveSettings) -> Swe
     """
     if isinstance(m, SweepFit):
         return m
-    charging_only = dict(fit_start_min_s=m.settings.fit_start_min_s)
-    if replace(settings, charging_model=m.settings.charging_model, **charging_only) != m.settings:
+    if not _same_but_fit(settings, m.settings):
         raise ValueError("complete_sweep: settings differ from the measurement's beyond the fit")
     reasons = list(m.reasons)
     if settings.charging_model == "none":
@@ -884,6 +883,13 @@ def complete_sweep(m: SweepFit | SweepMeasure, settings: PassiveSettings) -> Swe
         end = int(np.searchsorted(m.t, charging.t1, side="right"))
         fit["charging2"] = fit_two_exponentials(m.t[:end], m.y[:end], charging, tau_fast)
     return SweepFit(**m.head, **fit, reason="; ".join(reasons))
+
+
+@functools.lru_cache(maxsize=32)
+def _same_but_fit(a: PassiveSettings, b: PassiveSettings) -> bool:
+    """True when ``a`` and ``b`` differ at most in what the charging fit alone reads; cached
+    (a cell's sweeps ask with the same few settings)."""
+    return replace(a, charging_model=b.charging_model, fit_start_min_s=b.fit_start_min_s) == b
 
 
 def _bias(sweep: Sweep) -> float:
