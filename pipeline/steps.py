@@ -163,13 +163,11 @@ def find_step(sweep: Sweep, settings: StepSettings, index: int = 0) -> StepEpoch
     if sweep.current is None:
         return _from_schedule(sweep, settings, index)
     current = np.asarray(sweep.current, dtype=np.float64)
-    if math.isfinite(np.add.reduce(current)):  # NaN or inf anywhere makes the sum non-finite
-        return _from_current(sweep, current, settings)
     finite = np.isfinite(current)
+    if finite.all() and current.size:
+        return _from_current(sweep, current, settings)
     if not finite.any():
         return _unusable(sweep, "no current", "the stored current is all NaN")
-    if finite.all():  # finite samples whose sum overflows
-        return _from_current(sweep, current, settings)
     idx = np.arange(current.size)
     epoch = _from_current(sweep, np.interp(idx, idx[finite], current[finite]), settings)
     if epoch.usable:
@@ -243,7 +241,7 @@ def _check_step(
 def _window_noise(current: np.ndarray, width: int) -> np.ndarray:
     """Robust RMS noise per window of ``width`` samples from second differences, A."""
     d2 = np.diff(current, 2)
-    np.abs(d2, out=d2)  # in place: full-length temporaries are what this stage spends on
+    np.abs(d2, out=d2)  # in place: one full-length temporary fewer
     n_win = d2.size // width
     windows = d2[: n_win * width].reshape(n_win, width)
     windows.partition(width // 2, axis=1)  # the (upper) median of each window, in place
