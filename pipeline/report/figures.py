@@ -30,8 +30,12 @@ from matplotlib.backends.backend_agg import FigureCanvasAgg, RendererAgg
 from matplotlib.collections import LineCollection
 from matplotlib.colors import Normalize, to_rgba
 from matplotlib.figure import Figure
+from matplotlib.font_manager import FontProperties
+from matplotlib.lines import Line2D
+from matplotlib.patches import FancyBboxPatch, Rectangle
+from matplotlib.text import Text
 from matplotlib.ticker import MaxNLocator, ScalarFormatter
-from matplotlib.transforms import Bbox
+from matplotlib.transforms import Bbox, IdentityTransform
 
 from pipeline.fitters.results import CellFit, ExpFit, SweepFit
 from pipeline.qc import CellVerdict
@@ -334,14 +338,114 @@ def _draw_fits_and_windows(ax, views: list[_SweepView]) -> None:
                 alpha=0.45,
                 lw=0,
                 zorder=0,
-                label=f"{key} window",
             )
-    if any(windows.values()):
-        handles, labels = ax.get_legend_handles_labels()
-        if windows["charging fit"]:
-            handles.append(matplotlib.lines.Line2D([], [], color=FIT_COLOUR, ls="--", lw=1))
-            labels.append("fitted charging curve")
-        ax.legend(handles, labels, fontsize=7, loc="lower right", framealpha=0.85)
+    entries = [
+        (f"{key} window", "patch", {"facecolor": shades[key], "alpha": 0.45})
+        for key, wins in windows.items()
+        if wins
+    ]
+    if windows["charging fit"]:
+        entries.append(
+            ("fitted charging curve", "line", {"color": FIT_COLOUR, "ls": "--", "lw": 1})
+        )
+    if entries:
+        _key(ax, entries, "lower right")
+
+
+_HOLLOW = {"marker": "o", "ms": math.sqrt(28), "mfc": "none", "mec": EXCLUDED_COLOUR, "mew": 1.0}
+# matplotlib's legend places, in the order its "best" tries them: (x, y) of the box in the axes
+_KEY_PLACES = {
+    "upper right": (1, 1), "upper left": (0, 1), "lower left": (0, 0), "lower right": (1, 0),
+    "right": (1, 0.5), "center left": (0, 0.5), "center right": (1, 0.5),
+    "lower center": (0.5, 0), "upper center": (0.5, 1), "center": (0.5, 0.5),
+}  # fmt: skip
+
+
+def _key(
+    ax, entries: list, loc: str, avoid: Sequence = (), fontsize: float = 7.0, alpha: float = 0.85
+) -> None:
+    """A legend as a few plain artists: a framed box of symbols and labels.
+
+    Looks like ``ax.legend`` with matplotlib's default spacing (in font sizes: 0.4 inside the
+    frame, symbols 2.0 long and 0.8 from their text, rows 0.5 apart, 0.5 from the axes edge),
+    but a Legend re-lays out its box of packers on every draw, ~7 ms each. ``loc="best"``
+    takes the first place (in the Legend's order) that covers the fewest ``avoid`` points.
+
+    Parameters
+    ----------
+    ax : matplotlib.axes.Axes
+        The panel (its limits are settled here when ``loc="best"``).
+    entries : list of (str, str, dict)
+        Label, symbol kind (``"patch"``, ``"line"`` or ``"marker"``) and its artist style.
+    loc : str
+        A legend location name, or ``"best"``.
+    avoid : sequence of (float, float)
+        Data points the key should not cover.
+    fontsize : float
+        Label size, points.
+    alpha : float
+        Opacity of the frame.
+    """
+    fig = ax.get_figure(root=True)
+    renderer = fig.canvas.get_renderer()
+    prop = FontProperties(size=fontsize)
+    em = fontsize * fig.dpi / 72  # the legend's unit of spacing, pixels
+    ascent, descent, _ = renderer._get_font_height_metrics(prop)
+    line = ascent + descent
+    widths, heights = [], []
+    for label, _, _ in entries:
+        lines = label.split("\n")
+        widths.append(max(renderer._text_width(t, prop) for t in lines))
+        heights.append(max(line * (1 + 1.2 * (len(lines) - 1)), 0.7 * em))
+    w = 0.8 * em + 2.8 * em + max(widths)
+    h = 0.8 * em + sum(heights) + 0.5 * em * (len(entries) - 1)
+    box = ax.bbox
+    room_x, room_y = box.width - w - em, box.height - h - em
+
+    def corner(place: str) -> tuple[float, float]:
+        fx, fy = _KEY_PLACES[place]
+        return box.x0 + 0.5 * em + fx * room_x, box.y0 + 0.5 * em + fy * room_y
+
+    if loc == "best":
+        ax.get_xlim(), ax.get_ylim()  # settle the autoscaled limits before mapping points
+        pts = ax.transData.transform(np.asarray(avoid, float).reshape(-1, 2))
+        covered = []
+        for place in _KEY_PLACES:
+            x0, y0 = corner(place)
+            inside = (
+                (pts[:, 0] >= x0)
+                & (pts[:, 0] <= x0 + w)
+                & (pts[:, 1] >= y0)
+                & (pts[:, 1] <= y0 + h)
+            )
+            covered.append(int(inside.sum()))
+        loc = list(_KEY_PLACES)[covered.index(min(covered))]
+    x0, y0 = corner(loc)
+    pixels = {"transform": IdentityTransform(), "clip_on": False, "zorder": 5}
+    artists: list = [
+        FancyBboxPatch(
+            (x0, y0), w, h, boxstyle=f"round,pad=0,rounding_size={0.2 * em}", facecolor="white",
+            edgecolor="0.8", alpha=alpha, lw=1.0, snap=True, **pixels,
+        )
+    ]  # fmt: skip
+    top = y0 + h - 0.4 * em
+    hx = x0 + 0.4 * em
+    for (label, kind, style), row in zip(entries, heights, strict=True):
+        yc = top - row / 2
+        if kind == "patch":
+            artists.append(
+                Rectangle((hx, yc - 0.35 * em), 2 * em, 0.7 * em, lw=0, **style, **pixels)
+            )
+        elif kind == "line":
+            artists.append(Line2D([hx, hx + 2 * em], [yc, yc], **style, **pixels))
+        else:
+            artists.append(Line2D([hx + em], [yc], ls="none", **style, **pixels))
+        artists.append(
+            Text(hx + 2.8 * em, yc, label, fontproperties=prop, va="center", ha="left", **pixels)
+        )
+        top -= row + 0.5 * em
+    for artist in artists:
+        ax.add_artist(artist)
 
 
 def _trace_limits(ax, spans, views: list[_SweepView]) -> float | None:
@@ -460,19 +564,30 @@ def _draw_iv_fit(ax, points: list[_SweepView], cell_fit: CellFit | None) -> None
     x = np.linspace(min(min(xs), 0.0), max(max(xs), 0.0), 50)
     b, slope = _iv_offset_v(points, f.iv_intercept_v), f.iv_slope_ohm
     lo, hi = f.rin_ci_ohm
+    entries: list = []
+    avoid = [  # what the key should not cover: the points, the line and its band
+        (v.step_a * 1e12, getattr(v.fit, k) * 1e3)
+        for v in points
+        for k in ("ss_dv", "peak_dv")
+        if _finite(getattr(v.fit, k))
+    ]
     if _finite(lo) and _finite(hi) and _finite(f.rin_ohm):
         # the slope's 95% band: Rin's interval moved onto the slope (slope = Rin + bridge error)
         y1 = (b + (slope + lo - f.rin_ohm) * x) * 1e3
         y2 = (b + (slope + hi - f.rin_ohm) * x) * 1e3
-        ax.fill_between(x * 1e12, y1, y2, color=FIT_COLOUR, alpha=0.15, lw=0, label="95% interval")
+        ax.fill_between(x * 1e12, y1, y2, color=FIT_COLOUR, alpha=0.15, lw=0)
+        entries.append(("95% interval", "patch", {"facecolor": FIT_COLOUR, "alpha": 0.15}))
+        avoid += [*np.column_stack([x * 1e12, y1]), *np.column_stack([x * 1e12, y2])]
     label = f"steady-state fit: {slope / 1e6:.0f} MΩ"
     if _finite(f.bridge_error_ohm) and f.bridge_error_ohm != 0 and _finite(f.rin_ohm):
         label += (
             f"\n(Rin {f.rin_ohm / 1e6:.0f} MΩ after {f.bridge_error_ohm / 1e6:.1f} MΩ bridge error)"
         )
-    ax.plot(x * 1e12, (b + slope * x) * 1e3, color=FIT_COLOUR, lw=1.2, label=label)
-    _points(ax, [], [], "o", 28, "none", EXCLUDED_COLOUR, label="not used in the fit")
-    ax.legend(fontsize=7, loc="best", framealpha=0.85)
+    ax.plot(x * 1e12, (b + slope * x) * 1e3, color=FIT_COLOUR, lw=1.2)
+    entries.append((label, "line", {"color": FIT_COLOUR, "lw": 1.2}))
+    entries.append(("not used in the fit", "marker", _HOLLOW))
+    avoid += [*np.column_stack([x * 1e12, (b + slope * x) * 1e3])]
+    _key(ax, entries, "best", avoid)
 
 
 def _draw_residuals(ax, fig, views: list[_SweepView], dpi: float) -> None:
@@ -723,9 +838,12 @@ def _draw_rheobase(ax, fig, views: list[_SweepView], spikes: Any, dpi: float) ->
             marker="o",
             ms=3.5,
             color=PEAK_COLOUR,
-            label="threshold",
         )
-        ax.legend(fontsize=7, loc="upper right", framealpha=0.85)
+        _key(
+            ax,
+            [("threshold", "marker", {"marker": "o", "ms": 3.5, "color": PEAK_COLOUR})],
+            "upper right",
+        )
     step = getattr(spikes, "rheobase_a", view.step_a)
     step_text = f"{step * 1e12:.0f} pA" if _finite(step) else "step unknown"
     _title(ax, f"rheobase sweep {view.number} ({step_text}), {len(marks)} spikes detected")
@@ -748,10 +866,9 @@ def _draw_fi(ax, views: list[_SweepView], spikes: Any) -> None:
     title = "f–I"
     if _finite(slope) and _finite(intercept) and len(fitted) >= 2:
         x = np.array([min(fitted), max(fitted)])
-        ax.plot(
-            x * 1e12, intercept + slope * x, color=FAIL_COLOUR, lw=1.2, ls="--", label="slope fit"
-        )
-        ax.legend(fontsize=7, loc="lower right")
+        ax.plot(x * 1e12, intercept + slope * x, color=FAIL_COLOUR, lw=1.2, ls="--")
+        _key(ax, [("slope fit", "line", {"color": FAIL_COLOUR, "lw": 1.2, "ls": "--"})],
+             "lower right", alpha=0.8)  # fmt: skip
         title += f": slope {slope * 1e-9:.0f} Hz/nA over {len(fitted)} steps"
     _title(ax, title)
 
@@ -794,6 +911,8 @@ def _layout(fig: Figure, with_spikes: bool) -> tuple[dict[str, Any], Any]:
     for ax in axes.values():
         _ticks(ax.xaxis)
         _ticks(ax.yaxis)
+        if to_rgba(ax.get_facecolor()) == to_rgba(fig.get_facecolor()) == (1, 1, 1, 1):
+            ax.patch.set_visible(False)  # white on white: a full fill per panel for nothing
     return axes, gs[:, 2].get_position(fig)
 
 
@@ -816,7 +935,14 @@ class _Page:
         for ax in self.axes.values():
             if ax.get_legend() is not None:
                 ax.get_legend().remove()
-            for artist in [*ax.lines, *ax.patches, *ax.collections, *ax.texts, *ax.images]:
+            for artist in [
+                *ax.lines,
+                *ax.patches,
+                *ax.collections,
+                *ax.texts,
+                *ax.images,
+                *ax.artists,
+            ]:
                 artist.remove()
             ax.set_prop_cycle(None)
             ax.dataLim.set_points(Bbox.null().get_points())
@@ -911,6 +1037,7 @@ class _TextRenderer(RendererAgg):
         super().__init__(width, height, dpi)
         self._bitmaps: dict[tuple, tuple[np.ndarray | None, int, int]] = {}
         self._heights: dict[tuple, tuple[float, float, float] | tuple[None, None, None]] = {}
+        self._widths: dict[tuple, float] = {}
         self._font_rc: tuple = ()
 
     def clear(self) -> None:
@@ -919,7 +1046,18 @@ class _TextRenderer(RendererAgg):
         font_rc = tuple(str(v) for k, v in matplotlib.rcParams.items() if k.startswith("font."))
         if font_rc != self._font_rc:
             self._heights.clear()
+            self._widths.clear()
             self._font_rc = font_rc
+
+    def _text_width(self, s: str, prop) -> float:
+        """Width of one line of text, pixels (kept: keys are measured for every figure)."""
+        key = (s, _prop_key(prop))
+        width = self._widths.get(key)
+        if width is None:
+            if len(self._widths) >= _MAX_TEXT_BITMAPS:
+                self._widths.clear()
+            width = self._widths[key] = self.get_text_width_height_descent(s, prop, False)[0]
+        return width
 
     def _get_font_height_metrics(self, prop) -> tuple:
         """Ascent, descent and line gap of a font (pixels), kept per font and size.
