@@ -57,7 +57,7 @@ class SeriesData:
     name: str
     kind: str  # neurodata type: CurrentClampSeries, IZeroClampSeries, CurrentClampStimulusSeries
     electrode: str
-    values: np.ndarray
+    values: np.ndarray | None  # None once its sweeps are built (they hold copies)
     rate: float
     start_time: float
     sweep_number: int | None
@@ -180,9 +180,13 @@ def _series_data(
 
 def _declared_length(data: Any) -> int:
     """Samples a series declares (its first dimension), without reading them."""
+    import h5py
+
+    if not isinstance(data, h5py.h5d.DatasetID):  # a dataset's id has h5py's dataset shape
+        data = _wrap(data)
     shape = getattr(data, "shape", None)
     if shape is None:
-        return len(data)
+        return len(_wrap(data))
     return int(shape[0]) if len(shape) else 1
 
 
@@ -523,7 +527,7 @@ def _id(obj: Any) -> Any:
 
 
 def _link_target(group: Any, key: str) -> str | None:
-    """Path a link points to (NWB stores links to electrodes as HDF5 soft links)."""
+    """Path the link ``key`` of ``group`` points to (NWB links electrodes by soft links)."""
     import h5py
 
     if not isinstance(group, h5py.h5g.GroupID):
@@ -531,14 +535,16 @@ def _link_target(group: Any, key: str) -> str | None:
         if link is not None and not isinstance(link, h5py.SoftLink):
             raise NotUnderstood(f"{_wrap(group).name}/{key} is not a soft link")
         return None if link is None else link.path
-    if key not in h5py.Group(group):  # as h5py's get(getlink=True): a dangling link is no link
-        return None
+    # As h5py's get(getlink=True), which first asks ``key in group``: true for any soft or
+    # external link (its target is not checked), asked here only for the other kinds.
     kind = group.links.get_info(key.encode()).type
     if kind == h5py.h5l.TYPE_SOFT:
         target = group.links.get_val(key.encode())
         with contextlib.suppress(UnicodeDecodeError):  # h5py keeps undecodable paths as bytes
             target = target.decode("utf8")
         return target
+    if kind != h5py.h5l.TYPE_EXTERNAL and key not in h5py.Group(group):
+        return None
     if kind in (h5py.h5l.TYPE_EXTERNAL, h5py.h5l.TYPE_HARD):
         raise NotUnderstood(f"{_wrap(group).name}/{key} is not a soft link")
     raise TypeError("Unknown link type")  # as h5py's object API
@@ -549,7 +555,7 @@ def _attr(obj: Any, key: str) -> Any:
     value = _plain_attr(obj, key)
     if value is _OTHER:
         value = _wrap(obj).attrs.get(key)
-    if isinstance(value, bytes | str):
+    if isinstance(value, (bytes, str)):  # a tuple: faster than a union, per call
         return _text(value)
     return value
 
@@ -605,7 +611,7 @@ def _plain_attr(obj: Any, key: str) -> Any:
     """``obj.attrs.get(key)`` for a plain scalar, read as h5py's ``AttributeManager`` does.
 
     None when missing; _OTHER for what to leave to the object API (an empty attribute, an
-    array, compounds, references, ...).
+    array even of one value, compounds, references, ...).
     """
     import h5py
 
@@ -616,15 +622,14 @@ def _plain_attr(obj: Any, key: str) -> Any:
         attr = h5py.h5a.open(oid, key.encode())
     except KeyError:  # what the object API's get() takes for a missing attribute
         return None
+    if attr.get_space().get_simple_extent_type() != h5py.h5s.SCALAR:
+        return _OTHER
     plain = _plain_type(attr.get_type())
-    if plain is None or attr.get_storage_size() == 0:  # no storage: an empty dataspace
+    if plain is None:
         return _OTHER
     dtype, mtype = plain
     out = np.zeros((), dtype=dtype)
-    try:
-        attr.read(out, mtype=mtype)  # h5py checks the rank of the dataspace against out's
-    except TypeError:  # an array, even of one value
-        return _OTHER
+    attr.read(out, mtype=mtype)
     value = out[()]
     if dtype.kind == "O":  # h5py decodes variable-length strings so, whatever their encoding
         return value.decode("utf-8", "surrogateescape")
@@ -650,9 +655,9 @@ def _float_samples(data: Any, start: int, stop: int | None) -> np.ndarray:
     """``data[start:stop]`` (an h5py dataset, low-level id or array) as a new float64 array.
 
     The values are numpy's conversion of h5py's array. A low-level id of a 1-D (or one-column)
-    dataset of IEEE 32- or 64-bit floats is read as one hyperslab straight into float64 (HDF5
-    widens exactly, as numpy does): no intermediate array, whose fresh pages cost more than the
-    copy. The pynwb engine hands h5py datasets, read as h5py reads them (its reference).
+    dataset of native 32- or 64-bit floats is read straight into float64 (HDF5 widens as numpy
+    does, bit for bit): no intermediate array, whose fresh pages cost more than the copy. The
+    pynwb engine hands h5py datasets, read as h5py reads them (its reference).
     """
     import h5py
 
@@ -660,8 +665,7 @@ def _float_samples(data: Any, start: int, stop: int | None) -> np.ndarray:
         out = _read_floats(data, start, stop)
         if out is not None:
             return out
-        data = _wrap(data)
-    raw = data[start:stop]
+    raw = _wrap(data)[start:stop]
     values = np.asarray(raw, dtype=np.float64)
     return values.copy() if values is raw else values  # the caller scales it in place
 
@@ -670,7 +674,8 @@ def _read_floats(did: Any, start: int, stop: int | None) -> np.ndarray | None:
     """``did[start:stop]`` into float64 for a plain float dataset of one channel, else None."""
     import h5py
 
-    if not any(did.get_type() == t for t in _ieee_floats()):
+    tid = did.get_type()
+    if not any(tid == t for t in _native_floats()):
         return None
     space = did.get_space()
     if space.get_simple_extent_type() != h5py.h5s.SIMPLE:
@@ -680,19 +685,21 @@ def _read_floats(did: Any, start: int, stop: int | None) -> np.ndarray | None:
     if last <= first or shape[1:] not in ((), (1,)):
         return None  # nothing to read, or not one channel: the object API's array and error
     count = (last - first, *shape[1:])
-    space.select_hyperslab((first, *(0 for _ in shape[1:])), count)
     out = np.empty(count, dtype=np.float64)
-    did.read(h5py.h5s.create_simple(count), space, out, h5py.h5t.NATIVE_DOUBLE)
+    if count == shape:  # the whole series: HDF5's fastest path
+        did.read(h5py.h5s.ALL, h5py.h5s.ALL, out, h5py.h5t.NATIVE_DOUBLE)
+    else:
+        space.select_hyperslab((first, *(0 for _ in shape[1:])), count)
+        did.read(h5py.h5s.create_simple(count), space, out, h5py.h5t.NATIVE_DOUBLE)
     return out
 
 
 @functools.cache
-def _ieee_floats() -> tuple[Any, ...]:
-    """HDF5's IEEE float types, 32 and 64 bits, little- and big-endian."""
+def _native_floats() -> tuple[Any, ...]:
+    """HDF5's native 32- and 64-bit floats (a swapped byte order converts NaNs otherwise)."""
     import h5py
 
-    t = h5py.h5t
-    return (t.IEEE_F32LE, t.IEEE_F64LE, t.IEEE_F32BE, t.IEEE_F64BE)
+    return (h5py.h5t.NATIVE_FLOAT, h5py.h5t.NATIVE_DOUBLE)
 
 
 def _metadata_h5(f: Any) -> dict[str, str]:
@@ -759,13 +766,25 @@ def build_recordings(
     meta: dict[str, str],
     skipped: list[str],
 ) -> list[Recording]:
-    """Group (response, stimulus) pairs by electrode into checked Recordings."""
+    """Group (response, stimulus) pairs by electrode into checked Recordings.
+
+    A series' samples are let go once its last sweep is built (each Sweep holds a copy), so the
+    next sweep's copy reuses their memory: touching fresh pages costs more than the copy.
+    """
     name = str(path)
+    uses = Counter(id(x) for pair in pairs for x in pair if x is not None)
     electrodes = list(dict.fromkeys(r.electrode for r, _ in pairs))
     out = []
     for electrode, cell_id in zip(electrodes, cell_ids(path, electrodes), strict=True):
         mine = [(r, s) for r, s in pairs if r.electrode == electrode]
-        sweeps = [_sweep(name, order, r, s) for order, (r, s) in enumerate(mine)]
+        sweeps = []
+        for order, (r, s) in enumerate(mine):
+            sweeps.append(_sweep(name, order, r, s))
+            for series in (r, s):
+                if series is not None:
+                    uses[id(series)] -= 1
+                    if not uses[id(series)]:
+                        series.values = None
         sweeps.sort(key=lambda s: (s.number, s.start_time))
         out.append(make_recording(name, cell_id, electrode, sweeps, meta, skipped))
     return out
