@@ -763,7 +763,7 @@ def fit_sweep(sweep: Sweep, epoch: StepEpoch, settings: PassiveSettings) -> Swee
     return complete_sweep(measure_sweep(sweep, epoch, settings), settings)
 
 
-@dataclass(frozen=True)
+@dataclass(frozen=True, eq=False)  # compared by identity: it holds arrays and dicts
 class SweepMeasure:
     """A hyperpolarizing sweep measured up to its charging-curve fit.
 
