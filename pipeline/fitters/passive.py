@@ -106,7 +106,9 @@ def fit_sweeps(
     signal-to-noise); every hyperpolarizing sweep is then fitted starting no earlier than the
     dendritic equalisation time found on them, with the exp+sag model when the largest step
     sags (small steps are too noisy to decide alone). Calling :func:`fit_sweep` sweep by sweep
-    skips this and decides per sweep.
+    skips this and decides per sweep. Each trace is measured once
+    (:func:`pipeline.fitters.sweep.measure_sweep`); the second pass redoes only the charging
+    fits, and not those it would repeat.
     """
     hyper = sorted(
         (k for k, (_, ep) in enumerate(pairs) if ep.usable and ep.amplitude < 0),
