@@ -10,6 +10,7 @@ from __future__ import annotations
 import dataclasses
 import io
 import math
+import sys
 import threading
 
 import numpy as np
@@ -216,3 +217,44 @@ def test_text_bitmaps_match_stock_drawing(monkeypatch):
     # only where two glyph boxes overlap may merged coverage round differently
     assert diff.max() <= 2 and np.any(diff > 0, axis=-1).sum() < 0.002 * ink
     clear_figure_cache()
+
+
+# -- axis labels placed from kept text metrics, against matplotlib's own placing ------------
+
+
+def _label_places(cell, path, monkeypatch=None) -> dict:
+    """Where each axis label of a cell's figure ends up (display pixels), after drawing."""
+    clear_figure_cache()
+    kept: dict = {}
+    draw_page = figures._draw_page
+
+    def spy(page, *args):
+        draw_page(page, *args)  # draws and writes the PNG; the page is cleared after this
+        for name, ax in page.axes.items():
+            if ax.get_visible():
+                for axis in (ax.xaxis, ax.yaxis):
+                    label = axis.label
+                    kept[(name, axis.axis_name)] = tuple(
+                        label.get_transform().transform(label.get_position())
+                    )
+
+    with pytest.MonkeyPatch.context() as patch:
+        patch.setattr(figures, "_draw_page", spy)
+        if monkeypatch is not None:
+            patch.setattr(figures, "_place_axis_labels", monkeypatch)
+        _draw(cell, path)
+    clear_figure_cache()
+    return kept
+
+
+@pytest.mark.parametrize("name", ["normal", "spiking", "failed fits, spiking row", "absurd values"])
+@pytest.mark.parametrize("dpi", [40, 100])
+def test_axis_labels_where_matplotlib_puts_them(tmp_path, name, dpi, monkeypatch):
+    """Each axis label at matplotlib's own place (it measures all tick labels to find it)."""
+    monkeypatch.setattr(sys.modules[__name__], "DPI", dpi)
+    cell = _cells()[name]
+    ours = _label_places(cell, tmp_path / "ours.png")
+    theirs = _label_places(cell, tmp_path / "theirs.png", monkeypatch=lambda ax: None)
+    assert ours.keys() == theirs.keys() and len(ours) >= 10
+    for key, place in ours.items():
+        assert place == pytest.approx(theirs[key], abs=1e-6), key

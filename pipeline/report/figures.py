@@ -34,7 +34,7 @@ from matplotlib.font_manager import FontProperties
 from matplotlib.lines import Line2D
 from matplotlib.patches import FancyBboxPatch, Rectangle
 from matplotlib.text import Text
-from matplotlib.ticker import MaxNLocator, ScalarFormatter
+from matplotlib.ticker import MaxNLocator, NullLocator, ScalarFormatter
 from matplotlib.transforms import Bbox, IdentityTransform
 
 from pipeline.fitters.results import CellFit, ExpFit, SweepFit
@@ -873,6 +873,61 @@ def _draw_fi(ax, views: list[_SweepView], spikes: Any) -> None:
     _title(ax, title)
 
 
+def _place_axis_labels(ax) -> None:
+    """Put the axis labels where matplotlib would put them, from the tick labels' sizes.
+
+    Matplotlib finds the place on every draw by laying out every tick label twice more and
+    the ticks a third time (for the spine), ~1.5 ms per axis; here the sizes come from the
+    renderer's kept text metrics. Same rule (``XAxis/YAxis._update_label_position``): the
+    label sits ``labelpad`` beyond the union of the tick labels and the spine with its tick
+    marks. ``test_axis_labels_where_matplotlib_puts_them`` checks the places.
+    """
+    fig = ax.get_figure(root=True)
+    renderer = fig.canvas.get_renderer()
+    px = fig.dpi / 72  # pixels per point
+    box = ax.bbox
+    for axis in (ax.xaxis, ax.yaxis):
+        tick = axis.majorTicks[0]  # drawn ticks share its style
+        if axis.label_position in ("left", "bottom"):
+            label_on, mark_on, sign = tick.label1.get_visible(), tick.tick1line.get_visible(), -1
+        else:
+            label_on, mark_on, sign = tick.label2.get_visible(), tick.tick2line.get_visible(), 1
+        if isinstance(axis.get_major_locator(), NullLocator):
+            locs, labels = [], []
+        else:
+            locs = axis.get_majorticklocs()
+            labels = axis.get_major_formatter().format_ticks(locs)
+        lo, hi = sorted(axis.get_view_interval())
+        tol = (hi - lo) * 1e-10  # as matplotlib keeps ticks at the view's edges
+        shown = [t for t, x in zip(labels, locs, strict=True) if lo - tol <= x <= hi + tol]
+        # spine (no width) plus its tick marks, then the tick labels beyond the tick pad
+        reach = tick.get_tick_padding() * px if shown and mark_on else 0.0
+        pad = (tick.get_pad() + tick.get_tick_padding()) * px
+        prop = tick.label1.get_fontproperties()
+        for text in shown if label_on else ():
+            if axis is ax.yaxis:
+                size = renderer._text_width(text, prop) if text else 0.0
+            else:
+                size = _label_height(renderer, text, prop) if text else 0.0
+            reach = max(reach, pad + size)
+        reach += axis.labelpad * px
+        if axis is ax.xaxis:
+            y = box.y0 - reach if sign < 0 else box.y1 + reach
+            axis.set_label_coords(box.x0 + 0.5 * box.width, y, transform=IdentityTransform())
+        else:
+            x = box.x0 - reach if sign < 0 else box.x1 + reach
+            axis.set_label_coords(x, box.y0 + 0.5 * box.height, transform=IdentityTransform())
+
+
+def _label_height(renderer, text: str, prop) -> float:
+    """Height of a one-line text box as ``Text`` lays it out (at least the font's extent)."""
+    _, h, d = renderer._text_extent(text, prop)
+    ascent, descent, _ = renderer._get_font_height_metrics(prop)
+    if ascent is None:
+        return h
+    return max(h - d, ascent) + max(d, descent)
+
+
 def _ticks(axis) -> None:
     """The panels' tick rule: few ticks, as each tick is several artists drawn every time."""
     axis.set_major_locator(MaxNLocator(6, steps=[1, 2, 2.5, 5, 10]))
@@ -1036,28 +1091,38 @@ class _TextRenderer(RendererAgg):
     def __init__(self, width: int, height: int, dpi: float) -> None:
         super().__init__(width, height, dpi)
         self._bitmaps: dict[tuple, tuple[np.ndarray | None, int, int]] = {}
+        self._layouts: dict[tuple, list] = {}
         self._heights: dict[tuple, tuple[float, float, float] | tuple[None, None, None]] = {}
-        self._widths: dict[tuple, float] = {}
+        self._widths: dict[tuple, tuple[float, float, float]] = {}
         self._font_rc: tuple = ()
 
     def clear(self) -> None:
-        """Start a draw; forget font metrics if the font settings changed since the last."""
+        """Start a draw; forget what was kept if the font or text settings changed.
+
+        The keys name fonts by their properties; which file that finds (and its hinting)
+        depends on these settings.
+        """
         super().clear()
-        font_rc = tuple(str(v) for k, v in matplotlib.rcParams.items() if k.startswith("font."))
+        font_rc = tuple(
+            str(v) for k, v in matplotlib.rcParams.items() if k.startswith(("font.", "text."))
+        )
         if font_rc != self._font_rc:
-            self._heights.clear()
-            self._widths.clear()
+            for kept in (self._bitmaps, self._layouts, self._heights, self._widths):
+                kept.clear()
             self._font_rc = font_rc
 
-    def _text_width(self, s: str, prop) -> float:
-        """Width of one line of text, pixels (kept: keys are measured for every figure)."""
+    def _text_extent(self, s: str, prop) -> tuple[float, float, float]:
+        """Width, height and descent of one line of text, pixels (kept per text and font)."""
         key = (s, _prop_key(prop))
-        width = self._widths.get(key)
-        if width is None:
+        extent = self._widths.get(key)
+        if extent is None:
             if len(self._widths) >= _MAX_TEXT_BITMAPS:
                 self._widths.clear()
-            width = self._widths[key] = self.get_text_width_height_descent(s, prop, False)[0]
-        return width
+            extent = self._widths[key] = self.get_text_width_height_descent(s, prop, False)
+        return extent
+
+    def _text_width(self, s: str, prop) -> float:
+        return self._text_extent(s, prop)[0]
 
     def _get_font_height_metrics(self, prop) -> tuple:
         """Ascent, descent and line gap of a font (pixels), kept per font and size.
@@ -1083,17 +1148,17 @@ class _TextRenderer(RendererAgg):
         language = mtext.get_language() if mtext is not None else None
         flags = get_hinting_flag()
         antialiased = bool(gc.get_antialiased())
-        font = self._prepare_font(prop)
         tx, ty = round(64 * x), round(64 * (self.height - y))  # 26.6 fixed point, y upwards
-        key = (
-            s, _prop_key(prop), font.fname, matplotlib.rcParams["text.hinting_factor"], self.dpi, angle,
-            antialiased, flags, _hashable(features), _hashable(language), tx & 63, ty & 63,
-        )  # fmt: skip
+        line = (s, _prop_key(prop), self.dpi, flags, _hashable(features), _hashable(language))
+        key = (line, angle, antialiased, tx & 63, ty & 63)
         entry = self._bitmaps.get(key)
         if entry is None:
             try:
-                entry = self._line_bitmap(font, s, prop, x, y, angle, antialiased, flags,
-                                          features, language, tx >> 6, ty >> 6)  # fmt: skip
+                items = self._layouts.get(line)
+                if items is None:
+                    items = self._layout(line, s, prop, flags, features, language)
+                entry = self._line_bitmap(items, prop, x, y, angle, antialiased, flags,
+                                          tx >> 6, ty >> 6)  # fmt: skip
             except (AttributeError, TypeError, ValueError):
                 _GLYPHS_ONE_BY_ONE = False  # private API changed: stock drawing from now on
                 return super().draw_text(gc, x, y, s, prop, angle, ismath, mtext)
@@ -1108,8 +1173,20 @@ class _TextRenderer(RendererAgg):
                 image, (tx >> 6) + left, int(self.height) - top + image.shape[0], 0, gc
             )
 
+    def _layout(self, line: tuple, s, prop, flags, features, language) -> list:
+        """The glyphs of a line and their offsets, as ``RendererAgg.draw_text`` lays them out."""
+        font = self._prepare_font(prop)
+        items = [
+            (item.ft_object, item.glyph_index, item.x, item.y)
+            for item in font._layout(s, flags=flags, features=features, language=language)
+        ]
+        if len(self._layouts) >= _MAX_TEXT_BITMAPS:
+            self._layouts.pop(next(iter(self._layouts)))
+        self._layouts[line] = items
+        return items
+
     def _line_bitmap(
-        self, font, s, prop, x, y, angle, antialiased, flags, features, language, bx, by
+        self, items, prop, x, y, angle, antialiased, flags, bx, by
     ) -> tuple[np.ndarray | None, int, int]:
         """Render the glyphs as ``RendererAgg._draw_text_glyphs_and_boxes`` does; merge them.
 
@@ -1118,22 +1195,21 @@ class _TextRenderer(RendererAgg):
         """
         from matplotlib.ft2font import RenderMode
 
-        items = font._layout(s, flags=flags, features=features, language=language)
         size = prop.get_size_in_points()
         cos, sin = math.cos(math.radians(angle)), math.sin(math.radians(angle))
         matrix = (0x10000 * np.array([[cos, -sin], [sin, cos]])).round().astype(int)
         mode = RenderMode.NORMAL if antialiased else RenderMode.MONO
         glyphs = []
-        for item in items:
-            item.ft_object.set_size(size, self.dpi)
-            item.ft_object._set_transform(
+        for ft_object, glyph_index, dx, dy in items:
+            ft_object.set_size(size, self.dpi)
+            ft_object._set_transform(
                 matrix,
                 [
-                    round(0x40 * (x + item.x * cos - item.y * sin)),
-                    round(0x40 * (self.height - y + item.x * sin + item.y * cos)),
+                    round(0x40 * (x + dx * cos - dy * sin)),
+                    round(0x40 * (self.height - y + dx * sin + dy * cos)),
                 ],
             )
-            bitmap = item.ft_object._render_glyph(item.glyph_index, flags, mode)
+            bitmap = ft_object._render_glyph(glyph_index, flags, mode)
             cover = np.asarray(bitmap.buffer, dtype=np.float64)
             if cover.size:
                 glyphs.append((bitmap.left, bitmap.top, cover if antialiased else cover * 255))
@@ -1372,6 +1448,9 @@ def _draw_page(
     if spikes is not None:
         _draw_rheobase(axes["spike_sweep"], fig, views, spikes, cfg.dpi)
         _draw_fi(axes["fi"], views, spikes)
+    for ax in axes.values():
+        if ax.get_visible():
+            _place_axis_labels(ax)
     with atomic_path(path) as tmp:
         fig.savefig(
             tmp,
