@@ -400,11 +400,11 @@ def _children(f: Any, top: str) -> list[tuple[str, Any]]:
 def _rows_h5(path: str, f: Any, known: dict[Any, tuple[str, str | None]]) -> list | None:
     if TABLE not in f:
         return None
-    table = f[TABLE]
+    table = _open(f.id, TABLE)
     if _attr(table, "neurodata_type") != "IntracellularRecordingsTable":
         raise NotUnderstood("unexpected intracellular recordings table")
-    responses = table["responses/response"][()]
-    stimuli = table["stimuli/stimulus"][()]
+    responses = _column(table, "responses/response")
+    stimuli = _column(table, "stimuli/stimulus")
     rows = []
     for resp, stim in zip(responses, stimuli, strict=True):
         if resp["idx_start"] < 0 or not resp["timeseries"]:
@@ -472,6 +472,21 @@ def _load_h5(
         protocol=protocol,
         settings=settings,
     )
+
+
+def _column(table: Any, key: str) -> Any:
+    """``table[key][()]`` (table a low-level id): a whole column of the recordings table."""
+    import h5py
+
+    column = _open(table, key) if isinstance(table, h5py.h5g.GroupID) else _wrap(table)[key]
+    if isinstance(column, h5py.h5d.DatasetID):
+        space = column.get_space()
+        if space.get_simple_extent_type() == h5py.h5s.SIMPLE and space.get_select_npoints():
+            dtype = column.dtype  # the memory type of h5py's read, references included
+            out = np.zeros(space.get_simple_extent_dims(), dtype=dtype)
+            column.read(h5py.h5s.ALL, h5py.h5s.ALL, out, h5py.h5t.py_create(dtype))
+            return out
+    return _wrap(column)[()]
 
 
 def _link_exists(group: Any) -> Any:
@@ -581,9 +596,10 @@ def _scalar(group: Any, key: str) -> Any:
 _OTHER = object()  # a storage kind the low-level readers leave to h5py's object API
 _PLAIN_TYPES: list[tuple[Any, np.dtype, Any]] = []  # (HDF5 type, h5py's dtype, memory type)
 _MAX_PLAIN_TYPES = 16  # a file has a handful; a hostile one must not grow the list for ever
+_LAST_TYPE: dict[str, int] = {}  # name -> the entry its last value matched: tried first
 
 
-def _plain_type(tid: Any) -> tuple[np.dtype, Any] | None:
+def _plain_type(tid: Any, name: str) -> tuple[np.dtype, Any] | None:
     """(dtype, memory type) h5py reads the HDF5 type ``tid`` as, or None if not plain.
 
     Plain: numbers, fixed-length byte strings and variable-length strings, which is what NWB
@@ -593,8 +609,13 @@ def _plain_type(tid: Any) -> tuple[np.dtype, Any] | None:
     """
     import h5py
 
-    for known, dtype, mtype in _PLAIN_TYPES:
+    last = _LAST_TYPE.get(name)
+    if last is not None and tid == _PLAIN_TYPES[last][0]:
+        return _PLAIN_TYPES[last][1:]
+    for i, (known, dtype, mtype) in enumerate(_PLAIN_TYPES):
         if tid == known:
+            if name in _LAST_TYPE or len(_LAST_TYPE) < 64:  # a hostile file's names: not all
+                _LAST_TYPE[name] = i
             return dtype, mtype
     dtype = tid.dtype
     info = h5py.check_string_dtype(dtype)
@@ -624,7 +645,7 @@ def _plain_attr(obj: Any, key: str) -> Any:
         return None
     if attr.get_space().get_simple_extent_type() != h5py.h5s.SCALAR:
         return _OTHER
-    plain = _plain_type(attr.get_type())
+    plain = _plain_type(attr.get_type(), key)
     if plain is None:
         return _OTHER
     dtype, mtype = plain
@@ -643,7 +664,7 @@ def _value(ds: Any) -> Any:
     did = _id(ds)
     if isinstance(did, h5py.h5d.DatasetID):
         if did.get_space().get_simple_extent_type() == h5py.h5s.SCALAR:
-            plain = _plain_type(did.get_type())
+            plain = _plain_type(did.get_type(), "")  # "": one memo for all scalar datasets
             if plain is not None:
                 out = np.zeros((), dtype=plain[0])
                 did.read(h5py.h5s.ALL, h5py.h5s.ALL, out, plain[1])
@@ -655,9 +676,9 @@ def _float_samples(data: Any, start: int, stop: int | None) -> np.ndarray:
     """``data[start:stop]`` (an h5py dataset, low-level id or array) as a new float64 array.
 
     The values are numpy's conversion of h5py's array. A low-level id of a 1-D (or one-column)
-    dataset of native 32- or 64-bit floats is read straight into float64 (HDF5 widens as numpy
-    does, bit for bit): no intermediate array, whose fresh pages cost more than the copy. The
-    pynwb engine hands h5py datasets, read as h5py reads them (its reference).
+    dataset of native 32- or 64-bit floats is read in one call, as stored, then widened by
+    numpy as before. The pynwb engine hands h5py datasets, read as h5py reads them (its
+    reference).
     """
     import h5py
 
@@ -671,7 +692,7 @@ def _float_samples(data: Any, start: int, stop: int | None) -> np.ndarray:
 
 
 def _read_floats(did: Any, start: int, stop: int | None) -> np.ndarray | None:
-    """``did[start:stop]`` into float64 for a plain float dataset of one channel, else None."""
+    """``did[start:stop]`` as float64 for a native float dataset of one channel, else None."""
     import h5py
 
     tid = did.get_type()
@@ -685,18 +706,20 @@ def _read_floats(did: Any, start: int, stop: int | None) -> np.ndarray | None:
     if last <= first or shape[1:] not in ((), (1,)):
         return None  # nothing to read, or not one channel: the object API's array and error
     count = (last - first, *shape[1:])
-    out = np.empty(count, dtype=np.float64)
+    single = tid == h5py.h5t.NATIVE_FLOAT
+    out = np.empty(count, dtype=np.float32 if single else np.float64)
+    mtype = h5py.h5t.NATIVE_FLOAT if single else h5py.h5t.NATIVE_DOUBLE  # no HDF5 conversion
     if count == shape:  # the whole series: HDF5's fastest path
-        did.read(h5py.h5s.ALL, h5py.h5s.ALL, out, h5py.h5t.NATIVE_DOUBLE)
+        did.read(h5py.h5s.ALL, h5py.h5s.ALL, out, mtype)
     else:
         space.select_hyperslab((first, *(0 for _ in shape[1:])), count)
-        did.read(h5py.h5s.create_simple(count), space, out, h5py.h5t.NATIVE_DOUBLE)
-    return out
+        did.read(h5py.h5s.create_simple(count), space, out, mtype)
+    return out.astype(np.float64) if single else out  # numpy widens 16x faster than HDF5
 
 
 @functools.cache
 def _native_floats() -> tuple[Any, ...]:
-    """HDF5's native 32- and 64-bit floats (a swapped byte order converts NaNs otherwise)."""
+    """HDF5's native 32- and 64-bit floats, read without conversion."""
     import h5py
 
     return (h5py.h5t.NATIVE_FLOAT, h5py.h5t.NATIVE_DOUBLE)
@@ -707,7 +730,10 @@ def _metadata_h5(f: Any) -> dict[str, str]:
     if start is not None:
         with contextlib.suppress(ValueError):
             start = dt.datetime.fromisoformat(start).isoformat()
-    subject = f.get("general/subject")
+    try:
+        subject = _open(f.id, "general/subject")
+    except KeyError:  # as h5py's get()
+        subject = None
     return _clean_metadata(
         {
             "session_description": _scalar(f, "session_description"),
