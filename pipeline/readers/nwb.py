@@ -388,7 +388,7 @@ def _children(f: Any, top: str) -> list[tuple[str, Any]]:
     parent = f[top]
     out = []
     for key in parent:
-        obj = _open(parent.id, key) if isinstance(parent, h5py.Group) else parent[key]
+        obj = _member(parent.id, key) if isinstance(parent, h5py.Group) else parent[key]
         namespace = _attr(obj, "namespace")
         if namespace is not None and namespace not in KNOWN_NAMESPACES:
             raise NotUnderstood(f"extension type in {top}/{key}")
@@ -436,14 +436,13 @@ def _load_h5(
         name, kind = _wrap(group).name.rsplit("/", 1)[-1], _attr(group, "neurodata_type")
     if isinstance(group, h5py.h5g.GroupID):
         has = _link_exists(group)
-        data = _open(group, "data")
     else:  # a row pointing at a dataset (a damaged file): what the object API makes of it
         has = set(_wrap(group)).__contains__
-        data = _wrap(group)["data"]
+    data = _member(group, "data")
     start, stop = 0, None
     if ref is not None:
         start, stop = int(ref["idx_start"]), int(ref["idx_start"]) + int(ref["count"])
-    starting = _open(group, "starting_time") if has("starting_time") else None
+    starting = _member(group, "starting_time") if has("starting_time") else None
     if kind == "IZeroClampSeries":  # pynwb fixes these for I=0 series, whatever is stored
         settings: dict[str, Any] = dict.fromkeys(SETTINGS_KEYS.values(), 0.0)
         protocol = None
@@ -463,7 +462,7 @@ def _load_h5(
         conversion=_attr(data, "conversion"),
         offset=_attr(data, "offset"),
         data=data,
-        timestamps=_open(group, "timestamps") if has("timestamps") else None,
+        timestamps=_member(group, "timestamps") if has("timestamps") else None,
         rate=_attr(starting, "rate") if starting is not None else None,
         starting_time=float(_value(starting)) if starting is not None else None,
         start=start,
@@ -474,11 +473,18 @@ def _load_h5(
     )
 
 
+def _member(group: Any, key: str) -> Any:
+    """``group[key]``: a low-level id for a group's member, else what the object API gives."""
+    import h5py
+
+    return _open(group, key) if isinstance(group, h5py.h5g.GroupID) else _wrap(group)[key]
+
+
 def _column(table: Any, key: str) -> Any:
     """``table[key][()]`` (table a low-level id): a whole column of the recordings table."""
     import h5py
 
-    column = _open(table, key) if isinstance(table, h5py.h5g.GroupID) else _wrap(table)[key]
+    column = _member(table, key)
     if isinstance(column, h5py.h5d.DatasetID):
         space = column.get_space()
         if space.get_simple_extent_type() == h5py.h5s.SIMPLE and space.get_select_npoints():
@@ -490,7 +496,7 @@ def _column(table: Any, key: str) -> Any:
 
 
 def _link_exists(group: Any) -> Any:
-    """Whether ``group`` has a link of a name: ``name in set(h5py.Group(group))``, unlisted."""
+    """``name in set(h5py.Group(group))``, asked of HDF5 name by name (no listing)."""
     exists = group.links.exists
     return lambda name: exists(name.encode())
 
