@@ -59,6 +59,16 @@ def _cells() -> dict[str, tuple[tuple, dict]]:
         rin_ohm=-5e6, rin_ci_ohm=(math.inf, -math.inf), iv_slope_ohm=math.inf, tau_s=math.nan,
     )  # fmt: skip
     stray = [*epochs, StepEpoch(99, False, "ramp", "a ramp, not a step", 0, 0, 0, 0, 0, 0)]
+    far = 1_000_000  # sweep numbers the baseline axis writes with an offset ("+1e6")
+    renumbered = (
+        dataclasses.replace(rec, sweeps=tuple(dataclasses.replace(w, number=w.number + far) for w in rec.sweeps)),
+        [dataclasses.replace(e, sweep=e.sweep + far) for e in epochs],
+        dataclasses.replace(
+            fit, sweeps=tuple(dataclasses.replace(f, sweep=f.sweep + far) for f in fit.sweeps),
+            used=tuple(u + far for u in fit.used), excluded={k + far: r for k, r in fit.excluded.items()},
+        ),
+        dataclasses.replace(verdict, excluded={k + far: r for k, r in verdict.excluded.items()}),
+    )  # fmt: skip
     return {
         "normal": ((rec, epochs, fit, verdict), {}),
         "other": (other, {}),
@@ -72,6 +82,7 @@ def _cells() -> dict[str, tuple[tuple, dict]]:
         "no recording, spiking row": ((None, None, None, None), {"spikes": silent}),
         "NaN samples": ((bad_rec, None, CellFit("bad", (), status="error: NaN"), None), {}),
         "absurd values": ((rec, stray, weird, CellVerdict(False)), {}),
+        "offset tick labels": (renumbered, {}),
     }
 
 
@@ -233,10 +244,11 @@ def _label_places(cell, path, monkeypatch=None) -> dict:
         for name, ax in page.axes.items():
             if ax.get_visible():
                 for axis in (ax.xaxis, ax.yaxis):
-                    label = axis.label
-                    kept[(name, axis.axis_name)] = tuple(
-                        label.get_transform().transform(label.get_position())
-                    )
+                    for what, label in (("label", axis.label), ("offset", axis.offsetText)):
+                        kept[(name, axis.axis_name, what)] = (
+                            label.get_text(),
+                            *label.get_transform().transform(label.get_position()),
+                        )
 
     with pytest.MonkeyPatch.context() as patch:
         patch.setattr(figures, "_draw_page", spy)
@@ -247,14 +259,21 @@ def _label_places(cell, path, monkeypatch=None) -> dict:
     return kept
 
 
-@pytest.mark.parametrize("name", ["normal", "spiking", "failed fits, spiking row", "absurd values"])
-@pytest.mark.parametrize("dpi", [40, 100])
+@pytest.mark.parametrize(
+    ("name", "dpi"),
+    [("normal", 40), ("spiking", 40), ("failed fits, spiking row", 40), ("absurd values", 40),
+     ("offset tick labels", 40), ("spiking", 100)],
+)  # fmt: skip
 def test_axis_labels_where_matplotlib_puts_them(tmp_path, name, dpi, monkeypatch):
     """Each axis label at matplotlib's own place (it measures all tick labels to find it)."""
     monkeypatch.setattr(sys.modules[__name__], "DPI", dpi)
     cell = _cells()[name]
     ours = _label_places(cell, tmp_path / "ours.png")
     theirs = _label_places(cell, tmp_path / "theirs.png", monkeypatch=lambda ax: None)
-    assert ours.keys() == theirs.keys() and len(ours) >= 10
-    for key, place in ours.items():
-        assert place == pytest.approx(theirs[key], abs=1e-6), key
+    assert ours.keys() == theirs.keys() and len(ours) >= 20
+    for key, (text, *place) in ours.items():
+        assert text == theirs[key][0], key
+        if text:  # an empty text's place does not matter
+            assert place == pytest.approx(theirs[key][1:], abs=1e-6), key
+    if name == "offset tick labels":
+        assert ours[("baseline", "x", "offset")][0] == "+1e6"
