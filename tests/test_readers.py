@@ -344,6 +344,34 @@ def test_nwb_table_rows_cutting_one_series(tmp_path):
     np.testing.assert_array_equal(rec.sweeps[1].current, _as64(_current(-2e-11)))
 
 
+def test_nwb_table_row_takes_the_stimulus_protocol_when_the_response_has_none(tmp_path):
+    nwbfile = _nwbfile()
+    el = _electrode(nwbfile, "e1")
+    for k, described in enumerate((False, True)):
+        stim = CurrentClampStimulusSeries(
+            name=f"stim_{k}",
+            data=_current(-1e-11),
+            electrode=el,
+            rate=RATE,
+            gain=1.0,
+            sweep_number=np.uint64(k),
+            stimulus_description="step family A",
+        )
+        extra = {"stimulus_description": "hyperpolarizing steps"} if described else {}
+        resp = CurrentClampSeries(
+            name=f"resp_{k}",
+            data=_voltage(k),
+            electrode=el,
+            rate=RATE,
+            gain=1.0,
+            sweep_number=np.uint64(k),
+            **extra,
+        )
+        nwbfile.add_intracellular_recording(electrode=el, stimulus=stim, response=resp)
+    (rec,) = _open(_write(nwbfile, tmp_path / "protocols.nwb"))
+    assert [s.protocol for s in rec.sweeps] == ["step family A", "hyperpolarizing steps"]
+
+
 def test_write_nwb_round_trips(tmp_path):
     recs = [_recording("a", 3), _recording("b", 2, with_current=False)]
     path = write_nwb(recs, tmp_path / "w.nwb", subject_id="animal-9", session_start_time=START)

@@ -416,7 +416,10 @@ def _rows_h5(path: str, f: Any, known: dict[Any, tuple[str, str | None]]) -> lis
         r = _load_h5(path, group, "V", resp, known)
         s = None
         if stim["idx_start"] >= 0 and stim["timeseries"]:
-            s = _load_h5(path, _dereference(f, stim["timeseries"]), "A", stim, known)
+            stim_group = _dereference(f, stim["timeseries"])
+            s = _load_h5(
+                path, stim_group, "A", stim, known, row_stimulus=True, protocol=not r.protocol
+            )
         rows.append((r, s))
     return rows or None
 
@@ -427,8 +430,16 @@ def _load_h5(
     base: str,
     ref: Any = None,
     known: dict[Any, tuple[str, str | None]] | None = None,
+    *,
+    row_stimulus: bool = False,
+    protocol: bool = True,
 ) -> SeriesData:
-    """Load one series (a low-level id) into memory, in SI, honouring a table row's range."""
+    """Load one series (a low-level id) into memory, in SI, honouring a table row's range.
+
+    A table row's stimulus gives its sweep only its samples, rate and name, and its protocol
+    when the response has none (``protocol``): its electrode, sweep number, start and settings,
+    which nothing uses (the row pairs it), are not read.
+    """
     import h5py
 
     name, kind = (known or {}).get(group) or (None, None)
@@ -443,15 +454,18 @@ def _load_h5(
     if ref is not None:
         start, stop = int(ref["idx_start"]), int(ref["idx_start"]) + int(ref["count"])
     starting = _member(group, "starting_time") if has("starting_time") else None
+    whole = not row_stimulus
+    settings: dict[str, Any] = {}
+    description = None
     if kind == "IZeroClampSeries":  # pynwb fixes these for I=0 series, whatever is stored
-        settings: dict[str, Any] = dict.fromkeys(SETTINGS_KEYS.values(), 0.0)
-        protocol = None
-    else:
+        settings = dict.fromkeys(SETTINGS_KEYS.values(), 0.0)
+    elif whole:
         settings = {
             key: _scalar(group, attr) if has(attr) else None for attr, key in SETTINGS_KEYS.items()
         }
-        protocol = _attr(group, "stimulus_description")
-    electrode = _link_target(group, "electrode") if has("electrode") else None
+    if kind != "IZeroClampSeries" and protocol:
+        description = _attr(group, "stimulus_description")
+    electrode = _link_target(group, "electrode") if whole and has("electrode") else None
     return _series_data(
         path,
         name=name,
@@ -464,11 +478,11 @@ def _load_h5(
         data=data,
         timestamps=_member(group, "timestamps") if has("timestamps") else None,
         rate=_attr(starting, "rate") if starting is not None else None,
-        starting_time=float(_value(starting)) if starting is not None else None,
+        starting_time=float(_value(starting)) if starting is not None and whole else None,
         start=start,
         stop=stop,
-        sweep_number=_attr(group, "sweep_number"),
-        protocol=protocol,
+        sweep_number=_attr(group, "sweep_number") if whole else None,
+        protocol=description,
         settings=settings,
     )
 
