@@ -9,7 +9,6 @@ from __future__ import annotations
 
 import hashlib
 import json
-import math
 from pathlib import Path
 from typing import Any
 
@@ -69,22 +68,21 @@ def store_entry(outdir: str | Path, key: str, result: dict[str, Any]) -> None:
 
     folder = Path(outdir) / CACHE_DIR
     folder.mkdir(parents=True, exist_ok=True)
-    text = json.dumps({"key": key, **_nan_to_none(result)}, allow_nan=False)
+    text = json.dumps({"key": key, **normalise(result)}, allow_nan=False)
     atomic_write_text(folder / f"{key}.json", text, sync=False)
 
 
 def normalise(result: dict[str, Any]) -> dict[str, Any]:
-    """A result as it reads back from the cache (non-finite floats -> NaN, tuples -> lists)."""
-    return json.loads(json.dumps(_nan_to_none(result), allow_nan=False), parse_constant=float)
+    """A result as it reads back from the cache (non-finite floats -> null, tuples -> lists).
+
+    One round trip through the json module's C encoder and decoder: its NaN/Infinity tokens
+    become null on the way back, numpy scalars become Python numbers.
+    """
+    return json.loads(json.dumps(result, default=_plain), parse_constant=lambda _: None)
 
 
-def _nan_to_none(value: Any) -> Any:
-    if isinstance(value, dict):
-        return {k: _nan_to_none(v) for k, v in value.items()}
-    if isinstance(value, list | tuple):
-        return [_nan_to_none(v) for v in value]
-    if isinstance(value, float) and not math.isfinite(value):
-        return None
-    if hasattr(value, "item") and not isinstance(value, str):  # numpy scalars
-        return _nan_to_none(value.item())
-    return value
+def _plain(value: Any) -> Any:
+    """numpy scalars (np.int64, np.bool_, np.float32...) as Python numbers, for json."""
+    if hasattr(value, "item") and not isinstance(value, str):
+        return value.item()
+    raise TypeError(f"{type(value).__name__} is not JSON serialisable")
