@@ -230,11 +230,11 @@ def test_text_bitmaps_match_stock_drawing(monkeypatch):
     clear_figure_cache()
 
 
-# -- axis labels placed from kept text metrics, against matplotlib's own placing ------------
+# -- ticks drawn and axis labels placed by the figure code, against matplotlib's Axis -------
 
 
-def _label_places(cell, path, monkeypatch=None) -> dict:
-    """Where each axis label of a cell's figure ends up (display pixels), after drawing."""
+def _label_places(cell, path, monkeypatch=None) -> tuple[dict, np.ndarray]:
+    """Where each axis label and offset text ends up (display pixels), and the picture."""
     clear_figure_cache()
     kept: dict = {}
     draw_page = figures._draw_page
@@ -253,10 +253,10 @@ def _label_places(cell, path, monkeypatch=None) -> dict:
     with pytest.MonkeyPatch.context() as patch:
         patch.setattr(figures, "_draw_page", spy)
         if monkeypatch is not None:
-            patch.setattr(figures, "_place_axis_labels", monkeypatch)
-        _draw(cell, path)
+            patch.setattr(figures, "_settle_axes", monkeypatch)
+        picture = _draw(cell, path)
     clear_figure_cache()
-    return kept
+    return kept, picture
 
 
 @pytest.mark.parametrize(
@@ -264,12 +264,17 @@ def _label_places(cell, path, monkeypatch=None) -> dict:
     [("normal", 40), ("spiking", 40), ("failed fits, spiking row", 40), ("absurd values", 40),
      ("offset tick labels", 40), ("spiking", 100)],
 )  # fmt: skip
-def test_axis_labels_where_matplotlib_puts_them(tmp_path, name, dpi, monkeypatch):
-    """Each axis label at matplotlib's own place (it measures all tick labels to find it)."""
+def test_ticks_and_axis_labels_as_matplotlib_draws_them(tmp_path, name, dpi, monkeypatch):
+    """The figure's own tick drawing and label placing give matplotlib's Axis's pixels.
+
+    With ``_settle_axes`` switched off, matplotlib's Axis draws the ticks and places each
+    axis label itself (measuring all tick labels to find the place).
+    """
     monkeypatch.setattr(sys.modules[__name__], "DPI", dpi)
     cell = _cells()[name]
-    ours = _label_places(cell, tmp_path / "ours.png")
-    theirs = _label_places(cell, tmp_path / "theirs.png", monkeypatch=lambda ax: None)
+    ours, drawn = _label_places(cell, tmp_path / "ours.png")
+    theirs, stock = _label_places(cell, tmp_path / "theirs.png", monkeypatch=lambda ax: None)
+    assert np.array_equal(drawn, stock), _differs(drawn, stock)
     assert ours.keys() == theirs.keys() and len(ours) >= 20
     for key, (text, *place) in ours.items():
         assert text == theirs[key][0], key

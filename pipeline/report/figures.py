@@ -26,6 +26,7 @@ from typing import Any
 
 import matplotlib
 import numpy as np
+from matplotlib.artist import Artist
 from matplotlib.backends.backend_agg import FigureCanvasAgg, RendererAgg
 from matplotlib.collections import LineCollection
 from matplotlib.colors import Normalize, to_rgba
@@ -291,13 +292,19 @@ def _draw_traces(ax, fig, views: list[_SweepView], cell_fit: CellFit | None, dpi
     _label_traces(ax, f"; clipped above {cap:.0f} mV" if cap is not None else "")
 
 
-def _lines(ax, xy: list, colours: list, widths: list, styles: list, zorder: float) -> None:
-    """Many curves as one LineCollection: drawn in one call, autoscaled like ``plot``."""
+def _lines(
+    ax, xy: list, colours: list, widths: list, styles: list, zorder: float,
+    capstyle: str = "projecting",
+) -> None:  # fmt: skip
+    """Many curves as one LineCollection: drawn in one call, autoscaled like ``plot``.
+
+    Caps and joins as Line2D draws them: projecting caps for solid lines, butt for dashes.
+    """
     segments = [np.column_stack([np.asarray(x, float), np.asarray(y, float)]) for x, y in xy]
     ax.add_collection(
         LineCollection(
             segments, colors=colours, linewidths=widths, linestyles=styles, zorder=zorder,
-            capstyle="projecting", joinstyle="round",  # as Line2D draws solid lines
+            capstyle=capstyle, joinstyle="round",
         )
     )  # fmt: skip
 
@@ -316,17 +323,21 @@ def _drawable(c: ExpFit) -> bool:
 
 def _draw_fits_and_windows(ax, views: list[_SweepView]) -> None:
     windows = {"charging fit": [], "steady state": [], "baseline": []}
+    curves = []
     for v in views:
         f = v.fit
         if f is None:
             continue
         if _drawable(f.charging):
             t = np.linspace(f.charging.t0, f.charging.t1, 120)
-            ax.plot(t * 1e3, f.charging.curve(t) * 1e3, color=FIT_COLOUR, lw=1.0, ls="--", zorder=3)
+            curves.append((t * 1e3, f.charging.curve(t) * 1e3))
             windows["charging fit"].append((f.charging.t0, f.charging.t1))
         for key, win in (("steady state", f.ss_window), ("baseline", f.baseline_window)):
             if all(_finite(x) for x in win):
                 windows[key].append(win)
+    if curves:
+        n = len(curves)
+        _lines(ax, curves, [FIT_COLOUR] * n, [1.0] * n, ["--"] * n, zorder=3, capstyle="butt")
     shades = {"charging fit": "#9ecae1", "steady state": "#fdd0a2", "baseline": "0.88"}
     for key, wins in windows.items():
         if wins:
@@ -873,15 +884,19 @@ def _draw_fi(ax, views: list[_SweepView], spikes: Any) -> None:
     _title(ax, title)
 
 
-def _place_axis_labels(ax) -> None:
-    """Put the axis labels where matplotlib would put them, from the tick labels' sizes.
+def _settle_axes(ax) -> None:
+    """Draw the ticks and place the axis labels of a panel as matplotlib would, cheaply.
 
-    Matplotlib finds the place on every draw by laying out every tick label twice more and
-    the ticks a third time (for the spine), ~1.5 ms per axis; here the sizes come from the
-    renderer's kept text metrics. Same rule (``XAxis/YAxis._update_label_position``): the
-    label sits ``labelpad`` beyond the union of the tick labels and the spine with its tick
-    marks. ``test_axis_labels_where_matplotlib_puts_them`` checks the places. The tick labels
-    are then left out of the draw's own measuring where nothing needs it.
+    Matplotlib's Axis keeps a Tick per tick (two lines, two texts and a grid line) and on
+    every draw updates each, lays each label out and measures all of them twice more to
+    place the axis label: most of a figure's drawing time. Here, once the limits are
+    settled, each axis gets its tick marks as one Line2D (the ticks' own marker style) and
+    its tick labels as one :class:`_TickLabels`, at the places ``Text`` computes (same rule,
+    same arithmetic); the axis label goes where ``XAxis/YAxis._update_label_position`` puts
+    it (``labelpad`` beyond the tick labels, or beyond the spine with its tick marks), and
+    the Axis itself is left with no ticks to update. An x axis whose numbers need an offset
+    text ("+1e6") keeps matplotlib's ticks, which place that text under themselves.
+    ``tests/test_figure_reuse.py`` compares the pixels and label places with matplotlib's.
     """
     fig = ax.get_figure(root=True)
     renderer = fig.canvas.get_renderer()
@@ -889,41 +904,109 @@ def _place_axis_labels(ax) -> None:
     box = ax.bbox
     for axis in (ax.xaxis, ax.yaxis):
         tick = axis.majorTicks[0]  # drawn ticks share its style
-        if axis.label_position in ("left", "bottom"):
-            label_on, mark_on, sign = tick.label1.get_visible(), tick.tick1line.get_visible(), -1
-        else:
-            label_on, mark_on, sign = tick.label2.get_visible(), tick.tick2line.get_visible(), 1
-        if isinstance(axis.get_major_locator(), NullLocator):
-            locs, labels = [], []
-        else:
-            locs = axis.get_majorticklocs()
-            labels = axis.get_major_formatter().format_ticks(locs)
+        first = axis.label_position in ("left", "bottom")
+        label, mark = (tick.label1, tick.tick1line) if first else (tick.label2, tick.tick2line)
+        locator, formatter = axis.get_major_locator(), axis.get_major_formatter()
+        locs = [] if isinstance(locator, NullLocator) else list(locator())
+        texts = formatter.format_ticks(locs)
         lo, hi = sorted(axis.get_view_interval())
         tol = (hi - lo) * 1e-10  # as matplotlib keeps ticks at the view's edges
-        shown = [t for t, x in zip(labels, locs, strict=True) if lo - tol <= x <= hi + tol]
+        shown = [(x, t) for x, t in zip(locs, texts, strict=True) if lo - tol <= x <= hi + tol]
+        stock = axis is ax.xaxis and bool(formatter.get_offset())
         # spine (no width) plus its tick marks, then the tick labels beyond the tick pad
-        reach = tick.get_tick_padding() * px if shown and mark_on else 0.0
+        reach = tick.get_tick_padding() * px if shown and mark.get_visible() else 0.0
         pad = (tick.get_pad() + tick.get_tick_padding()) * px
-        prop = tick.label1.get_fontproperties()
-        for text in shown if label_on else ():
+        prop = label.get_fontproperties()
+        for _, text in shown if label.get_visible() else ():
             if axis is ax.yaxis:
-                size = renderer._text_width(text, prop) if text else 0.0
+                size = renderer.get_text_width_height_descent(text, prop, False)[0] if text else 0.0
             else:
                 size = _label_height(renderer, text, prop) if text else 0.0
             reach = max(reach, pad + size)
         reach += axis.labelpad * px
-        # Each draw also measures the tick labels to place the offset text ("1e6", "+70"):
-        # x axes put it below their tick labels, y axes above the panel whatever their size.
-        measured = axis is ax.xaxis and bool(axis.get_major_formatter().get_offset())
-        for t in axis.get_major_ticks(len(locs)):
-            t.label1.set_in_layout(measured)
-            t.label2.set_in_layout(measured)
         if axis is ax.xaxis:
-            y = box.y0 - reach if sign < 0 else box.y1 + reach
+            y = box.y0 - reach if first else box.y1 + reach
             axis.set_label_coords(box.x0 + 0.5 * box.width, y, transform=IdentityTransform())
         else:
-            x = box.x0 - reach if sign < 0 else box.x1 + reach
+            x = box.x0 - reach if first else box.x1 + reach
             axis.set_label_coords(x, box.y0 + 0.5 * box.height, transform=IdentityTransform())
+        if stock:
+            continue  # matplotlib draws these ticks
+        at = [x for x, _ in shown]
+        on_x = axis is ax.xaxis
+        if at and mark.get_visible():
+            # the other coordinate is fixed per side, in axes units (0 or 1)
+            edge = [(mark.get_ydata() if on_x else mark.get_xdata())[0]] * len(at)
+            marks = Line2D(
+                at if on_x else edge, edge if on_x else at,
+                transform=mark.get_transform(), linestyle="none", marker=mark.get_marker(),
+                markersize=mark.get_markersize(), markeredgewidth=mark.get_markeredgewidth(),
+                markeredgecolor=mark.get_markeredgecolor(), markerfacecolor=mark.get_markerfacecolor(),
+                color=mark.get_color(), alpha=mark.get_alpha(), zorder=axis.get_zorder(),
+                clip_on=False,
+            )  # fmt: skip
+            ax.add_artist(marks)
+        if shown and label.get_visible():
+            edge = label.get_position()[1 if on_x else 0]
+            anchors = label.get_transform().transform(
+                [(x, edge) if on_x else (edge, x) for x in at]
+            )
+            ax.add_artist(
+                _TickLabels(label, renderer, [t for _, t in shown], anchors, axis.get_zorder())
+            )
+        axis.set_major_locator(NullLocator())  # the kept rule comes back with the next cell
+
+
+class _TickLabels(Artist):
+    """One axis's tick labels, drawn as ``Text.draw`` draws a one-line label of that style.
+
+    ``template`` is the axis's first tick label (font, colour, alignment, antialiasing);
+    ``anchors`` are the labels' positions in display pixels, as the tick transforms give.
+    The baseline offsets follow ``Text._get_layout`` for one unrotated line.
+    """
+
+    def __init__(self, template, renderer, texts, anchors, zorder: float) -> None:
+        super().__init__()
+        self._template, self._prop = template, template.get_fontproperties()
+        self.set_zorder(zorder)
+        ascent, descent, _ = renderer._get_font_height_metrics(self._prop)
+        ha, va = template.get_horizontalalignment(), template.get_verticalalignment()
+        self._items = []
+        for text, (posx, posy) in zip(texts, anchors, strict=True):
+            if not text:
+                continue
+            w, h, d = renderer.get_text_width_height_descent(text, self._prop, False)
+            a, d = h - d, d
+            if ascent is not None:
+                a, d = max(a, ascent) + 0 / 2, max(d, descent) + 0 / 2
+            baseline = a - 0.0
+            thisy = 0.0 - a
+            ymin, ymax = thisy - d, 0
+            height = ymax - ymin
+            offsetx = 0 if ha == "left" else w if ha == "right" else (0 + w) / 2
+            offsety = (
+                ymin if va == "bottom" else ymax if va == "top" else
+                (ymin + ymax) / 2 if va == "center" else ymin + d if va == "baseline" else
+                ymin + height - baseline / 2
+            )  # fmt: skip
+            self._items.append((text, (0.0 - offsetx) + posx, (thisy - offsety) + posy))
+
+    def draw(self, renderer) -> None:
+        if not self.get_visible() or not self._items:
+            return
+        label = self._template
+        gc = renderer.new_gc()
+        gc.set_foreground(to_rgba(label.get_color()), isRGBA=True)
+        gc.set_alpha(label.get_alpha())
+        gc.set_antialiased(label.get_antialiased())
+        gc.set_snap(label.get_snap())
+        height = renderer.get_canvas_width_height()[1]
+        angle = label.get_rotation()
+        for text, x, y in self._items:
+            renderer.draw_text(
+                gc, x, height - y, text, self._prop, angle, ismath=False, mtext=label
+            )
+        gc.restore()
 
 
 def _label_height(renderer, text: str, prop) -> float:
@@ -1094,6 +1177,7 @@ def _glyph_api() -> bool:
 
 
 _GLYPHS_ONE_BY_ONE = _glyph_api()
+_CLEAR_OF_COVER = 1.0 - np.arange(256) / 255.0  # glyph coverage (0-255) -> light let through
 _MAX_TEXT_BITMAPS = 4096  # per renderer; a text line's bitmap is a few kB
 
 
@@ -1238,7 +1322,7 @@ class _TextRenderer(RendererAgg):
                 ],
             )
             bitmap = ft_object._render_glyph(glyph_index, flags, mode)
-            cover = np.asarray(bitmap.buffer, dtype=np.float64)
+            cover = bitmap.buffer
             if cover.size:
                 glyphs.append((bitmap.left, bitmap.top, cover if antialiased else cover * 255))
         if not glyphs:
@@ -1249,7 +1333,7 @@ class _TextRenderer(RendererAgg):
         clear = np.ones((top - bottom, right - left))  # 1 - coverage, as successive blends
         for g_left, g_top, cover in glyphs:
             r, c = top - g_top, g_left - left
-            clear[r : r + cover.shape[0], c : c + cover.shape[1]] *= 1.0 - cover / 255.0
+            clear[r : r + cover.shape[0], c : c + cover.shape[1]] *= _CLEAR_OF_COVER[cover]
         image = np.round(255.0 * (1.0 - clear)).astype(np.uint8)
         return image, left - bx, top - by
 
@@ -1478,7 +1562,7 @@ def _draw_page(
         _draw_fi(axes["fi"], views, spikes)
     for ax in axes.values():
         if ax.get_visible():
-            _place_axis_labels(ax)
+            _settle_axes(ax)
     with atomic_path(path) as tmp:
         fig.savefig(
             tmp,
