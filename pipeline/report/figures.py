@@ -1198,6 +1198,7 @@ class _TextRenderer(RendererAgg):
         super().__init__(width, height, dpi)
         self._bitmaps: dict[tuple, tuple[np.ndarray | None, int, int]] = {}
         self._layouts: dict[tuple, list] = {}
+        self._glyphs: dict[tuple, tuple[int, int, np.ndarray]] = {}
         self._heights: dict[tuple, tuple[float, float, float] | tuple[None, None, None]] = {}
         self._widths: dict[tuple, tuple[float, float, float]] = {}
         self._font_rc: tuple = ()
@@ -1213,7 +1214,7 @@ class _TextRenderer(RendererAgg):
             str(v) for k, v in matplotlib.rcParams.items() if k.startswith(("font.", "text."))
         )
         if font_rc != self._font_rc:
-            for kept in (self._bitmaps, self._layouts, self._heights, self._widths):
+            for kept in (self._bitmaps, self._layouts, self._glyphs, self._heights, self._widths):
                 kept.clear()
             self._font_rc = font_rc
 
@@ -1313,18 +1314,33 @@ class _TextRenderer(RendererAgg):
         mode = RenderMode.NORMAL if antialiased else RenderMode.MONO
         glyphs = []
         for ft_object, glyph_index, dx, dy in items:
-            ft_object.set_size(size, self.dpi)
-            ft_object._set_transform(
-                matrix,
-                [
-                    round(0x40 * (x + dx * cos - dy * sin)),
-                    round(0x40 * (self.height - y + dx * sin + dy * cos)),
-                ],
+            gx = round(0x40 * (x + dx * cos - dy * sin))
+            gy = round(0x40 * (self.height - y + dx * sin + dy * cos))
+            # a glyph's bitmap depends on its position's fraction of a pixel only
+            key = (
+                ft_object.fname,
+                size,
+                self.dpi,
+                glyph_index,
+                flags,
+                mode,
+                angle,
+                gx & 63,
+                gy & 63,
             )
-            bitmap = ft_object._render_glyph(glyph_index, flags, mode)
-            cover = bitmap.buffer
-            if cover.size:
-                glyphs.append((bitmap.left, bitmap.top, cover if antialiased else cover * 255))
+            glyph = self._glyphs.get(key)
+            if glyph is None:
+                ft_object.set_size(size, self.dpi)
+                ft_object._set_transform(matrix, [gx, gy])
+                bitmap = ft_object._render_glyph(glyph_index, flags, mode)
+                cover = np.array(bitmap.buffer)
+                if not antialiased:
+                    cover *= 255
+                if len(self._glyphs) >= _MAX_TEXT_BITMAPS:
+                    self._glyphs.pop(next(iter(self._glyphs)))
+                glyph = self._glyphs[key] = (bitmap.left - (gx >> 6), bitmap.top - (gy >> 6), cover)
+            if glyph[2].size:
+                glyphs.append((glyph[0] + (gx >> 6), glyph[1] + (gy >> 6), glyph[2]))
         if not glyphs:
             return None, 0, 0
         left, top = min(g[0] for g in glyphs), max(g[1] for g in glyphs)
