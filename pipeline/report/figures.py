@@ -278,8 +278,9 @@ def _draw_traces(ax, fig, views: list[_SweepView], cell_fit: CellFit | None, dpi
     _draw_fits_and_windows(ax, views)
     spans = [(np.nanmin(y), np.nanmax(y), hyper) for _, y, _, hyper in traces]
     cap = _trace_limits(ax, spans, views)
-    for layer in (False, True):  # hyperpolarizing sweeps on top
-        sel = [tr for tr in traces if tr[3] == layer]
+    # hyperpolarizing sweeps on top; dotted ones apart, as their dots need butt caps
+    for layer, dotted in ((False, False), (True, True), (True, False)):
+        sel = [tr for tr in traces if tr[3] == layer and (tr[2][2] != "-") == dotted]
         if not sel:
             continue
         colours = [
@@ -288,7 +289,8 @@ def _draw_traces(ax, fig, views: list[_SweepView], cell_fit: CellFit | None, dpi
             for _, y, (colour, _, _), hyper in sel
         ]
         _lines(ax, [(t, y) for t, y, _, _ in sel], colours, [tr[2][1] for tr in sel],
-               [tr[2][2] for tr in sel], zorder=2 if layer else 1)  # fmt: skip
+               [tr[2][2] for tr in sel], zorder=2 if layer else 1,
+               capstyle="butt" if dotted else "projecting")  # fmt: skip
     _label_traces(ax, f"; clipped above {cap:.0f} mV" if cap is not None else "")
 
 
