@@ -5,6 +5,13 @@ processes). The figure only draws results computed upstream; the one thing deriv
 residual of each charging-curve fit (data minus ``ExpFit.curve``), which is a view, not a value.
 Colours are fixed across panels: each hyperpolarizing sweep keeps its colour (by step current)
 in the traces and residuals; fits are black; excluded sweeps are grey and hollow.
+
+Speed (a day has hundreds of cells): each thread keeps one built figure per layout and clears
+the cell's artists after drawing (:class:`_Page`); its renderer keeps text bitmaps, layouts and
+metrics (:class:`_TextRenderer`); ticks and axis-label places are drawn here the way matplotlib
+would (:func:`_settle_axes`) and legends are a few plain artists (:func:`_key`).
+``tests/test_figure_reuse.py`` holds kept figures to figures built from scratch, and text, ticks
+and label places to matplotlib's own drawing.
 """
 
 from __future__ import annotations
@@ -404,7 +411,10 @@ def _key(
     prop = FontProperties(size=fontsize)
     em = fontsize * fig.dpi / 72  # the legend's unit of spacing, pixels
     ascent, descent, _ = renderer._get_font_height_metrics(prop)
-    line = ascent + descent
+    if ascent is None:  # a font without metric tables: measure, as Text then does
+        line = renderer.get_text_width_height_descent("lp", prop, False)[1]
+    else:
+        line = ascent + descent
     widths, heights = [], []
     for label, _, _ in entries:
         lines = label.split("\n")
