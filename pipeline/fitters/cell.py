@@ -34,7 +34,6 @@ from collections.abc import Mapping, Sequence
 from dataclasses import dataclass
 
 import numpy as np
-from scipy import special  # not scipy.stats: its import alone costs ~0.3 s per process
 
 from pipeline.fitters.results import NAN, CellFit, SweepFit
 from pipeline.fitters.sweep import PassiveSettings
@@ -112,6 +111,8 @@ def _robust_origin_slope(x: np.ndarray, y: np.ndarray) -> _Slope:
 def _f_sf(dfn: int, dfd: int, f: float) -> float:
     """Upper tail of the F distribution (as scipy.stats.f.sf, without importing scipy.stats);
     a statistic at or below 0 (rounding) has p = 1."""
+    from scipy import special  # here, not at import: scipy costs ~0.3 s a process
+
     if f <= 0:
         return 1.0
     return 0.0 if math.isinf(f) else float(special.fdtrc(dfn, dfd, f))
@@ -119,6 +120,8 @@ def _f_sf(dfn: int, dfd: int, f: float) -> float:
 
 def _interval(value: float, se: float, dof: int, level: float) -> tuple[float, float]:
     """Two-sided t interval (normal when dof is 0 and se is known)."""
+    from scipy import special  # here, not at import: scipy costs ~0.3 s a process
+
     if not (math.isfinite(value) and math.isfinite(se)):
         return (NAN, NAN)
     q = special.stdtrit(dof, 0.5 + level / 2) if dof > 0 else special.ndtri(0.5 + level / 2)
@@ -233,6 +236,8 @@ def soma_cylinder_response(t: np.ndarray, tau: float, rho: float) -> np.ndarray:
     2:503-532; Jack, Noble & Tsien 1975, Electric Current Flow in Excitable Cells, ch. 7;
     both from memory); derived here by partial fractions in ``sqrt(s + 1/tau)``.
     """
+    from scipy import special  # here, not at import: scipy costs ~0.3 s a process
+
     tt = np.clip(np.asarray(t, dtype=float) / tau, 0.0, None)
     if rho == 0.0:
         return -np.expm1(-tt)
@@ -246,6 +251,8 @@ def soma_cylinder_response(t: np.ndarray, tau: float, rho: float) -> np.ndarray:
 def _cylinder_table(t: np.ndarray, tau: float) -> np.ndarray:
     """:func:`soma_cylinder_response` at ``t`` for every ratio of ``_RHO_GRID``, one row each,
     scaled to 1 at the last sample."""
+    from scipy import special  # here, not at import: scipy costs ~0.3 s a process
+
     # all ratios at once (one row each, the same arithmetic): 62 calls cost ~1.5 ms a cell
     tt = np.clip(np.asarray(t, dtype=float) / tau, 0.0, None)
     rho = _RHO_GRID[1:, None]

@@ -33,7 +33,6 @@ import warnings
 from dataclasses import dataclass, replace
 
 import numpy as np
-from scipy.optimize import OptimizeWarning, curve_fit
 
 from pipeline.fitters.results import NAN, BiExpFit, ExpFit, SweepFit, sag_response
 from pipeline.recording import Sweep
@@ -345,9 +344,19 @@ def _bin(
 def _quiet():
     """Silence overflow in trial parameters and covariance warnings during a fit: the caller
     checks the result (finite parameters and covariance) and gives a reason instead."""
+    from scipy.optimize import OptimizeWarning
+
     with warnings.catch_warnings(), np.errstate(over="ignore", invalid="ignore", divide="ignore"):
         warnings.simplefilter("ignore", OptimizeWarning)
         yield
+
+
+def curve_fit(*args, **kwargs):
+    """:func:`scipy.optimize.curve_fit`, imported on first use: scipy.optimize costs ~0.6 s a
+    process, which a batch's main process (it fits nothing) and a cache re-run never need."""
+    from scipy.optimize import curve_fit as fit
+
+    return fit(*args, **kwargs)
 
 
 def _exp(t: np.ndarray, v_inf: float, amp: float, tau: float) -> np.ndarray:
