@@ -463,6 +463,7 @@ def _assemble(files, results, run, config, outdir, sheet, figures=True):
         figures=fig_map,
         group_column=config.report.group_column,
         plots=figures,
+        plot_cache=outdir / cache.CACHE_DIR,
     )
     seconds["page"] = time.perf_counter() - t0
     info["finished"] = datetime.now(UTC).isoformat()

@@ -231,3 +231,21 @@ def test_tables_only_run_never_imports_matplotlib(tmp_path):
     out = subprocess.run([sys.executable, "-c", code], capture_output=True, text=True, check=True)
     assert out.stdout.strip().splitlines()[-1] == "False"
     assert "drew no figures" in (tmp_path / "out" / "index.html").read_text(encoding="utf-8")
+
+
+def test_summary_plot_is_kept_by_what_it_is_drawn_from(tmp_path, monkeypatch):
+    import pipeline.report.page as page
+
+    kept = tmp_path / "kept"
+    first = render_page(fake_cells(), run_info={}, figures={}, plot_cache=kept)
+    assert len(list(kept.glob("summary-*.png"))) == 1
+
+    def must_not_draw(*args, **kwargs):
+        raise AssertionError("drawn again although nothing changed")
+
+    monkeypatch.setattr(page, "summary_png", must_not_draw)
+    assert render_page(fake_cells(), run_info={}, figures={}, plot_cache=kept) == first
+    changed = fake_cells()
+    changed.loc[0, "rin_mohm"] = 999.0
+    with pytest.raises(AssertionError, match="drawn again"):
+        render_page(changed, run_info={}, figures={}, plot_cache=kept)

@@ -9,6 +9,7 @@ messages is HTML-escaped by Jinja2's autoescape.
 from __future__ import annotations
 
 import base64
+import hashlib
 import io
 import json
 import math
@@ -22,7 +23,7 @@ import jinja2
 import numpy as np
 import pandas as pd
 
-from pipeline.report.atomic import atomic_write_text
+from pipeline.report.atomic import atomic_write_bytes, atomic_write_text
 from pipeline.report.tables import to_jsonable
 
 TEMPLATES = Path(__file__).parent / "templates"
@@ -214,6 +215,30 @@ def summary_png(
     return buf.getvalue()
 
 
+def _cached_summary(
+    cells: pd.DataFrame,
+    summary_columns: Sequence[str],
+    group_column: str | None,
+    folder: str | os.PathLike[str] | None,
+) -> bytes | None:
+    """:func:`summary_png`, kept in ``folder`` by a digest of all that it is drawn from."""
+    if folder is None:
+        return summary_png(cells, summary_columns, group_column)
+    from pipeline import __version__
+
+    key = json.dumps(
+        [__version__, list(summary_columns), group_column, cells.to_json(orient="split")]
+    )
+    path = Path(folder) / f"summary-{hashlib.sha256(key.encode('utf-8')).hexdigest()}.png"
+    if path.is_file():
+        return path.read_bytes()
+    png = summary_png(cells, summary_columns, group_column)
+    if png is not None:
+        Path(folder).mkdir(parents=True, exist_ok=True)
+        atomic_write_bytes(path, png)
+    return png
+
+
 def _strip_box(
     ax, values: pd.Series, labels: pd.Series, order: list[str], passed: pd.Series, rng
 ) -> None:
@@ -287,12 +312,13 @@ def render_page(
     summary_columns: Sequence[str] = DEFAULT_SUMMARY,
     group_column: str | None = "condition",
     plots: bool = True,
+    plot_cache: str | os.PathLike[str] | None = None,
 ) -> str:
     """Render the day's page to a string (what :func:`write_page` writes).
 
     Parameters
     ----------
-    cells, run_info, figures, summary_columns, group_column, plots
+    cells, run_info, figures, summary_columns, group_column, plots, plot_cache
         As for :func:`write_page`.
 
     Returns
@@ -300,7 +326,7 @@ def render_page(
     str
         The HTML document.
     """
-    png = summary_png(cells, summary_columns, group_column) if plots else None
+    png = _cached_summary(cells, summary_columns, group_column, plot_cache) if plots else None
     if png:
         no_plot = ""
     elif not plots:
@@ -343,6 +369,7 @@ def write_page(
     summary_columns: Sequence[str] = DEFAULT_SUMMARY,
     group_column: str | None = "condition",
     plots: bool = True,
+    plot_cache: str | os.PathLike[str] | None = None,
 ) -> Path:
     """Write ``index.html`` for the day into ``outdir`` (atomically).
 
@@ -365,6 +392,10 @@ def write_page(
         when it is absent.
     plots : bool
         Draw the summary plots (matplotlib); False for a tables-only run, whose page says so.
+    plot_cache : str or os.PathLike, optional
+        Folder that keeps the summary plot by a digest of everything it is drawn from (the
+        whole cells table, the columns, the grouping, the version): a re-run over unchanged
+        results writes the same page without drawing, or importing matplotlib, again.
 
     Returns
     -------
@@ -378,6 +409,7 @@ def write_page(
         summary_columns=summary_columns,
         group_column=group_column,
         plots=plots,
+        plot_cache=plot_cache,
     )
     out = Path(outdir)
     out.mkdir(parents=True, exist_ok=True)
