@@ -415,7 +415,7 @@ def _report_one(result: dict[str, Any], bar) -> None:
         bar.update(1)
 
 
-def _assemble(files, results, run, config, outdir, sheet, figures=True):
+def _assemble(files, results, run, config, outdir, sheet, figures):
     from pipeline.report import page, tables
 
     cell_rows, sweep_rows, spike_rows, errors, fig_map = [], [], [], [], {}

@@ -122,7 +122,7 @@ def test_kept_figure_draws_each_cell_as_a_new_one(tmp_path, fresh):
         assert np.array_equal(picture, fresh[name]), (
             f"{name} after {order[k - 1] if k else 'nothing'}: {_differs(picture, fresh[name])}"
         )
-        seen_figures |= {id(p.fig) for p in figures._PAGES.value.values()}
+        seen_figures |= {id(p.fig) for p in figures._KEPT.value.values()}
     # the figures were kept: one per layout (with and without the spiking row), not per cell
     assert len(seen_figures) == 2
 
@@ -158,7 +158,7 @@ def test_threads_keep_their_own_figures(tmp_path, fresh):
         start.wait()
         clear_figure_cache()
         results[k] = [(n, _draw(cells[n], tmp_path / f"t{k}.png")) for n in order]
-        results[k].append(("pages", {id(p.fig) for p in figures._PAGES.value.values()}))
+        results[k].append(("pages", {id(p.fig) for p in figures._KEPT.value.values()}))
 
     threads = [threading.Thread(target=work, args=(k,)) for k in range(3)]
     for t in threads:
@@ -237,7 +237,7 @@ def _label_places(cell, path, monkeypatch=None) -> tuple[dict, np.ndarray]:
     """Where each axis label and offset text ends up (display pixels), and the picture."""
     clear_figure_cache()
     kept: dict = {}
-    draw_page = figures._draw_page
+    draw_page = figures._draw_kept
 
     def spy(page, *args):
         draw_page(page, *args)  # draws and writes the PNG; the page is cleared after this
@@ -251,7 +251,7 @@ def _label_places(cell, path, monkeypatch=None) -> tuple[dict, np.ndarray]:
                         )
 
     with pytest.MonkeyPatch.context() as patch:
-        patch.setattr(figures, "_draw_page", spy)
+        patch.setattr(figures, "_draw_kept", spy)
         if monkeypatch is not None:
             patch.setattr(figures, "_settle_axes", monkeypatch)
         picture = _draw(cell, path)

@@ -7,7 +7,7 @@ Colours are fixed across panels: each hyperpolarizing sweep keeps its colour (by
 in the traces and residuals; fits are black; excluded sweeps are grey and hollow.
 
 Speed (a day has hundreds of cells): each thread keeps one built figure per layout and clears
-the cell's artists after drawing (:class:`_Page`); its renderer keeps text bitmaps, layouts and
+the cell's artists after drawing (:class:`_KeptFigure`); its renderer keeps text bitmaps, layouts and
 metrics (:class:`_TextRenderer`); ticks and axis-label places are drawn here the way matplotlib
 would (:func:`_settle_axes`) and legends are a few plain artists (:func:`_key`).
 ``tests/test_figure_reuse.py`` holds kept figures to figures built from scratch, and text, ticks
@@ -1087,7 +1087,7 @@ def _layout(fig: Figure, with_spikes: bool) -> tuple[dict[str, Any], Any, list]:
 
 
 @dataclass
-class _Page:
+class _KeptFigure:
     """A built figure kept for the next cell of the same layout: axes and ticks stay."""
 
     fig: Figure
@@ -1127,36 +1127,36 @@ class _Page:
         self.axes["colourbar"].set_visible(False)
 
 
-_PAGES = threading.local()
-_MAX_PAGES = 4  # layouts kept per thread (with and without spikes, a dpi or two)
+_KEPT = threading.local()
+_MAX_KEPT = 4  # layouts kept per thread (with and without spikes, a dpi or two)
 
 
 def clear_figure_cache() -> None:
     """Forget this thread's kept figures and renderers: the next figure is built anew."""
-    _PAGES.value = {}
+    _KEPT.value = {}
     _RENDERERS.value = {}
 
 
-def _page(cfg: FigureSettings, with_spikes: bool) -> _Page:
+def _kept_figure(cfg: FigureSettings, with_spikes: bool) -> _KeptFigure:
     """This thread's figure for the layout, built on first use (under the figure's rcParams)."""
     height = cfg.height_in + (cfg.spikes_height_in if with_spikes else 0.0)
     key = (cfg.width_in, height, cfg.dpi, with_spikes)
-    pages = getattr(_PAGES, "value", None)
+    pages = getattr(_KEPT, "value", None)
     if pages is None:
-        pages = _PAGES.value = {}
+        pages = _KEPT.value = {}
     page = pages.pop(key, None)
     if page is None:
         fig = Figure(figsize=(cfg.width_in, height), dpi=cfg.dpi)
         _Canvas(fig)
-        page = _Page(fig, *_layout(fig, with_spikes))
-    while len(pages) >= _MAX_PAGES:
+        page = _KeptFigure(fig, *_layout(fig, with_spikes))
+    while len(pages) >= _MAX_KEPT:
         pages.pop(next(iter(pages)))  # the least recently used
     return page
 
 
-def _keep(cfg: FigureSettings, with_spikes: bool, page: _Page) -> None:
+def _keep(cfg: FigureSettings, with_spikes: bool, page: _KeptFigure) -> None:
     height = cfg.height_in + (cfg.spikes_height_in if with_spikes else 0.0)
-    _PAGES.value[(cfg.width_in, height, cfg.dpi, with_spikes)] = page
+    _KEPT.value[(cfg.width_in, height, cfg.dpi, with_spikes)] = page
 
 
 _RENDERERS = threading.local()
@@ -1413,7 +1413,7 @@ class _Canvas(FigureCanvasAgg):
             kept = _RENDERERS.value = {}
         renderer = kept.get(key)
         if renderer is None:
-            while len(kept) >= _MAX_PAGES:
+            while len(kept) >= _MAX_KEPT:
                 kept.pop(next(iter(kept)))
             renderer = kept[key] = _TextRenderer(w, h, self.figure.dpi)
         self.renderer = renderer
@@ -1560,8 +1560,8 @@ def _cell_figure(
     with_spikes = spikes is not None
     # One figure at a time per process: rc_context changes the global rcParams.
     with _DRAW_LOCK, matplotlib.rc_context(_RC):
-        page = _page(cfg, with_spikes)
-        _draw_page(page, recording, epochs, cell_fit, verdict, path, spikes, cfg)
+        page = _kept_figure(cfg, with_spikes)
+        _draw_kept(page, recording, epochs, cell_fit, verdict, path, spikes, cfg)
         # kept only when drawn and cleared without error: a failure may leave any state
         page.clear()
         _keep(cfg, with_spikes, page)
@@ -1570,8 +1570,8 @@ def _cell_figure(
 _DRAW_LOCK = threading.Lock()
 
 
-def _draw_page(
-    page: _Page, recording, epochs, cell_fit, verdict, path: Path, spikes, cfg: FigureSettings
+def _draw_kept(
+    page: _KeptFigure, recording, epochs, cell_fit, verdict, path: Path, spikes, cfg: FigureSettings
 ) -> None:
     fig, axes = page.fig, page.axes
     cell_id = (
