@@ -5,6 +5,7 @@ from __future__ import annotations
 import io
 
 import numpy as np
+import pytest
 from PIL import Image
 from test_report_figures import fake_cell
 
@@ -20,6 +21,30 @@ def test_png_bytes_round_trip_is_lossless():
     assert np.array_equal(np.asarray(image), rgba[..., :3])
     # pHYs stores dots per metre (rounded): 80 dpi reads back within 0.01 dpi
     assert abs(image.info["dpi"][0] - 80.0) < 0.01
+
+
+@pytest.mark.parametrize("deflater", ["isal", "zlib"])
+@pytest.mark.parametrize("level", [0, 1, 3, 9])
+def test_png_bytes_is_lossless_with_either_deflater(monkeypatch, deflater, level):
+    """ISA-L (the default) and the stdlib fallback both write streams any PNG reader decodes."""
+    import zlib
+
+    from isal import isal_zlib
+
+    import pipeline.report.figures as figures
+
+    monkeypatch.setattr(figures, "_DEFLATE", isal_zlib if deflater == "isal" else zlib)
+    rgb = np.zeros((60, 90, 3), np.uint8) + 255  # a plot-like image: white, a few lines
+    rgb[10:12, :, :] = (31, 119, 180)
+    rgb[:, 40, :] = np.arange(60, dtype=np.uint8)[:, None]
+    image = Image.open(io.BytesIO(png_bytes(rgb, level=level)))
+    assert np.array_equal(np.asarray(image), rgb)
+
+
+def test_default_deflater_is_isal():
+    import pipeline.report.figures as figures
+
+    assert figures._DEFLATE.__name__ == "isal.isal_zlib"  # a declared dependency, not optional
 
 
 def _pixels(path) -> np.ndarray:

@@ -125,7 +125,7 @@ class FigureSettings:
     height_in: float = 8.6
     spikes_height_in: float = 3.6  # extra height of the spiking row
     step_cmap: str = "viridis"
-    png_compress_level: int = 3  # zlib level: 3 is about as small as 9 for plots, much faster
+    png_compress_level: int = 1  # deflate level (see png_bytes): 1 is fast, ~15 % larger than 9
 
 
 def _settings(
@@ -1427,7 +1427,7 @@ class _Canvas(FigureCanvasAgg):
 
         FigureCanvasAgg.draw(self)
         rgb = _rgb(np.asarray(self.renderer.buffer_rgba()))
-        level = (pil_kwargs or {}).get("compress_level", 3)
+        level = (pil_kwargs or {}).get("compress_level", 1)
         with open_file_cm(filename_or_obj, "wb") as fh:
             fh.write(png_bytes(rgb, self.figure.dpi, level))
 
@@ -1446,7 +1446,23 @@ def _rgb(rgba: np.ndarray) -> np.ndarray:
     return np.ascontiguousarray(fields).view(np.uint8).reshape(h, w, 3)
 
 
-def png_bytes(rgb: np.ndarray, dpi: float = 100.0, level: int = 3) -> bytes:
+def _deflater() -> Any:
+    """ISA-L's deflate (the ``isal`` package) when installed, else the standard library's zlib.
+
+    Both write standard zlib streams. On these plots ISA-L's level 1 is ~7x faster than zlib's
+    fastest levels, for files ~15 % larger; zlib is the fallback where isal has no wheel.
+    """
+    try:
+        from isal import isal_zlib
+    except ImportError:  # pragma: no cover - isal is a declared dependency
+        return zlib
+    return isal_zlib
+
+
+_DEFLATE = _deflater()
+
+
+def png_bytes(rgb: np.ndarray, dpi: float = 100.0, level: int = 1) -> bytes:
     """Encode an RGB image as a PNG, losslessly, every row with the "Up" filter.
 
     Pillow tries all five PNG filters on every row, which is most of its encoding time; one
@@ -1460,7 +1476,7 @@ def png_bytes(rgb: np.ndarray, dpi: float = 100.0, level: int = 3) -> bytes:
     dpi : float
         Resolution stored in the ``pHYs`` chunk, dots per inch.
     level : int
-        zlib compression level, 0-9.
+        Deflate level: 0-3 with ISA-L (higher levels are taken as 3), 0-9 with zlib.
 
     Returns
     -------
@@ -1475,6 +1491,8 @@ def png_bytes(rgb: np.ndarray, dpi: float = 100.0, level: int = 3) -> bytes:
     pixels[0] = rgb[0]
     np.subtract(rgb[1:], rgb[:-1], out=pixels[1:], dtype=np.uint8)
     per_metre = round(dpi / 0.0254)
+    if _DEFLATE is not zlib:
+        level = min(max(level, 0), 3)
 
     def chunk(tag: bytes, data: bytes) -> bytes:
         return struct.pack(">I", len(data)) + tag + data + struct.pack(">I", zlib.crc32(tag + data))
@@ -1484,7 +1502,7 @@ def png_bytes(rgb: np.ndarray, dpi: float = 100.0, level: int = 3) -> bytes:
             b"\x89PNG\r\n\x1a\n",
             chunk(b"IHDR", struct.pack(">IIBBBBB", w, h, 8, 2, 0, 0, 0)),  # 8-bit RGB
             chunk(b"pHYs", struct.pack(">IIB", per_metre, per_metre, 1)),
-            chunk(b"IDAT", zlib.compress(rows, level)),  # the buffer itself, not a copy
+            chunk(b"IDAT", _DEFLATE.compress(rows, level)),  # the buffer itself, not a copy
             chunk(b"IEND", b""),
         )
     )
