@@ -20,6 +20,7 @@ from pipeline.report.figures import (
     cell_figure,
     envelope,
     figure_names,
+    residual_bins,
     safe_name,
 )
 from pipeline.steps import StepEpoch
@@ -304,3 +305,48 @@ def test_real_hostile_files_written(tmp_path):
         rec2 = dataclasses.replace(rec, cell_id=h)
         cell_figure(rec2, epochs, fit, verdict, tmp_path / f"{safe_name(h)}.png", dpi=30)
     assert sorted(p.suffix for p in tmp_path.iterdir()) == [".png"] * 3
+
+
+# --- the residual panel: widening bins, hum removed ---------------------------------------
+
+
+@pytest.mark.parametrize("rate", [10_000.0, 20_000.0, 50_000.0])
+@pytest.mark.parametrize("n_s", [0.0004, 0.003, 0.3, 1.0])
+def test_residual_bins_start_at_the_fitter_width_and_widen(rate, n_s):
+    n = max(2, round(n_s * rate))
+    edges = residual_bins(n, rate)
+    widths = np.diff(edges)
+    first = round(5e-4 * rate)
+    assert edges[0] == 0 and edges[-1] == n and (widths > 0).all()
+    if n >= first:
+        assert (widths >= first).all()  # no bin narrower than the fitter's (the last merged)
+        assert widths[0] == first
+    # each bin but the merged last one is 0.5 ms or 3 % of its start, whichever is wider
+    expect = np.maximum(first, np.round(0.03 * edges[:-1]))[:-1]
+    assert np.array_equal(widths[:-1], expect)
+    if n_s == 1.0:
+        assert len(widths) < 250  # ~170 points per second instead of 2000
+
+
+def test_residual_panel_removes_mains_hum_but_keeps_misfit():
+    """A charging curve plus 50 Hz hum reads as a flat residual; a missed fast component
+    (a second exponential, as a dendritic cell gives) stays in the early bins."""
+    from pipeline.report.figures import _binned_residual, _SweepView
+
+    rate, onset, tau = 20_000.0, 0.1, 0.02
+    t = np.arange(int(1.2 * rate)) / rate
+    fit = ExpFit(onset, 1.1, tau, 0.01, -0.08, 0.99, 1e-5)
+    curve = np.where(t >= onset, fit.curve(t), -0.07)
+    hum = 3e-4 * np.sin(2 * np.pi * 50 * t + 0.3) + 1e-4 * np.sin(2 * np.pi * 100 * t)
+    fast = np.where(t >= onset, 2e-3 * np.exp(-(t - onset) / 1e-3), 0.0)
+
+    def binned(v):
+        view = _SweepView(1, Sweep(v, None, rate, 1), None, None, -1e-10, True, "")
+        return _binned_residual(view, fit)
+
+    tt, rr = binned(curve + hum)
+    assert np.abs(rr).max() < 0.01  # mV: 0.3 mV of hum is gone
+    tt, rr = binned(curve + hum + fast)
+    # the fast component, then flat: the hum fit takes under 1 % of it (its projection on the
+    # sinusoids and the offset and slope fitted beside them)
+    assert rr[0] > 1.0 and np.abs(rr[tt > 20]).max() < 0.01 * rr[0]

@@ -46,6 +46,7 @@ from matplotlib.ticker import MaxNLocator, NullLocator, ScalarFormatter
 from matplotlib.transforms import Bbox, IdentityTransform
 
 from pipeline.fitters.results import CellFit, ExpFit, SweepFit
+from pipeline.fitters.sweep import remove_hum
 from pipeline.qc import CellVerdict
 from pipeline.recording import Recording, Sweep
 from pipeline.report.atomic import atomic_path
@@ -613,44 +614,94 @@ def _draw_iv_fit(ax, points: list[_SweepView], cell_fit: CellFit | None) -> None
     _key(ax, entries, "best", avoid)
 
 
-def _draw_residuals(ax, fig, views: list[_SweepView], dpi: float) -> None:
+_RESID_FIRST_BIN_S = 5e-4  # the fitter's bin width: the start of the charging curve as it saw it
+_RESID_BIN_GROWTH = 0.03  # later bins are 3 % of their time from the fit start
+
+
+def residual_bins(n: int, rate: float) -> np.ndarray:
+    """Edges (sample indices) of bins that widen with time from the fit start.
+
+    The first bins are 0.5 ms wide, as the fitter bins the trace; from ~17 ms on each is 3 % of
+    its time from the fit start. Misfit of a charging curve shows at its start (a faster,
+    dendritic component) and as a slow trend later; wide late bins average out noise and mains
+    hum, so both read at a glance, with ~170 points per second of fit instead of 2000.
+
+    Parameters
+    ----------
+    n : int
+        Samples in the fit window.
+    rate : float
+        Sampling rate, Hz.
+
+    Returns
+    -------
+    numpy.ndarray
+        Increasing edges from 0 to ``n``; every bin holds at least one first-bin width of
+        samples, except when ``n`` itself is shorter.
+    """
+    first = max(1, round(_RESID_FIRST_BIN_S * rate))
+    edges = [0]
+    while edges[-1] < n:
+        edges.append(edges[-1] + max(first, round(_RESID_BIN_GROWTH * edges[-1])))
+    edges[-1] = n
+    if len(edges) > 2 and edges[-1] - edges[-2] < first:
+        del edges[-2]  # a short last bin joins the one before it
+    return np.asarray(edges)
+
+
+def _binned_residual(v: _SweepView, c: ExpFit) -> tuple[np.ndarray, np.ndarray] | None:
+    """Times (ms from the fit start) and means (mV) of data minus fit, hum removed, in
+    widening bins.
+
+    The hum (50 and 60 Hz, two harmonics: the fitter's default) is fitted on the residual
+    itself, flat once the curve is out; left in, it dominates the early bins and aliases in the
+    wide ones. The fitter removes it too, from the trace, before fitting.
+    """
+    t = v.sweep.time()
+    i0, i1 = np.searchsorted(t, [c.t0, c.t1])
+    if i1 - i0 < 2:
+        return None
+    rate = v.sweep.rate
+    resid = v.sweep.voltage[i0:i1] - c.curve(t[i0:i1])
+    resid = remove_hum(resid, rate, [(0, resid.size)], 2) * 1e3
+    edges = residual_bins(resid.size, rate)
+    finite = np.isfinite(resid)
+    counts = np.add.reduceat(finite, edges[:-1])
+    sums = np.add.reduceat(np.where(finite, resid, 0.0), edges[:-1])
+    keep = counts > 0
+    if keep.sum() < 2:
+        return None
+    centre_s = (edges[:-1] + edges[1:] - 1) / 2 / rate + t[i0] - c.t0
+    return centre_s[keep] * 1e3, sums[keep] / counts[keep]
+
+
+def _draw_residuals(ax, views: list[_SweepView]) -> None:
     ax.axhline(0, color="0.6", lw=0.8)
     ax.set_xlabel("time from fit start (ms)")
     ax.set_ylabel("residual (mV)")
-    _title(ax, "charging-curve fit residuals (data − fit, 0.5 ms means; hum not removed here)")
+    _title(
+        ax,
+        "charging-curve fit residuals (data − fit, hum removed; means in bins widening from 0.5 ms)",
+    )
     rms, curves = [], []
     for v in views:
         c: ExpFit | None = v.fit.charging if v.fit is not None else None
         if c is None or not _drawable(c) or v.sweep is None:
             continue
-        t = v.sweep.time()
-        i0, i1 = np.searchsorted(t, [c.t0, c.t1])
-        if i1 - i0 < 2:
+        binned = _binned_residual(v, c)
+        if binned is None:
             continue
-        resid = (v.sweep.voltage[i0:i1] - c.curve(t[i0:i1])) * 1e3
-        # Means over 0.5 ms bins, as the fitter sees the trace: raw samples would show the
-        # noise, not whether the curve follows the data.
-        k = max(1, round(5e-4 * v.sweep.rate))
-        n = (resid.size // k) * k
-        if n < 2 * k:
-            continue
-        rr = np.nanmean(resid[:n].reshape(-1, k), axis=1)
-        tt = (t[i0 : i0 + n : k] + 0.5 * (k - 1) / v.sweep.rate - c.t0) * 1e3
-        curves.append((tt, rr, v.colour if v.used else EXCLUDED_COLOUR))
+        curves.append((*binned, v.colour if v.used else EXCLUDED_COLOUR))
         if _finite(c.resid_rms):
             rms.append(c.resid_rms * 1e3)
     if not curves:
         _note(ax, "no charging-curve fits to show")
         return
-    # at most two points per pixel column, as the traces: the same picture, a third the
-    # line length to rasterize (a 1 s fit has 2000 means on ~560 columns)
-    longest = max(tt[-1] - tt[0] for tt, _, _ in curves) or 1.0
-    columns = _axis_columns(ax, fig, dpi)
-    xy = [envelope(tt, rr, int(columns * (tt[-1] - tt[0]) / longest)) for tt, rr, _ in curves]
-    _lines(ax, xy, [to_rgba(c) for _, _, c in curves], [0.7] * len(xy), ["-"] * len(xy), 2)
+    xy = [(tt, rr) for tt, rr, _ in curves]
+    _lines(ax, xy, [to_rgba(c) for _, _, c in curves], [0.8] * len(xy), ["-"] * len(xy), 2)
     if rms:
         ax.text(
-            0.99, 0.96, f"fit RMS (hum removed) {min(rms):.2f}–{max(rms):.2f} mV, {len(rms)} fits",
+            0.99, 0.96, f"fit RMS {min(rms):.2f}–{max(rms):.2f} mV, {len(rms)} fits",
             transform=ax.transAxes, ha="right", va="top", fontsize=7,
         )  # fmt: skip
 
@@ -1600,7 +1651,7 @@ def _draw_kept(
     _draw_traces(axes["traces"], fig, views, cell_fit, cfg.dpi)
     _draw_colourbar(axes["colourbar"], views, cfg.step_cmap)
     _draw_iv(axes["iv"], views, cell_fit)
-    _draw_residuals(axes["resid"], fig, views, cfg.dpi)
+    _draw_residuals(axes["resid"], views)
     _draw_baselines(axes["baseline"], views)
     _draw_text(page.text_box, fig, recording, cell_fit, verdict, views, cell_id, spikes)
     if spikes is not None:
