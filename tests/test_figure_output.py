@@ -65,10 +65,17 @@ def test_reused_renderer_draws_each_figure_from_scratch(tmp_path):
     assert _pixels(tmp_path / "small.png").shape[:2] == (round(8.6 * 30), 15 * 30)
 
 
-def test_rgb_of_rgba_drops_only_alpha():
-    from pipeline.report.figures import _rgb
-
+def test_png_bytes_keeps_straight_alpha():
+    """RGBA is written as it is (colour type 6), as the canvas buffer holds it."""
     rgba = np.random.default_rng(3).integers(0, 256, size=(9, 13, 4), dtype=np.uint8)
-    rgb = _rgb(rgba)
-    assert rgb.shape == (9, 13, 3) and rgb.flags["C_CONTIGUOUS"]
-    assert np.array_equal(rgb, rgba[..., :3])
+    image = Image.open(io.BytesIO(png_bytes(rgba)))
+    assert image.mode == "RGBA" and np.array_equal(np.asarray(image), rgba)
+    with pytest.raises(ValueError, match="2 channels"):
+        png_bytes(rgba[..., :2])
+
+
+def test_figure_png_is_opaque(tmp_path):
+    rec, epochs, fit, verdict = fake_cell("cellA")
+    cell_figure(rec, epochs, fit, verdict, tmp_path / "a.png", dpi=30)
+    pixels = _pixels(tmp_path / "a.png")
+    assert pixels.shape[2] == 4 and (pixels[..., 3] == 255).all()
