@@ -18,6 +18,7 @@ from pipeline.report.figures import (
     FAIL_COLOUR,
     PASS_COLOUR,
     cell_figure,
+    column_bands,
     envelope,
     figure_names,
     residual_bins,
@@ -262,6 +263,31 @@ def test_envelope_keeps_extremes():
     td, vd = envelope(t, v, 800)
     assert vd.size <= 2 * 800 + 37 and vd.max() == 9.0 and vd.min() == v.min()
     assert np.all(np.diff(td) >= 0)
+
+
+@pytest.mark.parametrize("n", [30_000, 30_017, 3_000])
+def test_column_bands_cover_every_sample_and_every_join(n):
+    """Each column's band holds its samples and the segment from the column before, so a
+    one-sample spike and an instantaneous jump (a bridge step) are both painted."""
+    rng = np.random.default_rng(4)
+    v = rng.normal(size=n)
+    v[n // 3] = 9.0
+    v[n // 2 :] -= 20.0  # a jump between two samples
+    t, lo, hi = column_bands(v, RATE, 800)
+    per = -(-n // 800)
+    assert lo.size == hi.size == t.size == -(-n // per)
+    assert np.all(np.diff(t) > 0) and t[0] >= 0 and t[-1] <= (n - 1) / RATE
+    for k in range(lo.size):
+        part = v[max(k * per - 1, 0) : (k + 1) * per]  # its samples and the join before
+        assert lo[k] == part.min() and hi[k] == part.max()
+    assert hi.max() == 9.0 and lo.min() == v.min()
+
+
+def test_column_bands_leave_sparse_or_gappy_traces_to_lines():
+    v = np.zeros(2_000)
+    assert column_bands(v, RATE, 1_000) is None  # two samples a column: drawn as a line
+    v[5] = np.nan
+    assert column_bands(v, RATE, 100) is None  # a gap a polygon cannot show
 
 
 HOSTILE = [
