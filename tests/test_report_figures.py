@@ -376,3 +376,25 @@ def test_residual_panel_removes_mains_hum_but_keeps_misfit():
     # the fast component, then flat: the hum fit takes under 1 % of it (its projection on the
     # sinusoids and the offset and slope fitted beside them)
     assert rr[0] > 1.0 and np.abs(rr[tt > 20]).max() < 0.01 * rr[0]
+
+
+def test_trace_panel_clips_spikes_just_above_the_highest_plateau():
+    """Spikes would squash the passive responses: the panel's top sits a margin (at least
+    8 mV) above the highest median level of any sweep, far below the spike peaks."""
+    from matplotlib.figure import Figure
+
+    from pipeline.report.figures import _Canvas, _draw_traces, _epoch_map, _sweep_views
+
+    rec, epochs, fit, verdict = fake_cell()
+    views = _sweep_views(rec, _epoch_map(epochs), fit, verdict, "viridis")
+    fig = Figure(figsize=(6, 3), dpi=40)
+    _Canvas(fig)  # the figures' own canvas: its renderer answers font metrics
+    ax = fig.add_subplot()
+    _draw_traces(ax, fig, views, fit, 40.0)
+    plateaus = [  # full medians during each step, mV
+        1e3 * float(np.median(s.voltage[e.onset_index : e.offset_index]))
+        for s, e in zip(rec.sweeps, epochs, strict=True)
+    ]
+    top = ax.get_ylim()[1]
+    assert max(plateaus) + 7.9 < top < max(plateaus) + 12
+    assert top < 1e3 * max(float(s.voltage.max()) for s in rec.sweeps) - 30
