@@ -158,3 +158,25 @@ def test_rule_on_a_misspelt_column_is_reported_with_a_suggestion(day, tmp_path):
     assert any("'tau_msec'" in w and "did you mean 'tau_ms'" in w for w in result.info["warnings"])
     assert not result.cells["qc_pass"].any()  # the cells say why, too
     assert result.cells["qc_reasons"].str.contains("tau_msec").all()
+
+
+@pytest.mark.parametrize(
+    ("method", "figures", "expect"),
+    [
+        ("fork", True, ["scipy.optimize", "pipeline.report.figures"]),
+        ("fork", False, ["scipy.optimize"]),
+        ("spawn", True, []),  # spawned workers would not inherit them
+        ("forkserver", True, []),
+    ],
+)
+def test_pool_workers_inherit_heavy_imports_only_when_forked(monkeypatch, method, figures, expect):
+    import importlib
+    import multiprocessing
+
+    from pipeline import batch
+
+    loaded = []
+    monkeypatch.setattr(multiprocessing, "get_start_method", lambda allow_none=False: method)
+    monkeypatch.setattr(importlib, "import_module", loaded.append)
+    batch._preload_for_fork(figures)
+    assert loaded == expect

@@ -212,20 +212,22 @@ def test_page_of_a_run_without_figures_has_no_plot_and_says_why():
     assert "Cells (9)" in text  # the table itself is all there
 
 
-def test_tables_only_run_never_imports_matplotlib(tmp_path):
-    # matplotlib costs ~0.5 s per process; a --no-figures run has no use for it
+@pytest.mark.parametrize("workers", [1, 2])
+def test_tables_only_run_never_imports_matplotlib(tmp_path, workers):
+    # matplotlib costs ~0.5 s per process; a --no-figures run has no use for it (with a pool,
+    # the main process preloads only what the workers fit with)
     import subprocess
     import sys
 
     from day_factory import write_day
 
     day = tmp_path / "day"
-    write_day(day, n_cells=1)
+    write_day(day, n_cells=2)
     code = (
         "import sys\n"
         "from pipeline.batch import run_batch\n"
-        f"run_batch([{str(day)!r}], out={str(tmp_path / 'out')!r}, workers=1, figures=False,"
-        " progress=False)\n"
+        f"run_batch([{str(day)!r}], out={str(tmp_path / 'out')!r}, workers={workers},"
+        " figures=False, progress=False)\n"
         "print('matplotlib' in sys.modules)\n"
     )
     out = subprocess.run([sys.executable, "-c", code], capture_output=True, text=True, check=True)
