@@ -425,17 +425,22 @@ def _draw_fits_and_windows(ax, views: list[_SweepView]) -> None:
         n = len(curves)
         _lines(ax, curves, [FIT_COLOUR] * n, [1.0] * n, ["--"] * n, zorder=3, capstyle="butt")
     shades = {"charging fit": "#9ecae1", "steady state": "#fdd0a2", "baseline": "0.88"}
-    for key, wins in windows.items():
-        if wins:
-            lo, hi = min(w[0] for w in wins), max(w[1] for w in wins)
-            ax.axvspan(
-                lo * 1e3,
-                hi * 1e3,
-                color=shades[key],
-                alpha=0.45,
-                lw=0,
-                zorder=0,
-            )
+    spans = [
+        (min(w[0] for w in wins) * 1e3, max(w[1] for w in wins) * 1e3, shades[key])
+        for key, wins in windows.items()
+        if wins
+    ]
+    if spans:
+        # as axvspan draws them (full height, x in data), one collection instead of a
+        # Rectangle each; the windows lie within the sweeps, so they add nothing to the limits
+        ax.add_collection(
+            PolyCollection(
+                [[(x0, 0.0), (x0, 1.0), (x1, 1.0), (x1, 0.0)] for x0, x1, _ in spans],
+                facecolors=[to_rgba(c, 0.45) for _, _, c in spans], linewidths=0, zorder=0,
+                transform=ax.get_xaxis_transform(which="grid"),
+            ),
+            autolim=False,
+        )  # fmt: skip
     entries = [
         (f"{key} window", "patch", {"facecolor": shades[key], "alpha": 0.45})
         for key, wins in windows.items()
