@@ -13,6 +13,7 @@ import math
 import sys
 import threading
 
+import matplotlib
 import numpy as np
 import pytest
 from matplotlib.figure import Figure
@@ -282,3 +283,46 @@ def test_ticks_and_axis_labels_as_matplotlib_draws_them(tmp_path, name, dpi, mon
             assert place == pytest.approx(theirs[key][1:], abs=1e-6), key
     if name == "offset tick labels":
         assert ours[("baseline", "x", "offset")][0] == "+1e6"
+
+
+@pytest.mark.skipif(not figures._glyph_api(), reason="this matplotlib renders text whole")
+@pytest.mark.parametrize(
+    "style",
+    [
+        {"family": "DejaVu Sans"},
+        {"family": "monospace"},
+        {"family": "monospace", "weight": "bold"},
+        {"family": "DejaVu Sans", "weight": "bold"},
+        {"family": "DejaVu Sans", "style": "italic"},
+    ],
+)
+def test_text_measured_from_the_kept_layout_as_freetype_measures_it(style):
+    """Width, height and descent from the kept layout equal the stock measure (set_text)."""
+    import random
+
+    from matplotlib.backends.backend_agg import RendererAgg
+    from matplotlib.font_manager import FontProperties
+
+    chars = "abcdefghijklmnopqrstuvwxyzABCDEFGHIJKLMNOPQRSTUVWXYZ0123456789 .,;:()[]{}-+−–=/%°µΩΔ●▲•…½'\"_"
+    rng = random.Random(5)
+    texts = [
+        "   ",
+        " a",
+        "a ",
+        "Rin        118 MΩ [116, 119]",
+        "office fiddle AVATAR Te",
+        "−20",
+        "j",
+    ]
+    texts += ["".join(rng.choice(chars) for _ in range(rng.randint(1, 40))) for _ in range(40)]
+    with matplotlib.rc_context(figures._RC):
+        ours = figures._TextRenderer(200, 100, 100.0)
+        stock = RendererAgg(200, 100, 100.0)
+        ours.clear()
+        for size in (7, 8.5, 13):
+            prop = FontProperties(size=size, **style)
+            for text in texts:
+                got = ours._measure(text, prop)
+                want = RendererAgg.get_text_width_height_descent(stock, text, prop, False)
+                assert got == want, (text, size)
+        assert ours._measure("", FontProperties(size=8)) is None  # measured the stock way

@@ -1326,6 +1326,7 @@ def _glyph_api() -> bool:
 
 
 _GLYPHS_ONE_BY_ONE = _glyph_api()
+_UNROTATED = np.array([[0x10000, 0], [0, 0x10000]])  # FreeType's 16.16 identity matrix
 _CLEAR_OF_COVER = 1.0 - np.arange(256) / 255.0  # glyph coverage (0-255) -> light let through
 _MAX_TEXT_BITMAPS = 4096  # per renderer; a text line's bitmap is a few kB
 
@@ -1350,6 +1351,7 @@ class _TextRenderer(RendererAgg):
         self._glyphs: dict[tuple, tuple[int, int, np.ndarray]] = {}
         self._heights: dict[tuple, tuple[float, float, float] | tuple[None, None, None]] = {}
         self._widths: dict[tuple, tuple[float, float, float]] = {}
+        self._boxes: dict[tuple, tuple[tuple[int, int, int, int], int]] = {}
         self._font_rc: tuple = ()
 
     def clear(self) -> None:
@@ -1363,7 +1365,9 @@ class _TextRenderer(RendererAgg):
             str(v) for k, v in matplotlib.rcParams.items() if k.startswith(("font.", "text."))
         )
         if font_rc != self._font_rc:
-            for kept in (self._bitmaps, self._layouts, self._glyphs, self._heights, self._widths):
+            kept_all = (self._bitmaps, self._layouts, self._glyphs, self._heights, self._widths,
+                        self._boxes)  # fmt: skip
+            for kept in kept_all:
                 kept.clear()
             self._font_rc = font_rc
 
@@ -1380,8 +1384,53 @@ class _TextRenderer(RendererAgg):
         if extent is None:
             if len(self._widths) >= _MAX_TEXT_BITMAPS:
                 self._widths.clear()
-            extent = self._widths[key] = super().get_text_width_height_descent(s, prop, False)
+            extent = self._measure(s, prop) if _GLYPHS_ONE_BY_ONE else None
+            if extent is None:
+                extent = super().get_text_width_height_descent(s, prop, False)
+            self._widths[key] = extent
         return extent
+
+    def _measure(self, s: str, prop) -> tuple[float, float, float] | None:
+        """What ``FT2Font.set_text`` measures, from the layout :meth:`draw_text` keeps.
+
+        The width is where the pen ends (the last glyph's place plus its advance); height and
+        descent come from the union of the glyphs' control boxes at their places. A new
+        string then costs one FreeType layout instead of two. None when there is nothing to
+        lay out or the private API differs (the caller measures the stock way).
+        ``tests/test_figure_reuse.py`` compares it with the stock measure.
+        """
+        from matplotlib.backends.backend_agg import get_hinting_flag
+
+        flags = get_hinting_flag()
+        line = (s, _prop_key(prop), self.dpi, flags, None, None)
+        try:
+            items = self._layouts.get(line) or self._layout(line, s, prop, flags, None, None)
+            if not items:
+                return None
+            size = prop.get_size_in_points()
+            low, high = math.inf, -math.inf
+            for ft_object, glyph_index, _, dy in items:
+                box, _ = self._glyph_box(ft_object, glyph_index, size, flags)
+                low = min(low, box[1] + round(64 * dy))
+                high = max(high, box[3] + round(64 * dy))
+            ft_object, glyph_index, dx, _ = items[-1]
+            advance = self._glyph_box(ft_object, glyph_index, size, flags)[1]
+        except (AttributeError, TypeError, ValueError):
+            return None
+        return (round(64 * dx) + advance) / 64, (high - low) / 64, -low / 64
+
+    def _glyph_box(self, ft_object, glyph_index: int, size: float, flags) -> tuple:
+        """A glyph's control box (26.6 subpixels, at the origin) and advance, kept."""
+        key = (ft_object.fname, size, self.dpi, glyph_index, flags)
+        kept = self._boxes.get(key)
+        if kept is None:
+            ft_object.set_size(size, self.dpi)
+            ft_object._set_transform(_UNROTATED, [0, 0])  # drawing leaves its own transform
+            glyph = ft_object.load_glyph(glyph_index, flags)
+            if len(self._boxes) >= _MAX_TEXT_BITMAPS:
+                self._boxes.clear()
+            kept = self._boxes[key] = (tuple(glyph.bbox), glyph.horiAdvance)
+        return kept
 
     def _text_width(self, s: str, prop) -> float:
         return self.get_text_width_height_descent(s, prop, False)[0]
