@@ -79,3 +79,27 @@ def test_figure_png_is_opaque(tmp_path):
     cell_figure(rec, epochs, fit, verdict, tmp_path / "a.png", dpi=30)
     pixels = _pixels(tmp_path / "a.png")
     assert pixels.shape[2] == 4 and (pixels[..., 3] == 255).all()
+
+
+def test_drawing_a_figure_does_not_import_pyplot(tmp_path):
+    """pyplot (and its style library) is for interactive use: reading rcParams["backend"]
+    imports it, ~0.1 s per worker process."""
+    import subprocess
+    import sys
+    from pathlib import Path
+
+    tests = Path(__file__).parent
+    code = (
+        "import sys\n"
+        f"sys.path.insert(0, {str(tests)!r})\n"
+        "from test_report_figures import fake_cell\n"
+        "from pipeline.report.figures import cell_figure\n"
+        "cell_figure(*fake_cell(), sys.argv[1], dpi=30)\n"
+        "print('matplotlib.pyplot' in sys.modules)\n"
+    )
+    out = subprocess.run(
+        [sys.executable, "-c", code, str(tmp_path / "a.png")],
+        capture_output=True, text=True, check=False,
+    )  # fmt: skip
+    assert out.returncode == 0, out.stderr
+    assert out.stdout.strip().splitlines()[-1] == "False"

@@ -1361,9 +1361,9 @@ class _TextRenderer(RendererAgg):
         depends on these settings.
         """
         super().clear()
-        font_rc = tuple(
-            str(v) for k, v in matplotlib.rcParams.items() if k.startswith(("font.", "text."))
-        )
+        rc = matplotlib.rcParams
+        # keys first: reading every value would resolve "backend" and import pyplot
+        font_rc = tuple(str(rc[k]) for k in rc if k.startswith(("font.", "text.")))
         if font_rc != self._font_rc:
             kept_all = (self._bitmaps, self._layouts, self._glyphs, self._heights, self._widths,
                         self._boxes)  # fmt: skip
