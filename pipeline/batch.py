@@ -341,6 +341,11 @@ def _preload_for_fork(figures: bool) -> None:
         importlib.import_module(name)
 
 
+def _import_report_modules() -> None:
+    """Import what :func:`_assemble` needs (pandas, the page's templating) ahead of time."""
+    from pipeline.report import page, tables  # noqa: F401
+
+
 def _execute_pool(todo, config, figure_dir, n) -> Iterator[tuple[int, dict]]:
     """The process pool. A worker that dies (a crash in a C library, an OOM kill) breaks the
     whole pool; the files that were then unfinished are re-run one per fresh process, so only
@@ -351,6 +356,7 @@ def _execute_pool(todo, config, figure_dir, n) -> Iterator[tuple[int, dict]]:
     unfinished = []
     with ProcessPoolExecutor(max_workers=n) as pool:
         futures = {pool.submit(job.run, config, figure_dir): job for job in todo}
+        _import_report_modules()  # while the workers start: the main process waits anyway
         for future in as_completed(futures):
             job = futures[future]
             try:

@@ -9,10 +9,12 @@ from __future__ import annotations
 
 from dataclasses import dataclass, field
 from pathlib import Path
-
-import pandas as pd
+from typing import TYPE_CHECKING
 
 from pipeline.errors import PatchbatchError
+
+if TYPE_CHECKING:
+    import pandas as pd
 
 KEY_COLUMNS = ("cell_id", "file")
 
@@ -104,6 +106,8 @@ def read_sheet(path: str | Path) -> Sheet:
 def _parse(text: str, where: str) -> pd.DataFrame:
     import csv
     from io import StringIO
+
+    import pandas as pd  # here, not at import: a batch's main process needs it only at the end
 
     if not text.strip():
         raise SheetError(f"{where}: not a readable CSV table (the sheet is empty)")
