@@ -251,3 +251,17 @@ def test_summary_plot_is_kept_by_what_it_is_drawn_from(tmp_path, monkeypatch):
     changed.loc[0, "rin_mohm"] = 999.0
     with pytest.raises(AssertionError, match="drawn again"):
         render_page(changed, run_info={}, figures={}, plot_cache=kept)
+
+
+def test_only_the_current_summary_plot_is_kept(tmp_path):
+    kept = tmp_path / "kept"
+    (kept / "other").mkdir(parents=True)
+    (kept / "entry.json").write_text("{}")  # the result cache beside it is left alone
+    render_page(fake_cells(), run_info={}, figures={}, plot_cache=kept)
+    first = list(kept.glob("summary-*.png"))
+    changed = fake_cells()
+    changed.loc[0, "rin_mohm"] = 999.0
+    render_page(changed, run_info={}, figures={}, plot_cache=kept)
+    now = list(kept.glob("summary-*.png"))
+    assert len(first) == len(now) == 1 and first != now
+    assert (kept / "entry.json").is_file() and (kept / "other").is_dir()

@@ -236,6 +236,10 @@ def _cached_summary(
     if png is not None:
         Path(folder).mkdir(parents=True, exist_ok=True)
         atomic_write_bytes(path, png)
+        # one page per output folder: the plots of earlier tables will not be asked for again
+        for stale in Path(folder).glob("summary-*.png"):
+            if stale != path:
+                stale.unlink(missing_ok=True)
     return png
 
 
