@@ -1006,7 +1006,8 @@ def _draw_rheobase(ax, fig, views: list[_SweepView], spikes: Any, dpi: float) ->
         )
     step = getattr(spikes, "rheobase_a", view.step_a)
     step_text = f"{step * 1e12:.0f} pA" if _finite(step) else "step unknown"
-    _title(ax, f"rheobase sweep {view.number} ({step_text}), {len(marks)} spikes detected")
+    count = f"{len(marks)} spike{'' if len(marks) == 1 else 's'} detected"
+    _title(ax, f"rheobase sweep {view.number} ({step_text}), {count}")
 
 
 def _draw_fi(ax, views: list[_SweepView], spikes: Any) -> None:
