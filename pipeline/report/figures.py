@@ -25,9 +25,11 @@ import struct
 import textwrap
 import threading
 import unicodedata
+import weakref
 import zlib
-from collections.abc import Iterable, Mapping, Sequence
+from collections.abc import Callable, Iterable, Mapping, Sequence
 from dataclasses import dataclass
+from functools import partial
 from pathlib import Path
 from typing import Any
 
@@ -295,8 +297,14 @@ def _note(ax, text: str) -> None:
 
 
 def _title(ax, text: str) -> None:
-    """A panel title as plain text (``set_title`` re-lays out every draw and costs ~20 ms)."""
-    ax.text(0.0, 1.012, text, transform=ax.transAxes, fontsize=9, va="bottom", ha="left")
+    """A panel title as plain text (``set_title`` re-lays out every draw and costs ~20 ms),
+    kept in the panel from cell to cell (as ``ax.text`` would make it)."""
+
+    def make() -> Text:
+        return Text(0.0, 1.012, "", transform=ax.transAxes, fontsize=9, va="bottom", ha="left",
+                    clip_on=False)  # fmt: skip
+
+    _kept_artist(ax, ("title",), make).set_text(text)
 
 
 def _axis_columns(ax, fig: Figure, dpi: float) -> int:
@@ -1087,24 +1095,45 @@ def _settle_axes(ax) -> None:
         if at and mark.get_visible():
             # the other coordinate is fixed per side, in axes units (0 or 1)
             edge = [(mark.get_ydata() if on_x else mark.get_xdata())[0]] * len(at)
-            marks = Line2D(
-                at if on_x else edge, edge if on_x else at,
-                transform=mark.get_transform(), linestyle="none", marker=mark.get_marker(),
-                markersize=mark.get_markersize(), markeredgewidth=mark.get_markeredgewidth(),
-                markeredgecolor=mark.get_markeredgecolor(), markerfacecolor=mark.get_markerfacecolor(),
-                color=mark.get_color(), alpha=mark.get_alpha(), zorder=axis.get_zorder(),
-                clip_on=False,
-            )  # fmt: skip
-            ax.add_artist(marks)
+            marks = _kept_artist(ax, ("marks", axis.axis_name), partial(_tick_marks, axis, mark))
+            marks.set_data(at if on_x else edge, edge if on_x else at)
         if shown and label.get_visible():
             edge = label.get_position()[1 if on_x else 0]
             anchors = label.get_transform().transform(
                 [(x, edge) if on_x else (edge, x) for x in at]
             )
-            ax.add_artist(
-                _TickLabels(label, renderer, [t for _, t in shown], anchors, axis.get_zorder())
+            labels = _kept_artist(
+                ax, ("labels", axis.axis_name), partial(_TickLabels, label, axis.get_zorder())
             )
+            labels.set_labels(renderer, [t for _, t in shown], anchors)
         axis.set_major_locator(NullLocator())  # the kept rule comes back with the next cell
+
+
+# Artists that stay in a kept figure's axes from cell to cell (tick marks and labels, panel
+# titles), by axes and name: updated in place, hidden when the figure is cleared. Creating,
+# adding and removing them for every cell cost ~0.2-0.3 ms each.
+_KEPT_ARTISTS: weakref.WeakKeyDictionary = weakref.WeakKeyDictionary()
+
+
+def _kept_artist(ax, name: tuple, make: Callable[[], Artist]) -> Any:
+    """The artist ``name`` of ``ax``, made and added on first use; visible again."""
+    kept = _KEPT_ARTISTS.setdefault(ax, {})
+    artist = kept.get(name)
+    if artist is None:
+        artist = kept[name] = make()
+        ax.add_artist(artist)
+    artist.set_visible(True)
+    return artist
+
+
+def _tick_marks(axis, mark: Line2D) -> Line2D:
+    """One Line2D of markers in the axis's tick mark style, on the tick's transform."""
+    return Line2D(
+        [], [], transform=mark.get_transform(), linestyle="none", marker=mark.get_marker(),
+        markersize=mark.get_markersize(), markeredgewidth=mark.get_markeredgewidth(),
+        markeredgecolor=mark.get_markeredgecolor(), markerfacecolor=mark.get_markerfacecolor(),
+        color=mark.get_color(), alpha=mark.get_alpha(), zorder=axis.get_zorder(), clip_on=False,
+    )  # fmt: skip
 
 
 class _TickLabels(Artist):
@@ -1115,10 +1144,15 @@ class _TickLabels(Artist):
     The baseline offsets follow ``Text._get_layout`` for one unrotated line.
     """
 
-    def __init__(self, template, renderer, texts, anchors, zorder: float) -> None:
+    def __init__(self, template, zorder: float) -> None:
         super().__init__()
         self._template, self._prop = template, template.get_fontproperties()
         self.set_zorder(zorder)
+        self._items: list[tuple[str, float, float]] = []
+
+    def set_labels(self, renderer, texts, anchors) -> None:
+        """Place ``texts`` at ``anchors`` (display pixels), replacing the labels drawn before."""
+        template = self._template
         ascent, descent, _ = renderer._get_font_height_metrics(self._prop)
         ha, va = template.get_horizontalalignment(), template.get_verticalalignment()
         self._items = []
@@ -1244,6 +1278,7 @@ class _KeptFigure:
         for ax in self.axes.values():
             if ax.get_legend() is not None:
                 ax.get_legend().remove()
+            kept = set(_KEPT_ARTISTS.get(ax, {}).values())
             for artist in [
                 *ax.lines,
                 *ax.patches,
@@ -1252,7 +1287,10 @@ class _KeptFigure:
                 *ax.images,
                 *ax.artists,
             ]:
-                artist.remove()
+                if artist in kept:
+                    artist.set_visible(False)  # back when the next cell uses it
+                else:
+                    artist.remove()
             ax.set_prop_cycle(None)
             ax.dataLim.set_points(Bbox.null().get_points())
             ax.ignore_existing_data_limits = True
