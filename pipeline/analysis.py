@@ -225,6 +225,9 @@ def _figure(recording, epochs, cell_fit, verdict, spikes, figure_dir, config) ->
         verdict,
         Path(figure_dir) / name,
         spikes=spikes,
+        settings={
+            "hum_harmonics": config.passive.hum_harmonics if config.passive.remove_hum else None
+        },
         dpi=config.report.figure_dpi,
     )
     return name

@@ -147,6 +147,30 @@ def test_figure_after_a_failed_draw(tmp_path, fresh, monkeypatch):
         assert np.array_equal(_draw(cells[name], tmp_path / "z.png"), fresh[name]), name
 
 
+def test_figures_let_go_are_collected(tmp_path, monkeypatch):
+    """Figures dropped after a failed draw or by clear_figure_cache are freed (a kept
+    artist must not hold its axes, and so its figure, alive)."""
+    import gc
+    import weakref
+
+    cells = _cells()
+    clear_figure_cache()
+    _draw(cells["normal"], tmp_path / "a.png")
+    dropped = [weakref.ref(p.fig) for p in figures._KEPT.value.values()]
+
+    def broken(self, *args, **kwargs):
+        raise OSError("disk full")
+
+    with monkeypatch.context() as patch:
+        patch.setattr(Figure, "savefig", broken)
+        with pytest.raises(OSError, match="disk full"):
+            _draw(cells["normal"], tmp_path / "b.png")  # this page is not kept
+    clear_figure_cache()
+    gc.collect()
+    assert dropped and all(ref() is None for ref in dropped)
+    assert not any(ax.figure for ax in figures._KEPT_ARTISTS.keys())
+
+
 def test_threads_keep_their_own_figures(tmp_path, fresh):
     """Dask workers may draw in several threads: each thread's figures give the same pixels."""
     cells = _cells()
@@ -315,6 +339,8 @@ def test_text_measured_from_the_kept_layout_as_freetype_measures_it(style):
         "j",
     ]
     texts += ["".join(rng.choice(chars) for _ in range(rng.randint(1, 40))) for _ in range(40)]
+    # left to the stock measure: a combining mark, format characters, characters of two glyphs
+    others = ["x\u0301", "cell\u00ad", "a\u200bb", "\ufeffid", "\u01fa", "\u01fb x"]
     with matplotlib.rc_context(figures._RC):
         ours = figures._TextRenderer(200, 100, 100.0)
         stock = RendererAgg(200, 100, 100.0)
@@ -325,4 +351,8 @@ def test_text_measured_from_the_kept_layout_as_freetype_measures_it(style):
                 got = ours._measure(text, prop)
                 want = RendererAgg.get_text_width_height_descent(stock, text, prop, False)
                 assert got == want, (text, size)
+            for text in others:
+                want = RendererAgg.get_text_width_height_descent(stock, text, prop, False)
+                assert ours._measure(text, prop) in (None, want), text
+                assert ours.get_text_width_height_descent(text, prop, False) == want, text
         assert ours._measure("", FontProperties(size=8)) is None  # measured the stock way

@@ -275,12 +275,18 @@ def test_column_bands_cover_every_sample_and_every_join(n):
     v[n // 2 :] -= 20.0  # a jump between two samples
     t, lo, hi = column_bands(v, RATE, 800)
     per = -(-n // 800)
-    assert lo.size == hi.size == t.size == -(-n // per)
-    assert np.all(np.diff(t) > 0) and t[0] >= 0 and t[-1] <= (n - 1) / RATE
-    for k in range(lo.size):
+    columns = -(-n // per)
+    assert lo.size == hi.size == t.size == 2 * columns
+    # flat across each column: from its first to its last sample
+    assert np.allclose(t[0::2] * RATE, np.arange(columns) * per)
+    assert np.allclose(t[1::2] * RATE, np.minimum(np.arange(1, columns + 1) * per, n) - 1)
+    assert np.array_equal(lo[0::2], lo[1::2]) and np.array_equal(hi[0::2], hi[1::2])
+    for k in range(columns):
         part = v[max(k * per - 1, 0) : (k + 1) * per]  # its samples and the join before
-        assert lo[k] == part.min() and hi[k] == part.max()
+        assert lo[2 * k] == part.min() and hi[2 * k] == part.max()
     assert hi.max() == 9.0 and lo.min() == v.min()
+    spike = np.flatnonzero(hi == 9.0)  # the one-sample spike: a whole column wide
+    assert t[spike[-1]] - t[spike[0]] >= (per - 1) / RATE - 1e-12
 
 
 def test_column_bands_leave_sparse_or_gappy_traces_to_lines():
@@ -354,28 +360,37 @@ def test_residual_bins_start_at_the_fitter_width_and_widen(rate, n_s):
         assert len(widths) < 250  # ~170 points per second instead of 2000
 
 
-def test_residual_panel_removes_mains_hum_but_keeps_misfit():
-    """A charging curve plus 50 Hz hum reads as a flat residual; a missed fast component
-    (a second exponential, as a dendritic cell gives) stays in the early bins."""
+@pytest.mark.parametrize("tau", [0.004, 0.01, 0.02, 0.2])
+def test_residual_panel_removes_mains_hum_as_the_fitter_does_and_keeps_misfit(tau):
+    """Hum is fitted where the membrane is flat (before the step, the steady-state window),
+    as the fitter does, so the panel shows the misfit of a poor fit as it is, even for a fit
+    window of one or two hum periods (tau 4 ms: a 20 ms window)."""
     from pipeline.report.figures import _binned_residual, _SweepView
 
-    rate, onset, tau = 20_000.0, 0.1, 0.02
+    rate, onset, offset = 20_000.0, 0.1, 1.1
     t = np.arange(int(1.2 * rate)) / rate
-    fit = ExpFit(onset, 1.1, tau, 0.01, -0.08, 0.99, 1e-5)
-    curve = np.where(t >= onset, fit.curve(t), -0.07)
-    hum = 3e-4 * np.sin(2 * np.pi * 50 * t + 0.3) + 1e-4 * np.sin(2 * np.pi * 100 * t)
-    fast = np.where(t >= onset, 2e-3 * np.exp(-(t - onset) / 1e-3), 0.0)
+    on, off = round(onset * rate), round(offset * rate)
+    true = ExpFit(onset, onset + 5 * tau, tau, 0.01, -0.08, 0.99, 1e-5)
+    clean = np.where(t >= onset, true.curve(t), -0.07)
+    clean[t >= offset] = -0.07
+    hum = 3e-4 * np.sin(2 * np.pi * 50 * t + 0.3) + 1e-4 * np.sin(
+        2 * np.pi * 100 * t
+    )  # 2 harmonics
+    poor = dataclasses.replace(true, tau=0.75 * tau)  # a fit that misses: a bump of ~1 mV
+    epoch = StepEpoch(1, True, "step", "", 0.0, -1e-10, onset, offset, on, off)
+    sweep_fit = SweepFit(sweep=1, step_a=-1e-10, ss_window=(1.0, offset), charging=poor)
 
-    def binned(v):
-        view = _SweepView(1, Sweep(v, None, rate, 1), None, None, -1e-10, True, "")
-        return _binned_residual(view, fit)
+    def binned(v, harmonics):
+        view = _SweepView(1, Sweep(v, None, rate, 1), epoch, sweep_fit, -1e-10, True, "")
+        return _binned_residual(view, poor, harmonics)
 
-    tt, rr = binned(curve + hum)
-    assert np.abs(rr).max() < 0.01  # mV: 0.3 mV of hum is gone
-    tt, rr = binned(curve + hum + fast)
-    # the fast component, then flat: the hum fit takes under 1 % of it (its projection on the
-    # sinusoids and the offset and slope fitted beside them)
-    assert rr[0] > 1.0 and np.abs(rr[tt > 20]).max() < 0.01 * rr[0]
+    t_true, misfit = binned(clean, None)
+    assert np.abs(misfit).max() > 0.5  # mV: there is a misfit to show
+    t_hum, shown = binned(clean + hum, 2)
+    assert np.array_equal(t_true, t_hum)
+    assert np.abs(shown - misfit).max() < 0.01  # 0.3 mV of hum gone, the misfit kept
+    _, left_in = binned(clean + hum, None)  # as the fitter with remove_hum = false
+    assert np.abs(left_in - misfit).max() > 0.05
 
 
 def test_trace_panel_clips_spikes_just_above_the_highest_plateau():
@@ -398,3 +413,19 @@ def test_trace_panel_clips_spikes_just_above_the_highest_plateau():
     top = ax.get_ylim()[1]
     assert max(plateaus) + 7.9 < top < max(plateaus) + 12
     assert top < 1e3 * max(float(s.voltage.max()) for s in rec.sweeps) - 30
+
+
+def test_a_window_outside_the_traces_widens_the_panel_as_axvspan_would():
+    from matplotlib.figure import Figure
+
+    from pipeline.report.figures import _Canvas, _draw_traces, _epoch_map, _sweep_views
+
+    rec, epochs, fit, verdict = fake_cell()
+    first = dataclasses.replace(fit.sweeps[0], baseline_window=(-0.1, 0.0))  # hand-made
+    fit = dataclasses.replace(fit, sweeps=(first, *fit.sweeps[1:]))
+    views = _sweep_views(rec, _epoch_map(epochs), fit, verdict, "viridis")
+    fig = Figure(figsize=(6, 3), dpi=40)
+    _Canvas(fig)
+    ax = fig.add_subplot()
+    _draw_traces(ax, fig, views, fit, 40.0)
+    assert ax.get_xlim()[0] <= -100.0  # ms: the window is shown, not cut off

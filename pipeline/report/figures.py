@@ -129,6 +129,9 @@ class FigureSettings:
     spikes_height_in: float = 3.6  # extra height of the spiking row
     step_cmap: str = "viridis"
     png_compress_level: int = 1  # deflate level (see png_bytes): 1 is fast, ~15 % larger than 9
+    # mains hum removed from the residuals as the fitter removed it (its hum_harmonics; None
+    # when it removed none)
+    hum_harmonics: int | None = 2
 
 
 def _settings(
@@ -186,8 +189,9 @@ def column_bands(
 
     A trace with many samples per pixel column covers, in each column, everything from its
     lowest to its highest sample, plus the line that joins it to the last sample of the column
-    before. Filling that band (widened by the line width when drawn) paints what stroking the
-    min/max zigzag paints, at a fraction of the rasterizing cost.
+    before. Filling that band, flat across each column's width (widened by the line width
+    when drawn), paints about what stroking the min/max zigzag paints (a one-sample extreme
+    stays a full column wide), at a fraction of the rasterizing cost.
 
     Parameters
     ----------
@@ -201,8 +205,9 @@ def column_bands(
     Returns
     -------
     (numpy.ndarray, numpy.ndarray, numpy.ndarray) or None
-        Column centres (s from the sweep start), column minima and maxima; None when the trace
-        has non-finite samples or fewer than three samples per column (draw it as a line).
+        The band's outline: each column's first and last sample time (s from the sweep
+        start), and the column's minimum and maximum at both; None when the trace has
+        non-finite samples or fewer than three samples per column (draw it as a line).
     """
     n = v.shape[0]
     per = -(-n // max(n_columns, 1))  # ceil, as in envelope
@@ -211,16 +216,18 @@ def column_bands(
     m = per * (n // per)
     blocks = v[:m].reshape(-1, per)
     lo, hi = blocks.min(axis=1), blocks.max(axis=1)
-    centres = (np.arange(blocks.shape[0]) * per + 0.5 * (per - 1)) / rate
+    first = np.arange(0, m, per)
+    last = first + per - 1
     if m < n:  # the remainder is one more, narrower column
         tail = v[m:]
         lo, hi = np.append(lo, tail.min()), np.append(hi, tail.max())
-        centres = np.append(centres, (m + 0.5 * (n - m - 1)) / rate)
+        first, last = np.append(first, m), np.append(last, n - 1)
     # the joining segment from the column before: its last sample
     joins = v[per - 1 : m : per]
     np.minimum(lo[1:], joins[: lo.size - 1], out=lo[1:])
     np.maximum(hi[1:], joins[: hi.size - 1], out=hi[1:])
-    return centres, lo, hi
+    edges = np.column_stack([first, last]).ravel() / rate
+    return edges, np.repeat(lo, 2), np.repeat(hi, 2)
 
 
 @dataclass
@@ -440,7 +447,7 @@ def _draw_fits_and_windows(ax, views: list[_SweepView]) -> None:
     ]
     if spans:
         # as axvspan draws them (full height, x in data), one collection instead of a
-        # Rectangle each; the windows lie within the sweeps, so they add nothing to the limits
+        # Rectangle each; like axvspan, they widen the x limits only (y is in axes units)
         ax.add_collection(
             PolyCollection(
                 [[(x0, 0.0), (x0, 1.0), (x1, 1.0), (x1, 0.0)] for x0, x1, _ in spans],
@@ -449,6 +456,8 @@ def _draw_fits_and_windows(ax, views: list[_SweepView]) -> None:
             ),
             autolim=False,
         )  # fmt: skip
+        ends = [x for x0, x1, _ in spans for x in (x0, x1)]
+        ax.update_datalim(np.column_stack([ends, np.zeros(len(ends))]), updatey=False)
     entries = [
         (f"{key} window", "patch", {"facecolor": shades[key], "alpha": 0.45})
         for key, wins in windows.items()
@@ -743,21 +752,37 @@ def residual_bins(n: int, rate: float) -> np.ndarray:
     return np.asarray(edges)
 
 
-def _binned_residual(v: _SweepView, c: ExpFit) -> tuple[np.ndarray, np.ndarray] | None:
-    """Times (ms from the fit start) and means (mV) of data minus fit, hum removed, in
-    widening bins.
+def _as_fitted(v: _SweepView, hum_harmonics: int | None) -> np.ndarray:
+    """The sweep's voltage as the fitter measured it (V): mains hum fitted before the step and
+    in the steady-state window, where the membrane is flat, and removed from the whole sweep
+    (``fitters.sweep._measure`` does the same). Unchanged with ``hum_harmonics`` None or when
+    those windows are unknown."""
+    volts = v.sweep.voltage
+    if not hum_harmonics or v.epoch is None or not v.epoch.usable or v.fit is None:
+        return volts
+    rate, (ss0, ss1), on = v.sweep.rate, v.fit.ss_window, v.epoch.onset_index
+    if not (_finite(ss0) and _finite(ss1)):
+        return volts
+    ss = (round(ss0 * rate), round(ss1 * rate))
+    if not (0 < on <= ss[0] < ss[1] <= volts.size):
+        return volts
+    return remove_hum(volts, rate, [(0, on), ss], hum_harmonics)
 
-    The hum (50 and 60 Hz, two harmonics: the fitter's default) is fitted on the residual
-    itself, flat once the curve is out; left in, it dominates the early bins and aliases in the
-    wide ones. The fitter removes it too, from the trace, before fitting.
+
+def _binned_residual(
+    v: _SweepView, c: ExpFit, hum_harmonics: int | None = None
+) -> tuple[np.ndarray, np.ndarray] | None:
+    """Times (ms from the fit start) and means (mV) of data minus fit in widening bins.
+
+    The data are the trace as the fitter saw it (:func:`_as_fitted`): left in, mains hum
+    dominates the early bins and aliases in the wide ones.
     """
     t = v.sweep.time()
     i0, i1 = np.searchsorted(t, [c.t0, c.t1])
     if i1 - i0 < 2:
         return None
     rate = v.sweep.rate
-    resid = v.sweep.voltage[i0:i1] - c.curve(t[i0:i1])
-    resid = remove_hum(resid, rate, [(0, resid.size)], 2) * 1e3
+    resid = (_as_fitted(v, hum_harmonics)[i0:i1] - c.curve(t[i0:i1])) * 1e3
     edges = residual_bins(resid.size, rate)
     finite = np.isfinite(resid)
     counts = np.add.reduceat(finite, edges[:-1])
@@ -769,20 +794,18 @@ def _binned_residual(v: _SweepView, c: ExpFit) -> tuple[np.ndarray, np.ndarray] 
     return centre_s[keep] * 1e3, sums[keep] / counts[keep]
 
 
-def _draw_residuals(ax, views: list[_SweepView]) -> None:
+def _draw_residuals(ax, views: list[_SweepView], hum_harmonics: int | None) -> None:
     ax.axhline(0, color="0.6", lw=0.8)
     ax.set_xlabel("time from fit start (ms)")
-    ax.set_ylabel("residual (mV)")
-    _title(
-        ax,
-        "charging-curve fit residuals (data − fit, hum removed; means in bins widening from 0.5 ms)",
-    )
+    ax.set_ylabel("data − fit (mV)")
+    hum = "hum removed as for the fit; " if hum_harmonics else ""
+    _title(ax, f"charging-curve fit residuals ({hum}bin means, bins widen from 0.5 ms)")
     rms, curves = [], []
     for v in views:
         c: ExpFit | None = v.fit.charging if v.fit is not None else None
         if c is None or not _drawable(c) or v.sweep is None:
             continue
-        binned = _binned_residual(v, c)
+        binned = _binned_residual(v, c, hum_harmonics)
         if binned is None:
             continue
         curves.append((*binned, v.colour if v.used else EXCLUDED_COLOUR))
@@ -1111,13 +1134,16 @@ def _settle_axes(ax) -> None:
 
 # Artists that stay in a kept figure's axes from cell to cell (tick marks and labels, panel
 # titles), by axes and name: updated in place, hidden when the figure is cleared. Creating,
-# adding and removing them for every cell cost ~0.2-0.3 ms each.
+# adding and removing them for every cell cost ~0.2-0.3 ms each. Weak both ways: the axes
+# holds its artists (and they it), so a figure that is let go is collected with them.
 _KEPT_ARTISTS: weakref.WeakKeyDictionary = weakref.WeakKeyDictionary()
 
 
 def _kept_artist(ax, name: tuple, make: Callable[[], Artist]) -> Any:
     """The artist ``name`` of ``ax``, made and added on first use; visible again."""
-    kept = _KEPT_ARTISTS.setdefault(ax, {})
+    kept = _KEPT_ARTISTS.get(ax)
+    if kept is None:
+        kept = _KEPT_ARTISTS[ax] = weakref.WeakValueDictionary()
     artist = kept.get(name)
     if artist is None:
         artist = kept[name] = make()
@@ -1268,7 +1294,8 @@ class _KeptFigure:
     tick_rules: list
 
     def clear(self) -> None:
-        """Back to the state :func:`_layout` left: no artists, limits, legends or tick rules.
+        """Back to the state :func:`_layout` left: no artists (but the kept ones of
+        :func:`_kept_artist`, hidden), limits, legends or tick rules.
 
         What a cell changes is undone here; :func:`test_figure_reuse` checks pixel for
         pixel that a cell drawn after others equals the same cell in a fresh figure.
@@ -1366,6 +1393,7 @@ def _glyph_api() -> bool:
 
 _GLYPHS_ONE_BY_ONE = _glyph_api()
 _UNROTATED = np.array([[0x10000, 0], [0, 0x10000]])  # FreeType's 16.16 identity matrix
+_SHAPED_CATEGORIES = ("Mn", "Me", "Cf")  # Unicode: non-spacing and enclosing marks, format
 _CLEAR_OF_COVER = 1.0 - np.arange(256) / 255.0  # glyph coverage (0-255) -> light let through
 _MAX_TEXT_BITMAPS = 4096  # per renderer; a text line's bitmap is a few kB
 
@@ -1434,18 +1462,22 @@ class _TextRenderer(RendererAgg):
 
         The width is where the pen ends (the last glyph's place plus its advance); height and
         descent come from the union of the glyphs' control boxes at their places. A new
-        string then costs one FreeType layout instead of two. None when there is nothing to
-        lay out or the private API differs (the caller measures the stock way).
+        string then costs one FreeType layout instead of two. None (the caller measures the
+        stock way) when there is nothing to lay out, when the string has combining marks or
+        format characters or a character drawn as several glyphs (there the shaper's advances
+        differ from the glyphs' own), or when the private API differs.
         ``tests/test_figure_reuse.py`` compares it with the stock measure.
         """
         from matplotlib.backends.backend_agg import get_hinting_flag
 
+        if any(unicodedata.category(ch) in _SHAPED_CATEGORIES for ch in s):
+            return None  # marks and format characters: the shaper's advances differ
         flags = get_hinting_flag()
         line = (s, _prop_key(prop), self.dpi, flags, None, None)
         try:
             items = self._layouts.get(line) or self._layout(line, s, prop, flags, None, None)
-            if not items:
-                return None
+            if not items or len(items) > len(s):
+                return None  # nothing to lay out, or a character made of several glyphs
             size = prop.get_size_in_points()
             low, high = math.inf, -math.inf
             for ft_object, glyph_index, _, dy in items:
@@ -1820,7 +1852,7 @@ def _draw_kept(
     _draw_traces(axes["traces"], fig, views, cell_fit, cfg.dpi)
     _draw_colourbar(axes["colourbar"], views, cfg.step_cmap)
     _draw_iv(axes["iv"], views, cell_fit)
-    _draw_residuals(axes["resid"], views)
+    _draw_residuals(axes["resid"], views, cfg.hum_harmonics)
     _draw_baselines(axes["baseline"], views)
     _draw_text(page.text_box, fig, recording, cell_fit, verdict, views, cell_id, spikes)
     if spikes is not None:
