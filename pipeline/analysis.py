@@ -214,7 +214,7 @@ def _rin_change_pct(hyper: list[dict[str, Any]]) -> float:
 
 
 def _figure(recording, epochs, cell_fit, verdict, spikes, figure_dir, config) -> str:
-    from pipeline.report.figures import cell_figure, safe_name
+    from pipeline.report.figures import FigureSettings, cell_figure, safe_name
 
     name = f"{safe_name(recording.cell_id)}.png"
     Path(figure_dir).mkdir(parents=True, exist_ok=True)
@@ -225,10 +225,11 @@ def _figure(recording, epochs, cell_fit, verdict, spikes, figure_dir, config) ->
         verdict,
         Path(figure_dir) / name,
         spikes=spikes,
-        settings={
-            "hum_harmonics": config.passive.hum_harmonics if config.passive.remove_hum else None
-        },
-        dpi=config.report.figure_dpi,
+        settings=FigureSettings(
+            dpi=float(config.report.figure_dpi),
+            # the residuals show the trace as the fitter saw it
+            hum_harmonics=config.passive.hum_harmonics if config.passive.remove_hum else None,
+        ),
     )
     return name
 

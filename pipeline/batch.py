@@ -250,10 +250,10 @@ def _analyse_all(files, config, outdir, figures, workers, scheduler, progress):
     keys = {job.index: job.key for job in todo}
     bar = _progress(len(todo), progress)
     for i, result in _execute(todo, config, figure_dir, workers, scheduler):
-        if result["error"] is None and keys[i]:
-            cache.store_entry(outdir, keys[i], result)
-        # Fresh results pass through the same JSON form as cached ones: identical tables.
+        # Fresh results take the same JSON form as cached ones: identical tables.
         results[i] = cache.normalise(result)
+        if result["error"] is None and keys[i]:
+            cache.store_entry(outdir, keys[i], results[i])
         _report_one(result, bar)
     if bar is not None:
         bar.close()
@@ -319,44 +319,39 @@ def _execute(todo, config, figure_dir, workers, scheduler) -> Iterator[tuple[int
     yield from _execute_pool(todo, config, figure_dir, n)
 
 
-# What every pool worker imports on its first file (scipy.optimize for the fits, matplotlib
-# for the figures), ~0.7 s and ~0.9 s a process.
+# What every pool worker imports on its first file: scipy.optimize for the fits, matplotlib
+# for the figures (DEVELOPERS.md, "Where the time goes", gives their cost).
 _WORKER_MODULES = ("scipy.optimize",)
 _FIGURE_MODULES = ("pipeline.report.figures",)
 
 
-def _preload_for_fork(figures: bool) -> None:
-    """Import the workers' heavy modules once here, before the pool forks its workers.
+def _preload_for_fork(context, figures: bool) -> None:
+    """Import the workers' heavy modules once here, before a fork ``context`` starts them.
 
     Forked workers inherit them instead of each importing its own copy: less CPU, and the
     main process needs matplotlib for the page's summary plot anyway. With another start
     method (spawn, forkserver) the workers would not inherit them, so nothing is loaded.
     """
     import importlib
-    import multiprocessing
 
-    if multiprocessing.get_start_method(allow_none=False) != "fork":
+    if context.get_start_method() != "fork":
         return
     for name in _WORKER_MODULES + (_FIGURE_MODULES if figures else ()):
         importlib.import_module(name)
-
-
-def _import_report_modules() -> None:
-    """Import what :func:`_assemble` needs (pandas, the page's templating) ahead of time."""
-    from pipeline.report import page, tables  # noqa: F401
 
 
 def _execute_pool(todo, config, figure_dir, n) -> Iterator[tuple[int, dict]]:
     """The process pool. A worker that dies (a crash in a C library, an OOM kill) breaks the
     whole pool; the files that were then unfinished are re-run one per fresh process, so only
     the file that kills its worker is lost."""
+    import multiprocessing
     from concurrent.futures.process import BrokenProcessPool
 
-    _preload_for_fork(figure_dir is not None)
+    context = multiprocessing.get_context()  # the pools' start method, and the preload's
+    _preload_for_fork(context, figure_dir is not None)
     unfinished = []
-    with ProcessPoolExecutor(max_workers=n) as pool:
+    with ProcessPoolExecutor(max_workers=n, mp_context=context) as pool:
         futures = {pool.submit(job.run, config, figure_dir): job for job in todo}
-        _import_report_modules()  # while the workers start: the main process waits anyway
         for future in as_completed(futures):
             job = futures[future]
             try:
@@ -368,7 +363,7 @@ def _execute_pool(todo, config, figure_dir, n) -> Iterator[tuple[int, dict]]:
     if unfinished:
         log.warning("a worker died; re-running %d unfinished file(s) one by one", len(unfinished))
     for job in sorted(unfinished, key=lambda j: j.index):
-        with ProcessPoolExecutor(max_workers=1) as solo:
+        with ProcessPoolExecutor(max_workers=1, mp_context=context) as solo:
             try:
                 yield job.index, solo.submit(job.run, config, figure_dir).result()
             except Exception as exc:

@@ -63,12 +63,13 @@ def _well_formed(entry: dict[str, Any]) -> bool:
 
 
 def store_entry(outdir: str | Path, key: str, result: dict[str, Any]) -> None:
-    """Write one result atomically (NaN stored as null and read back as NaN by the tables)."""
+    """Write one result, as :func:`normalise` returns it, atomically (NaN is null there, and
+    the tables read it back as NaN)."""
     from pipeline.report.atomic import atomic_write_text
 
     folder = Path(outdir) / CACHE_DIR
     folder.mkdir(parents=True, exist_ok=True)
-    text = json.dumps({"key": key, **normalise(result)}, allow_nan=False)
+    text = json.dumps({"key": key, **result}, allow_nan=False)
     atomic_write_text(folder / f"{key}.json", text, sync=False)
 
 

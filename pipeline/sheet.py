@@ -107,7 +107,7 @@ def _parse(text: str, where: str) -> pd.DataFrame:
     import csv
     from io import StringIO
 
-    import pandas as pd  # here, not at import: a batch's main process needs it only at the end
+    import pandas as pd  # here, not at import: only a run with a sheet needs it this early
 
     if not text.strip():
         raise SheetError(f"{where}: not a readable CSV table (the sheet is empty)")

@@ -176,7 +176,6 @@ def test_pool_workers_inherit_heavy_imports_only_when_forked(monkeypatch, method
     from pipeline import batch
 
     loaded = []
-    monkeypatch.setattr(multiprocessing, "get_start_method", lambda allow_none=False: method)
     monkeypatch.setattr(importlib, "import_module", loaded.append)
-    batch._preload_for_fork(figures)
+    batch._preload_for_fork(multiprocessing.get_context(method), figures)
     assert loaded == expect

@@ -311,10 +311,10 @@ def test_link_target_as_the_object_api_reads_it(links, key):
         _assert_same(_outcome(nwb._link_target, group.id, key), want)
 
 
-def test_member_is_opened_as_the_object_api_opens_it(links, scalars):
+def test_member_is_opened_as_the_object_api_opens_it(scalars):
     with h5py.File(scalars, "r") as f:
         for key in ("f8", "a_group", "soft_to_f8", "dangling", "missing"):
-            got = _outcome(nwb._open, f["series"].id, key)
+            got = _outcome(nwb._member, f["series"].id, key)
             want = _outcome(lambda k: f["series"][k], key)
             assert got[0] == want[0]
             if got[0] == "error":

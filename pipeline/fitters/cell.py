@@ -236,13 +236,18 @@ def soma_cylinder_response(t: np.ndarray, tau: float, rho: float) -> np.ndarray:
     2:503-532; Jack, Noble & Tsien 1975, Electric Current Flow in Excitable Cells, ch. 7;
     both from memory); derived here by partial fractions in ``sqrt(s + 1/tau)``.
     """
-    from scipy import special  # here, not at import: scipy costs ~0.3 s a process
-
     tt = np.clip(np.asarray(t, dtype=float) / tau, 0.0, None)
     if rho == 0.0:
         return -np.expm1(-tt)
-    if abs(rho - 1.0) < 1e-4:  # removable singularity: step off it
-        rho = 1.0 + 1e-4
+    return _with_cylinder(tt, rho)
+
+
+def _with_cylinder(tt: np.ndarray, rho: float | np.ndarray) -> np.ndarray:
+    """The soma-with-cylinder response at ``tt = t / tau`` for ratios ``rho > 0``; an array
+    of ratios broadcasts against ``tt`` (one row per ratio)."""
+    from scipy import special  # here, not at import: scipy costs ~0.3 s a process
+
+    rho = np.where(np.abs(rho - 1.0) < 1e-4, 1.0 + 1e-4, rho)  # removable singularity: off it
     root = np.sqrt(tt)
     num = rho * special.erf(root) - 1.0 + np.exp(-tt) * special.erfcx(rho * root)
     return num / (rho * rho - 1.0)
@@ -251,17 +256,11 @@ def soma_cylinder_response(t: np.ndarray, tau: float, rho: float) -> np.ndarray:
 def _cylinder_table(t: np.ndarray, tau: float) -> np.ndarray:
     """:func:`soma_cylinder_response` at ``t`` for every ratio of ``_RHO_GRID``, one row each,
     scaled to 1 at the last sample."""
-    from scipy import special  # here, not at import: scipy costs ~0.3 s a process
-
     # all ratios at once (one row each, the same arithmetic): 62 calls cost ~1.5 ms a cell
     tt = np.clip(np.asarray(t, dtype=float) / tau, 0.0, None)
-    rho = _RHO_GRID[1:, None]
-    rho = np.where(np.abs(rho - 1.0) < 1e-4, 1.0 + 1e-4, rho)  # as soma_cylinder_response
-    root = np.sqrt(tt)
-    num = rho * special.erf(root) - 1.0 + np.exp(-tt) * special.erfcx(rho * root)
     u = np.empty((_RHO_GRID.size, tt.size))
     u[0] = -np.expm1(-tt)  # the lone soma (rho = 0)
-    u[1:] = num / (rho * rho - 1.0)
+    u[1:] = _with_cylinder(tt, _RHO_GRID[1:, None])
     return u / u[:, -1:]
 
 

@@ -352,8 +352,8 @@ def _quiet():
 
 
 def curve_fit(*args, **kwargs):
-    """:func:`scipy.optimize.curve_fit`, imported on first use: scipy.optimize costs ~0.6 s a
-    process, which a batch's main process (it fits nothing) and a cache re-run never need."""
+    """:func:`scipy.optimize.curve_fit`, imported on first use: a cache re-run, which fits
+    nothing, never pays for scipy.optimize (DEVELOPERS.md gives the cost)."""
     from scipy.optimize import curve_fit as fit
 
     return fit(*args, **kwargs)

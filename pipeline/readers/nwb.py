@@ -387,7 +387,7 @@ def _children(f: Any, top: str) -> list[tuple[str, Any]]:
     parent = f[top]
     out = []
     for key in parent:
-        obj = _member(parent.id, key) if isinstance(parent, h5py.Group) else parent[key]
+        obj = _member(parent.id, key)
         namespace = _attr(obj, "namespace")
         if namespace is not None and namespace not in KNOWN_NAMESPACES:
             raise NotUnderstood(f"extension type in {top}/{key}")
@@ -501,9 +501,8 @@ def _column(table: Any, key: str) -> Any:
     if isinstance(column, h5py.h5d.DatasetID):
         space = column.get_space()
         if space.get_simple_extent_type() == h5py.h5s.SIMPLE and space.get_select_npoints():
-            dtype = column.dtype  # the memory type of h5py's read, references included
-            out = np.zeros(space.get_simple_extent_dims(), dtype=dtype)
-            column.read(h5py.h5s.ALL, h5py.h5s.ALL, out, h5py.h5t.py_create(dtype))
+            out = np.zeros(column.shape, dtype=column.dtype)  # h5py's dtype, references too
+            column.read(h5py.h5s.ALL, h5py.h5s.ALL, out)  # memory type made from out's dtype
             return out
     return _wrap(column)[()]
 
@@ -569,16 +568,13 @@ def _link_target(group: Any, key: str) -> str | None:
         if link is not None and not isinstance(link, h5py.SoftLink):
             raise NotUnderstood(f"{_wrap(group).name}/{key} is not a soft link")
         return None if link is None else link.path
-    # As h5py's get(getlink=True), which first asks ``key in group``: true for any soft or
-    # external link (its target is not checked), asked here only for the other kinds.
+    # As h5py's get(getlink=True); the callers have made sure the link exists.
     kind = group.links.get_info(key.encode()).type
     if kind == h5py.h5l.TYPE_SOFT:
         target = group.links.get_val(key.encode())
         with contextlib.suppress(UnicodeDecodeError):  # h5py keeps undecodable paths as bytes
             target = target.decode("utf8")
         return target
-    if kind != h5py.h5l.TYPE_EXTERNAL and key not in h5py.Group(group):
-        return None
     if kind in (h5py.h5l.TYPE_EXTERNAL, h5py.h5l.TYPE_HARD):
         raise NotUnderstood(f"{_wrap(group).name}/{key} is not a soft link")
     raise TypeError("Unknown link type")  # as h5py's object API
@@ -594,16 +590,22 @@ def _attr(obj: Any, key: str) -> Any:
     return value
 
 
+def _get(gid: Any, key: str) -> Any:
+    """``group.get(key)`` for a group's low-level id: the member's id, or None when it is
+    missing or a dangling link (as h5py's get())."""
+    try:
+        return _open(gid, key)
+    except KeyError:
+        return None
+
+
 def _scalar(group: Any, key: str) -> Any:
     """The value of the scalar dataset ``group[key]`` (str for text), or None without one."""
     import h5py
 
     gid = _id(group)
     if isinstance(gid, h5py.h5g.GroupID):
-        try:
-            ds = _open(gid, key)
-        except KeyError:  # as h5py's get(): missing, or a dangling link
-            ds = None
+        ds = _get(gid, key)
     else:
         ds = _wrap(group).get(key)  # a damaged file: whatever h5py makes of it
     if ds is None:
@@ -615,7 +617,7 @@ def _scalar(group: Any, key: str) -> Any:
 _OTHER = object()  # a storage kind the low-level readers leave to h5py's object API
 _PLAIN_TYPES: list[tuple[Any, np.dtype, Any]] = []  # (HDF5 type, h5py's dtype, memory type)
 _MAX_PLAIN_TYPES = 16  # a file has a handful; a hostile one must not grow the list for ever
-_LAST_TYPE: dict[str, int] = {}  # name -> the entry its last value matched: tried first
+_LAST_TYPE: dict[str, tuple] = {}  # name -> the entry its last value matched: tried first
 
 
 def _plain_type(tid: Any, name: str) -> tuple[np.dtype, Any] | None:
@@ -629,13 +631,13 @@ def _plain_type(tid: Any, name: str) -> tuple[np.dtype, Any] | None:
     import h5py
 
     last = _LAST_TYPE.get(name)
-    if last is not None and tid == _PLAIN_TYPES[last][0]:
-        return _PLAIN_TYPES[last][1:]
-    for i, (known, dtype, mtype) in enumerate(_PLAIN_TYPES):
-        if tid == known:
+    if last is not None and tid == last[0]:
+        return last[1:]
+    for entry in _PLAIN_TYPES:
+        if tid == entry[0]:
             if name in _LAST_TYPE or len(_LAST_TYPE) < 64:  # a hostile file's names: not all
-                _LAST_TYPE[name] = i
-            return dtype, mtype
+                _LAST_TYPE[name] = entry
+            return entry[1:]
     dtype = tid.dtype
     info = h5py.check_string_dtype(dtype)
     vlen_text = info is not None and info.length is None
@@ -695,9 +697,9 @@ def _float_samples(data: Any, start: int, stop: int | None) -> np.ndarray:
     """``data[start:stop]`` (an h5py dataset, low-level id or array) as a new float64 array.
 
     The values are numpy's conversion of h5py's array. A low-level id of a 1-D (or one-column)
-    dataset of native 32- or 64-bit floats is read in one call, as stored, then widened by
-    numpy as before. The pynwb engine hands h5py datasets, read as h5py reads them (its
-    reference).
+    dataset of native 32- or 64-bit floats is read in one call, as stored; float32 is then
+    widened by numpy, float64 is returned as read. The pynwb engine hands h5py datasets, read
+    as h5py reads them (its reference).
     """
     import h5py
 
@@ -741,10 +743,7 @@ def _metadata_h5(f: Any) -> dict[str, str]:
     if start is not None:
         with contextlib.suppress(ValueError):
             start = dt.datetime.fromisoformat(start).isoformat()
-    try:
-        subject = _open(f.id, "general/subject")
-    except KeyError:  # as h5py's get()
-        subject = None
+    subject = _get(f.id, "general/subject")
     return _clean_metadata(
         {
             "session_description": _scalar(f, "session_description"),

@@ -31,7 +31,7 @@ from collections.abc import Callable, Iterable, Mapping, Sequence
 from dataclasses import dataclass
 from functools import partial
 from pathlib import Path
-from typing import Any
+from typing import Any, NamedTuple
 
 import matplotlib
 import numpy as np
@@ -48,7 +48,7 @@ from matplotlib.ticker import MaxNLocator, NullLocator, ScalarFormatter
 from matplotlib.transforms import Bbox, IdentityTransform
 
 from pipeline.fitters.results import CellFit, ExpFit, SweepFit
-from pipeline.fitters.sweep import remove_hum
+from pipeline.fitters.sweep import PassiveSettings, remove_hum
 from pipeline.qc import CellVerdict
 from pipeline.recording import Recording, Sweep
 from pipeline.report.atomic import atomic_path
@@ -131,7 +131,7 @@ class FigureSettings:
     png_compress_level: int = 1  # deflate level (see png_bytes): 1 is fast, ~15 % larger than 9
     # mains hum removed from the residuals as the fitter removed it (its hum_harmonics; None
     # when it removed none)
-    hum_harmonics: int | None = 2
+    hum_harmonics: int | None = PassiveSettings.hum_harmonics
 
 
 def _settings(
@@ -318,6 +318,18 @@ def _axis_columns(ax, fig: Figure, dpi: float) -> int:
     return max(int(ax.get_position().width * fig.get_figwidth() * dpi), 50)
 
 
+class _Trace(NamedTuple):
+    """One sweep as the trace panel draws it: a column band (``hi`` set) or a line."""
+
+    t: np.ndarray  # ms from the sweep start
+    lo: np.ndarray  # mV: the line's values, or the band's bottom
+    hi: np.ndarray | None  # mV: the band's top; None for a line
+    colour: Any
+    width: float  # line width, points
+    style: str  # "-" or ":"
+    hyper: bool  # a hyperpolarizing step
+
+
 def _draw_traces(ax, fig, views: list[_SweepView], cell_fit: CellFit | None, dpi: float) -> None:
     drawn = [
         v for v in views
@@ -329,7 +341,7 @@ def _draw_traces(ax, fig, views: list[_SweepView], cell_fit: CellFit | None, dpi
         return
     longest = max(v.sweep.duration for v in drawn)
     columns = _axis_columns(ax, fig, dpi)
-    traces = []  # (t, lo, hi, style, hyper): a band when hi is not None, else a line (t, lo)
+    traces = []  # one collection per layer, not an artist per sweep
     for v in drawn:
         hyper = _finite(v.step_a) and v.step_a < 0
         if v.excluded_because or (not hyper and not v.used):
@@ -339,52 +351,44 @@ def _draw_traces(ax, fig, views: list[_SweepView], cell_fit: CellFit | None, dpi
         n_columns = int(columns * v.sweep.duration / longest)
         band = column_bands(v.sweep.voltage, v.sweep.rate, n_columns) if style[2] == "-" else None
         if band is not None:
-            traces.append((band[0] * 1e3, band[1] * 1e3, band[2] * 1e3, style, hyper))
+            traces.append(_Trace(band[0] * 1e3, band[1] * 1e3, band[2] * 1e3, *style, hyper))
         else:
             t, y = envelope(v.sweep.time() * 1e3, v.sweep.voltage * 1e3, n_columns)
-            traces.append((t, y, None, style, hyper))
+            traces.append(_Trace(t, y, None, *style, hyper))
     _draw_fits_and_windows(ax, views)
-    spans = [
-        (np.nanmin(lo), np.nanmax(lo if hi is None else hi), hyper)
-        for _, lo, hi, _, hyper in traces
-    ]
+    tops = [np.nanmax(tr.lo if tr.hi is None else tr.hi) for tr in traces]
+    spans = [(np.nanmin(tr.lo), top, tr.hyper) for tr, top in zip(traces, tops, strict=True)]
     cap = _trace_limits(ax, spans, views)
     y0, y1 = ax.get_ylim()  # set by _trace_limits: the bands' line width in mV
-    mv_per_px = (y1 - y0) / max(ax.bbox.height, 1.0)
+    mv_per_point = (y1 - y0) / max(ax.bbox.height, 1.0) * dpi / 72
     # hyperpolarizing sweeps on top; dotted ones apart, as their dots need butt caps
     for layer, dotted in ((False, False), (True, True), (True, False)):
-        sel = [
-            (tr, span[1]) for tr, span in zip(traces, spans, strict=True)
-            if tr[4] == layer and (tr[3][2] != "-") == dotted
-        ]  # fmt: skip
-        if not sel:
-            continue
-        zorder = 2 if layer else 1
         # spiking sweeps above the clip are faded: they are shown in the spiking panels
-        drawn = [
-            (tr, to_rgba(tr[3][0], 0.35 if cap is not None and not layer and top > cap else 1))
-            for tr, top in sel
+        sel = [
+            (tr, to_rgba(tr.colour, 0.35 if cap is not None and not layer and top > cap else 1))
+            for tr, top in zip(traces, tops, strict=True)
+            if tr.hyper == layer and (tr.style != "-") == dotted
         ]
-        bands = [(tr, c) for tr, c in drawn if tr[2] is not None]
-        lines = [(tr, c) for tr, c in drawn if tr[2] is None]
+        bands = [(tr, c) for tr, c in sel if tr.hi is not None]
+        lines = [(tr, c) for tr, c in sel if tr.hi is None]
+        zorder = 2 if layer else 1
         if bands:
-            _bands(ax, bands, mv_per_px * dpi / 72, zorder)
+            _bands(ax, bands, mv_per_point, zorder)
         if lines:
-            _lines(ax, [(tr[0], tr[1]) for tr, _ in lines], [c for _, c in lines],
-                   [tr[3][1] for tr, _ in lines], [tr[3][2] for tr, _ in lines], zorder=zorder,
+            _lines(ax, [(tr.t, tr.lo) for tr, _ in lines], [c for _, c in lines],
+                   [tr.width for tr, _ in lines], [tr.style for tr, _ in lines], zorder=zorder,
                    capstyle="butt" if dotted else "projecting")  # fmt: skip
     _label_traces(ax, f"; clipped above {cap:.0f} mV" if cap is not None else "")
 
 
-def _bands(ax, bands: list, mv_per_point: float, zorder: float) -> None:
+def _bands(ax, bands: list[tuple[_Trace, Any]], mv_per_point: float, zorder: float) -> None:
     """Column bands filled as one PolyCollection, each widened by half its line width on
     either side, as a stroke of that width would reach."""
     polygons = []
-    for (t, lo, hi, (_, width, _), _), _ in bands:
-        half = 0.5 * width * mv_per_point
-        polygons.append(
-            np.concatenate([np.column_stack([t, hi + half]), np.column_stack([t, lo - half])[::-1]])
-        )
+    for tr, _ in bands:
+        half = 0.5 * tr.width * mv_per_point
+        outline = [np.column_stack([tr.t, tr.hi + half]), np.column_stack([tr.t, tr.lo - half])]
+        polygons.append(np.concatenate([outline[0], outline[1][::-1]]))
     ax.add_collection(
         PolyCollection(
             polygons, facecolors=[c for _, c in bands], edgecolors="none", linewidths=0,
@@ -440,28 +444,26 @@ def _draw_fits_and_windows(ax, views: list[_SweepView]) -> None:
         n = len(curves)
         _lines(ax, curves, [FIT_COLOUR] * n, [1.0] * n, ["--"] * n, zorder=3, capstyle="butt")
     shades = {"charging fit": "#9ecae1", "steady state": "#fdd0a2", "baseline": "0.88"}
-    spans = [
-        (min(w[0] for w in wins) * 1e3, max(w[1] for w in wins) * 1e3, shades[key])
+    spans = {  # each kind's windows as one span, ms
+        key: (min(w[0] for w in wins) * 1e3, max(w[1] for w in wins) * 1e3)
         for key, wins in windows.items()
         if wins
-    ]
+    }
     if spans:
         # as axvspan draws them (full height, x in data), one collection instead of a
         # Rectangle each; like axvspan, they widen the x limits only (y is in axes units)
         ax.add_collection(
             PolyCollection(
-                [[(x0, 0.0), (x0, 1.0), (x1, 1.0), (x1, 0.0)] for x0, x1, _ in spans],
-                facecolors=[to_rgba(c, 0.45) for _, _, c in spans], linewidths=0, zorder=0,
-                transform=ax.get_xaxis_transform(which="grid"),
+                [[(x0, 0.0), (x0, 1.0), (x1, 1.0), (x1, 0.0)] for x0, x1 in spans.values()],
+                facecolors=[to_rgba(shades[key], 0.45) for key in spans], linewidths=0,
+                zorder=0, transform=ax.get_xaxis_transform(which="grid"),
             ),
             autolim=False,
         )  # fmt: skip
-        ends = [x for x0, x1, _ in spans for x in (x0, x1)]
+        ends = [x for span in spans.values() for x in span]
         ax.update_datalim(np.column_stack([ends, np.zeros(len(ends))]), updatey=False)
     entries = [
-        (f"{key} window", "patch", {"facecolor": shades[key], "alpha": 0.45})
-        for key, wins in windows.items()
-        if wins
+        (f"{key} window", "patch", {"facecolor": shades[key], "alpha": 0.45}) for key in spans
     ]
     if windows["charging fit"]:
         entries.append(
@@ -770,7 +772,7 @@ def _as_fitted(v: _SweepView, hum_harmonics: int | None) -> np.ndarray:
 
 
 def _binned_residual(
-    v: _SweepView, c: ExpFit, hum_harmonics: int | None = None
+    v: _SweepView, c: ExpFit, hum_harmonics: int | None
 ) -> tuple[np.ndarray, np.ndarray] | None:
     """Times (ms from the fit start) and means (mV) of data minus fit in widening bins.
 
@@ -1186,20 +1188,16 @@ class _TickLabels(Artist):
             if not text:
                 continue
             w, h, d = renderer.get_text_width_height_descent(text, self._prop, False)
-            a, d = h - d, d
+            a = h - d  # ascent of the ink, at least the font's
             if ascent is not None:
-                a, d = max(a, ascent) + 0 / 2, max(d, descent) + 0 / 2
-            baseline = a - 0.0
-            thisy = 0.0 - a
-            ymin, ymax = thisy - d, 0
-            height = ymax - ymin
-            offsetx = 0 if ha == "left" else w if ha == "right" else (0 + w) / 2
+                a, d = max(a, ascent), max(d, descent)
+            ymin = -a - d  # the line's box: top at 0, baseline at -a
+            offsetx = 0 if ha == "left" else w if ha == "right" else w / 2
             offsety = (
-                ymin if va == "bottom" else ymax if va == "top" else
-                (ymin + ymax) / 2 if va == "center" else ymin + d if va == "baseline" else
-                ymin + height - baseline / 2
+                ymin if va == "bottom" else 0 if va == "top" else ymin / 2 if va == "center"
+                else ymin + d if va == "baseline" else -a / 2  # "center_baseline"
             )  # fmt: skip
-            self._items.append((text, (0.0 - offsetx) + posx, (thisy - offsety) + posy))
+            self._items.append((text, posx - offsetx, (-a - offsety) + posy))
 
     def draw(self, renderer) -> None:
         if not self.get_visible() or not self._items:
@@ -1475,7 +1473,7 @@ class _TextRenderer(RendererAgg):
         flags = get_hinting_flag()
         line = (s, _prop_key(prop), self.dpi, flags, None, None)
         try:
-            items = self._layouts.get(line) or self._layout(line, s, prop, flags, None, None)
+            items = self._layouts.get(line) or self._glyph_layout(line, s, prop, flags, None, None)
             if not items or len(items) > len(s):
                 return None  # nothing to lay out, or a character made of several glyphs
             size = prop.get_size_in_points()
@@ -1538,7 +1536,7 @@ class _TextRenderer(RendererAgg):
             try:
                 items = self._layouts.get(line)
                 if items is None:
-                    items = self._layout(line, s, prop, flags, features, language)
+                    items = self._glyph_layout(line, s, prop, flags, features, language)
                 entry = self._line_bitmap(items, prop, x, y, angle, antialiased, flags,
                                           tx >> 6, ty >> 6)  # fmt: skip
             except (AttributeError, TypeError, ValueError):
@@ -1555,7 +1553,7 @@ class _TextRenderer(RendererAgg):
                 image, (tx >> 6) + left, int(self.height) - top + image.shape[0], 0, gc
             )
 
-    def _layout(self, line: tuple, s, prop, flags, features, language) -> list:
+    def _glyph_layout(self, line: tuple, s, prop, flags, features, language) -> list:
         """The glyphs of a line and their offsets, as ``RendererAgg.draw_text`` lays them out."""
         font = self._prepare_font(prop)
         items = [
@@ -1710,7 +1708,7 @@ def _deflater() -> Any:
 _DEFLATE = _deflater()
 
 
-def png_bytes(rgb: np.ndarray, dpi: float = 100.0, level: int = 1) -> bytes:
+def png_bytes(image: np.ndarray, dpi: float = 100.0, level: int = 1) -> bytes:
     """Encode an RGB or RGBA image as a PNG, losslessly, every row with the "Up" filter.
 
     Pillow tries all five PNG filters on every row, which is most of its encoding time; one
@@ -1719,7 +1717,7 @@ def png_bytes(rgb: np.ndarray, dpi: float = 100.0, level: int = 1) -> bytes:
 
     Parameters
     ----------
-    rgb : numpy.ndarray
+    image : numpy.ndarray
         (height, width, 3) RGB or (height, width, 4) RGBA uint8 pixels (straight alpha, as
         Agg's buffer holds them), top row first.
     dpi : float
@@ -1732,15 +1730,15 @@ def png_bytes(rgb: np.ndarray, dpi: float = 100.0, level: int = 1) -> bytes:
     bytes
         The PNG file.
     """
-    rgb = np.ascontiguousarray(rgb, dtype=np.uint8)  # the filter is 3x slower on a strided view
-    h, w, channels = rgb.shape
+    image = np.ascontiguousarray(image, dtype=np.uint8)  # the filter is 3x slower if strided
+    h, w, channels = image.shape
     if channels not in (3, 4):
         raise ValueError(f"png_bytes needs RGB or RGBA pixels, not {channels} channels")
     rows = np.empty((h, 1 + channels * w), np.uint8)
     rows[:, 0] = 2  # filter type "Up": each byte minus the byte above it
     pixels = rows[:, 1:].reshape(h, w, channels)
-    pixels[0] = rgb[0]
-    np.subtract(rgb[1:], rgb[:-1], out=pixels[1:], dtype=np.uint8)
+    pixels[0] = image[0]
+    np.subtract(image[1:], image[:-1], out=pixels[1:], dtype=np.uint8)
     per_metre = round(dpi / 0.0254)
     if _DEFLATE is not zlib:
         level = min(max(level, 0), 3)
