@@ -423,6 +423,19 @@ def build_dangling_reference(tmp: Path, g: Goods) -> Path:
     return path
 
 
+def build_row_at_a_dataset(tmp: Path, g: Goods) -> Path:
+    path = _nwb_of(g, tmp / "bad_row_at_dataset.nwb")
+    with h5py.File(path, "r+") as f:  # a table row whose response is a dataset typed as a series
+        fake = f.create_dataset("acquisition/not_a_series", data=np.zeros(200_000))
+        fake.attrs["neurodata_type"] = "CurrentClampSeries"
+        fake.attrs["namespace"] = "core"
+        rows = f["general/intracellular_ephys/intracellular_recordings/responses/response"]
+        row = rows[1]
+        row["timeseries"] = fake.ref
+        rows[1] = row
+    return path
+
+
 def build_decimal_commas(tmp: Path, g: Goods) -> Path:
     path = write_csv(g.template, tmp / "bad_decimal_comma.csv", decimals=3)
     path.write_text(path.read_text().replace(",", ";").replace(".", ","))  # a spreadsheet export
@@ -531,6 +544,12 @@ READ_FAILURES = [
         "dangling-reference-nwb",
         build_dangling_reference,
         r"cannot be read as NWB \(KeyError: 'Unable to open object by token.*'\)",
+    ),
+    (
+        "row-at-a-dataset-nwb",
+        build_row_at_a_dataset,
+        r"cannot be read as NWB \(row 1 of the intracellular recordings table: its response "
+        r"points at /acquisition/not_a_series, which is not a series group\)",
     ),
     (
         "decimal-commas-csv",
@@ -1223,6 +1242,20 @@ def test_nwb_the_direct_reader_finds_corrupt_is_not_handed_to_pynwb(goods, tmp_p
     with pytest.raises(CorruptFileError, match=r"bad_dangling\.nwb: cannot be read as NWB"):
         open_recordings(bad)
     assert calls == []
+
+
+def test_a_table_row_at_a_dataset_is_refused_without_reading_it(goods, tmp_path, monkeypatch):
+    # Treated as a series, the dataset was first read element by element (seconds for a large
+    # one) only to fail on its missing members.
+    bad = build_row_at_a_dataset(tmp_path, goods)
+
+    def no_reading(self, *args):
+        raise AssertionError("the dataset was read")
+
+    monkeypatch.setattr(h5py.Dataset, "__iter__", no_reading)
+    monkeypatch.setattr(h5py.Dataset, "__getitem__", no_reading)
+    with pytest.raises(CorruptFileError, match=r"its response points at /acquisition/not_a_s"):
+        open_recordings(bad)
 
 
 def _dies_on_crash_files(path, *args, **kwargs):

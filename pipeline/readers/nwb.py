@@ -405,22 +405,40 @@ def _rows_h5(path: str, f: Any, known: dict[Any, tuple[str, str | None]]) -> lis
     responses = _column(table, "responses/response")
     stimuli = _column(table, "stimuli/stimulus")
     rows = []
-    for resp, stim in zip(responses, stimuli, strict=True):
+    for index, (resp, stim) in enumerate(zip(responses, stimuli, strict=True)):
         if resp["idx_start"] < 0 or not resp["timeseries"]:
             continue
         group = _dereference(f, resp["timeseries"])
         kind = known[group][1] if group in known else _attr(group, "neurodata_type")
         if kind not in CLAMP_TYPES:
             continue  # voltage-clamp rows
-        r = _load_h5(path, group, "V", resp, known)
+        r = _load_h5(path, _series_group(path, group, index, "response"), "V", resp, known)
         s = None
         if stim["idx_start"] >= 0 and stim["timeseries"]:
-            stim_group = _dereference(f, stim["timeseries"])
+            stim_group = _series_group(path, _dereference(f, stim["timeseries"]), index, "stimulus")
             s = _load_h5(
                 path, stim_group, "A", stim, known, row_stimulus=True, protocol=not r.protocol
             )
         rows.append((r, s))
     return rows or None
+
+
+def _series_group(path: str, oid: Any, row: int, column: str) -> Any:
+    """``oid`` if it is a group; a table row pointing at a dataset is an error of the file.
+
+    Said at once: treated as a group, a dataset would be read element by element first (a
+    large one stalls the worker for seconds) only to fail on a member it cannot have.
+    """
+    import h5py
+
+    if isinstance(oid, h5py.h5g.GroupID):
+        return oid
+    name = h5py.h5i.get_name(oid).decode("utf-8", "replace")
+    raise CorruptFileError(
+        path,
+        f"cannot be read as NWB (row {row} of the intracellular recordings table: its "
+        f"{column} points at {name}, which is not a series group)",
+    )
 
 
 def _load_h5(
@@ -439,15 +457,10 @@ def _load_h5(
     when the response has none (``protocol``): its electrode, sweep number, start and settings,
     which nothing uses (the row pairs it), are not read.
     """
-    import h5py
-
     name, kind = (known or {}).get(group) or (None, None)
     if name is None:  # a table row pointing outside acquisition and stimulus
         name, kind = _wrap(group).name.rsplit("/", 1)[-1], _attr(group, "neurodata_type")
-    if isinstance(group, h5py.h5g.GroupID):
-        has = _link_exists(group)
-    else:  # a row pointing at a dataset (a damaged file): what the object API makes of it
-        has = set(_wrap(group)).__contains__
+    has = _link_exists(group)
     data = _member(group, "data")
     start, stop = 0, None
     if ref is not None:
@@ -560,14 +573,10 @@ def _id(obj: Any) -> Any:
 
 
 def _link_target(group: Any, key: str) -> str | None:
-    """Path the link ``key`` of ``group`` points to (NWB links electrodes by soft links)."""
+    """Path the link ``key`` of the group ``group`` (a low-level id) points to (NWB links
+    electrodes by soft links)."""
     import h5py
 
-    if not isinstance(group, h5py.h5g.GroupID):
-        link = _wrap(group).get(key, getlink=True)  # a damaged file: the object API's way
-        if link is not None and not isinstance(link, h5py.SoftLink):
-            raise NotUnderstood(f"{_wrap(group).name}/{key} is not a soft link")
-        return None if link is None else link.path
     # As h5py's get(getlink=True); the callers have made sure the link exists.
     kind = group.links.get_info(key.encode()).type
     if kind == h5py.h5l.TYPE_SOFT:
