@@ -325,19 +325,25 @@ _WORKER_MODULES = ("scipy.optimize",)
 _FIGURE_MODULES = ("pipeline.report.figures",)
 
 
-def _preload_for_fork(context, figures: bool) -> None:
-    """Import the workers' heavy modules once here, before a fork ``context`` starts them.
+def _preload(context, figures: bool) -> None:
+    """Have the workers' heavy modules imported once, not once per worker.
 
-    Forked workers inherit them instead of each importing its own copy: less CPU, and the
-    main process needs matplotlib for the page's summary plot anyway. With another start
-    method (spawn, forkserver) the workers would not inherit them, so nothing is loaded.
+    With fork (Linux before Python 3.14) they are imported here and the workers inherit them;
+    the main process needs matplotlib for the page's summary plot anyway. With forkserver
+    (Linux from Python 3.14) the server imports them when it starts and every worker forked
+    from it inherits them. Spawned workers (macOS, Windows) start afresh: nothing to do.
     """
     import importlib
 
-    if context.get_start_method() != "fork":
-        return
-    for name in _WORKER_MODULES + (_FIGURE_MODULES if figures else ()):
-        importlib.import_module(name)
+    names = _WORKER_MODULES + (_FIGURE_MODULES if figures else ())
+    method = context.get_start_method()
+    if method == "forkserver":
+        # "__main__" is the standard library's default preload; a server already running
+        # (an earlier run in this process) keeps what it has
+        context.set_forkserver_preload(["__main__", *names])
+    elif method == "fork":
+        for name in names:
+            importlib.import_module(name)
 
 
 def _execute_pool(todo, config, figure_dir, n) -> Iterator[tuple[int, dict]]:
@@ -348,7 +354,7 @@ def _execute_pool(todo, config, figure_dir, n) -> Iterator[tuple[int, dict]]:
     from concurrent.futures.process import BrokenProcessPool
 
     context = multiprocessing.get_context()  # the pools' start method, and the preload's
-    _preload_for_fork(context, figure_dir is not None)
+    _preload(context, figure_dir is not None)
     unfinished = []
     with ProcessPoolExecutor(max_workers=n, mp_context=context) as pool:
         futures = {pool.submit(job.run, config, figure_dir): job for job in todo}

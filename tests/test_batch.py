@@ -165,11 +165,11 @@ def test_rule_on_a_misspelt_column_is_reported_with_a_suggestion(day, tmp_path):
     [
         ("fork", True, ["scipy.optimize", "pipeline.report.figures"]),
         ("fork", False, ["scipy.optimize"]),
-        ("spawn", True, []),  # spawned workers would not inherit them
-        ("forkserver", True, []),
+        ("spawn", True, []),  # spawned workers start afresh: nothing to inherit
+        ("forkserver", True, []),  # the server imports them, not this process
     ],
 )
-def test_pool_workers_inherit_heavy_imports_only_when_forked(monkeypatch, method, figures, expect):
+def test_pool_workers_inherit_heavy_imports_when_forked(monkeypatch, method, figures, expect):
     import importlib
     import multiprocessing
 
@@ -177,5 +177,43 @@ def test_pool_workers_inherit_heavy_imports_only_when_forked(monkeypatch, method
 
     loaded = []
     monkeypatch.setattr(importlib, "import_module", loaded.append)
-    batch._preload_for_fork(multiprocessing.get_context(method), figures)
+    batch._preload(multiprocessing.get_context(method), figures)
     assert loaded == expect
+
+
+@pytest.mark.parametrize("figures", [True, False])
+def test_forkserver_preloads_the_heavy_imports_in_its_server(monkeypatch, figures):
+    import multiprocessing
+
+    from pipeline import batch
+
+    context = multiprocessing.get_context("forkserver")
+    asked = []
+    monkeypatch.setattr(context, "set_forkserver_preload", asked.append)
+    batch._preload(context, figures)
+    expect = ["__main__", "scipy.optimize"] + (["pipeline.report.figures"] if figures else [])
+    assert asked == [expect]
+
+
+@pytest.mark.parametrize("method", ["spawn", "forkserver"])
+def test_pool_gives_the_same_tables_whatever_its_start_method(day, tmp_path, method):
+    # fork is Linux's default before Python 3.14, forkserver from 3.14, spawn on macOS and
+    # Windows: workers that import everything afresh must give the same results
+    import subprocess
+    import sys
+
+    run_batch([day], out=tmp_path / "fork", workers=1, figures=False, progress=False)
+    code = (
+        "import multiprocessing\n"
+        "from pipeline.batch import run_batch\n"
+        "if __name__ == '__main__':\n"
+        f"    multiprocessing.set_start_method({method!r})\n"
+        f"    run_batch([{str(day)!r}], out={str(tmp_path / method)!r}, workers=2,"
+        " progress=False)\n"
+    )
+    script = tmp_path / "run_with_start_method.py"
+    script.write_text(code)
+    subprocess.run([sys.executable, str(script)], check=True, capture_output=True, text=True)
+    for name in ("cells.csv", "sweeps.csv", "spikes.csv"):
+        assert (tmp_path / method / name).read_bytes() == (tmp_path / "fork" / name).read_bytes()
+    assert len(list((tmp_path / method / "figures").glob("*.png"))) == 3
