@@ -372,6 +372,27 @@ def test_nwb_table_row_takes_the_stimulus_protocol_when_the_response_has_none(tm
     assert [s.protocol for s in rec.sweeps] == ["step family A", "hyperpolarizing steps"]
 
 
+def test_nwb_table_row_stimulus_carries_no_made_up_fields(tmp_path, monkeypatch):
+    # the h5py engine reads a row's stimulus for its samples, rate and protocol only; the
+    # fields it does not read must not look read (a start time of 0 s, say)
+    import math
+
+    rows = []
+    finish = nwb_reader._finish
+    monkeypatch.setattr(
+        nwb_reader, "_finish", lambda path, table, *a: rows.extend(table) or finish(path, table, *a)
+    )
+    path = _standard_file(tmp_path / "rows.nwb")
+    nwb_reader.read(path, engine="h5py")
+    assert len(rows) == 3
+    for response, stimulus in rows:
+        assert response.electrode == "e1" and response.sweep_number is not None
+        assert math.isfinite(response.start_time)
+        assert stimulus.name == "stim_" + response.name[5:] and stimulus.rate == RATE
+        assert stimulus.electrode == "" and stimulus.sweep_number is None
+        assert math.isnan(stimulus.start_time) and stimulus.settings == {}
+
+
 def test_write_nwb_round_trips(tmp_path):
     recs = [_recording("a", 3), _recording("b", 2, with_current=False)]
     path = write_nwb(recs, tmp_path / "w.nwb", subject_id="animal-9", session_start_time=START)

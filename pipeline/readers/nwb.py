@@ -51,7 +51,13 @@ MAX_SERIES_SAMPLES = 100_000_000  # one sweep: 1 h at 25 kHz; 0.8 GB as float64
 
 @dataclass
 class SeriesData:
-    """One patch-clamp series loaded into memory, in SI (V or A), independent of the file."""
+    """One patch-clamp series loaded into memory, in SI (V or A), independent of the file.
+
+    The stimulus of a recordings-table row, read by the h5py engine, carries only its name,
+    kind, values, rate and protocol (the row pairs it, so nothing reads the rest): its
+    electrode is "", its sweep number None, its settings empty and its start time NaN (unless
+    the series stores timestamps).
+    """
 
     name: str
     kind: str  # neurodata type: CurrentClampSeries, IZeroClampSeries, CurrentClampStimulusSeries
@@ -478,6 +484,9 @@ def _load_h5(
     if kind != "IZeroClampSeries" and protocol:
         description = _attr(group, "stimulus_description")
     electrode = _link_target(group, "electrode") if whole and has("electrode") else None
+    start_s = math.nan  # a row's stimulus: its start is not read (NaN, not a made-up 0)
+    if whole:
+        start_s = float(_value(starting)) if starting is not None else None
     return _series_data(
         path,
         name=name,
@@ -490,7 +499,7 @@ def _load_h5(
         data=data,
         timestamps=_member(group, "timestamps") if has("timestamps") else None,
         rate=_attr(starting, "rate") if starting is not None else None,
-        starting_time=float(_value(starting)) if starting is not None and whole else None,
+        starting_time=start_s,
         start=start,
         stop=stop,
         sweep_number=_attr(group, "sweep_number") if whole else None,
