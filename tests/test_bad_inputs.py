@@ -423,17 +423,25 @@ def build_dangling_reference(tmp: Path, g: Goods) -> Path:
     return path
 
 
-def build_row_at_a_dataset(tmp: Path, g: Goods) -> Path:
-    path = _nwb_of(g, tmp / "bad_row_at_dataset.nwb")
-    with h5py.File(path, "r+") as f:  # a table row whose response is a dataset typed as a series
+def _row_at_a_dataset(tmp: Path, g: Goods, column: str, typed: bool) -> Path:
+    """A file whose recordings-table row 1 points its ``column`` ("response" or "stimulus")
+    at a large dataset, typed as a series or not."""
+    path = _nwb_of(g, tmp / f"bad_row_{column}_at_dataset.nwb")
+    with h5py.File(path, "r+") as f:
         fake = f.create_dataset("acquisition/not_a_series", data=np.zeros(200_000))
-        fake.attrs["neurodata_type"] = "CurrentClampSeries"
-        fake.attrs["namespace"] = "core"
-        rows = f["general/intracellular_ephys/intracellular_recordings/responses/response"]
+        if typed:
+            fake.attrs["neurodata_type"] = "CurrentClampSeries"
+            fake.attrs["namespace"] = "core"
+        table = f["general/intracellular_ephys/intracellular_recordings"]
+        rows = table[{"response": "responses/response", "stimulus": "stimuli/stimulus"}[column]]
         row = rows[1]
         row["timeseries"] = fake.ref
         rows[1] = row
     return path
+
+
+def build_row_at_a_dataset(tmp: Path, g: Goods) -> Path:
+    return _row_at_a_dataset(tmp, g, "response", typed=True)
 
 
 def build_decimal_commas(tmp: Path, g: Goods) -> Path:
@@ -548,8 +556,8 @@ READ_FAILURES = [
     (
         "row-at-a-dataset-nwb",
         build_row_at_a_dataset,
-        r"cannot be read as NWB \(row 1 of the intracellular recordings table: its response "
-        r"points at /acquisition/not_a_series, which is not a series group\)",
+        r"cannot be read as NWB \(row 1 of the intracellular recordings table, counting from 0: "
+        r"its response points at /acquisition/not_a_series, which is not a series group\)",
     ),
     (
         "decimal-commas-csv",
@@ -1244,18 +1252,20 @@ def test_nwb_the_direct_reader_finds_corrupt_is_not_handed_to_pynwb(goods, tmp_p
     assert calls == []
 
 
-def test_a_table_row_at_a_dataset_is_refused_without_reading_it(goods, tmp_path, monkeypatch):
+@pytest.mark.parametrize(
+    ("column", "typed"), [("response", True), ("response", False), ("stimulus", False)]
+)
+def test_a_table_row_at_a_dataset_is_refused_without_reading_it(
+    goods, tmp_path, monkeypatch, column, typed
+):
     # Treated as a series, the dataset was first read element by element (seconds for a large
-    # one) only to fail on its missing members.
-    bad = build_row_at_a_dataset(tmp_path, goods)
-
-    def no_reading(self, *args):
-        raise AssertionError("the dataset was read")
-
-    monkeypatch.setattr(h5py.Dataset, "__iter__", no_reading)
-    monkeypatch.setattr(h5py.Dataset, "__getitem__", no_reading)
-    with pytest.raises(CorruptFileError, match=r"its response points at /acquisition/not_a_s"):
+    # one) only to fail on its missing members; an untyped one was skipped as voltage clamp.
+    bad = _row_at_a_dataset(tmp_path, goods, column, typed)
+    reads = []
+    monkeypatch.setattr(h5py.Dataset, "__iter__", lambda self: reads.append(self.name) or iter(()))
+    with pytest.raises(CorruptFileError, match=rf"its {column} points at /acquisition/not_a_s"):
         open_recordings(bad)
+    assert reads == []
 
 
 def _dies_on_crash_files(path, *args, **kwargs):

@@ -414,11 +414,11 @@ def _rows_h5(path: str, f: Any, known: dict[Any, tuple[str, str | None]]) -> lis
     for index, (resp, stim) in enumerate(zip(responses, stimuli, strict=True)):
         if resp["idx_start"] < 0 or not resp["timeseries"]:
             continue
-        group = _dereference(f, resp["timeseries"])
+        group = _series_group(path, _dereference(f, resp["timeseries"]), index, "response")
         kind = known[group][1] if group in known else _attr(group, "neurodata_type")
         if kind not in CLAMP_TYPES:
             continue  # voltage-clamp rows
-        r = _load_h5(path, _series_group(path, group, index, "response"), "V", resp, known)
+        r = _load_h5(path, group, "V", resp, known)
         s = None
         if stim["idx_start"] >= 0 and stim["timeseries"]:
             stim_group = _series_group(path, _dereference(f, stim["timeseries"]), index, "stimulus")
@@ -430,20 +430,21 @@ def _rows_h5(path: str, f: Any, known: dict[Any, tuple[str, str | None]]) -> lis
 
 
 def _series_group(path: str, oid: Any, row: int, column: str) -> Any:
-    """``oid`` if it is a group; a table row pointing at a dataset is an error of the file.
+    """``oid`` if it is a group; a table row pointing at anything else is an error of the file.
 
-    Said at once: treated as a group, a dataset would be read element by element first (a
-    large one stalls the worker for seconds) only to fail on a member it cannot have.
+    Said at once, whatever the object's type: treated as a series, a dataset would be read
+    element by element first (a large one stalls the worker for seconds) only to fail on a
+    member it cannot have. ``row`` counts from 0.
     """
     import h5py
 
     if isinstance(oid, h5py.h5g.GroupID):
         return oid
-    name = h5py.h5i.get_name(oid).decode("utf-8", "replace")
+    name = (h5py.h5i.get_name(oid) or b"an unnamed object").decode("utf-8", "replace")
     raise CorruptFileError(
         path,
-        f"cannot be read as NWB (row {row} of the intracellular recordings table: its "
-        f"{column} points at {name}, which is not a series group)",
+        f"cannot be read as NWB (row {row} of the intracellular recordings table, counting "
+        f"from 0: its {column} points at {name}, which is not a series group)",
     )
 
 
