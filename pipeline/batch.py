@@ -332,6 +332,7 @@ def _preload(context, figures: bool) -> None:
     the main process needs matplotlib for the page's summary plot anyway. With forkserver
     (Linux from Python 3.14) the server imports them when it starts and every worker forked
     from it inherits them. Spawned workers (macOS, Windows) start afresh: nothing to do.
+    A forkserver preload list set by a program calling :func:`run_batch` is replaced.
     """
     import importlib
 

@@ -166,7 +166,6 @@ def test_rule_on_a_misspelt_column_is_reported_with_a_suggestion(day, tmp_path):
         ("fork", True, ["scipy.optimize", "pipeline.report.figures"]),
         ("fork", False, ["scipy.optimize"]),
         ("spawn", True, []),  # spawned workers start afresh: nothing to inherit
-        ("forkserver", True, []),  # the server imports them, not this process
     ],
 )
 def test_pool_workers_inherit_heavy_imports_when_forked(monkeypatch, method, figures, expect):
@@ -198,11 +197,12 @@ def test_forkserver_preloads_the_heavy_imports_in_its_server(monkeypatch, figure
 @pytest.mark.parametrize("method", ["spawn", "forkserver"])
 def test_pool_gives_the_same_tables_whatever_its_start_method(day, tmp_path, method):
     # fork is Linux's default before Python 3.14, forkserver from 3.14, spawn on macOS and
-    # Windows: workers that import everything afresh must give the same results
+    # Windows: workers that import everything afresh must give the same results as the
+    # in-process run (which test_pool_and_dask_give_identical_tables compares with fork)
     import subprocess
     import sys
 
-    run_batch([day], out=tmp_path / "fork", workers=1, figures=False, progress=False)
+    run_batch([day], out=tmp_path / "in_process", workers=1, figures=False, progress=False)
     code = (
         "import multiprocessing\n"
         "from pipeline.batch import run_batch\n"
@@ -213,7 +213,36 @@ def test_pool_gives_the_same_tables_whatever_its_start_method(day, tmp_path, met
     )
     script = tmp_path / "run_with_start_method.py"
     script.write_text(code)
-    subprocess.run([sys.executable, str(script)], check=True, capture_output=True, text=True)
+    done = subprocess.run([sys.executable, str(script)], capture_output=True, text=True)
+    assert done.returncode == 0, done.stderr
     for name in ("cells.csv", "sweeps.csv", "spikes.csv"):
-        assert (tmp_path / method / name).read_bytes() == (tmp_path / "fork" / name).read_bytes()
+        got, want = (tmp_path / d / name for d in (method, "in_process"))
+        assert got.read_bytes() == want.read_bytes(), name
     assert len(list((tmp_path / method / "figures").glob("*.png"))) == 3
+
+
+@pytest.mark.parametrize("preload", [True, False])
+def test_forkserver_workers_start_with_the_preloaded_modules(tmp_path, preload):
+    # the server skips a preload name that fails to import without a word: check in a worker
+    import subprocess
+    import sys
+
+    code = (
+        "import multiprocessing, sys\n"
+        "from concurrent.futures import ProcessPoolExecutor\n"
+        "from pipeline import batch\n"
+        "def loaded(names):\n"
+        "    return [n in sys.modules for n in names]\n"
+        "if __name__ == '__main__':\n"
+        "    context = multiprocessing.get_context('forkserver')\n"
+        f"    if {preload}:\n"
+        "        batch._preload(context, figures=True)\n"
+        "    with ProcessPoolExecutor(1, mp_context=context) as pool:\n"
+        "        names = ['scipy.optimize', 'pipeline.report.figures']\n"
+        "        print(pool.submit(loaded, names).result())\n"
+    )
+    script = tmp_path / "forkserver_worker.py"
+    script.write_text(code)
+    done = subprocess.run([sys.executable, str(script)], capture_output=True, text=True)
+    assert done.returncode == 0, done.stderr
+    assert done.stdout.strip() == str([preload, preload])
