@@ -223,7 +223,9 @@ def one_round(day: Path, base: Path, env: dict) -> dict[str, tuple[float, int, f
 
 
 def median(values: list[float]) -> float:
-    ordered = sorted(values)
+    ordered = sorted(v for v in values if not math.isnan(v))
+    if not ordered:
+        return math.nan
     mid = len(ordered) // 2
     return ordered[mid] if len(ordered) % 2 else 0.5 * (ordered[mid - 1] + ordered[mid])
 
@@ -240,6 +242,8 @@ def main() -> int:
         help="run every timed process this many times, in rounds; report medians and ranges",
     )
     args = parser.parse_args()
+    if args.rounds < 1:
+        parser.error("--rounds must be 1 or more")
     base = Path(args.keep) if args.keep else Path(tempfile.mkdtemp(prefix="patchbatch-bench-"))
     day = base / f"day{args.cells}"
     if not day.exists():
@@ -250,7 +254,7 @@ def main() -> int:
     env = {**os.environ, "PYTHONPATH": str(ROOT)}
     print(f"load average before the runs: {' '.join(f'{x:.2f}' for x in os.getloadavg())}")
     rounds, stages = [], []
-    for _ in range(max(1, args.rounds)):
+    for _ in range(args.rounds):
         rounds.append(one_round(day, base, env))
         stages.append(stage_times(base / "out-f1"))
 
