@@ -274,6 +274,13 @@ def _windows(sweep: Sweep, epoch: StepEpoch, s: PassiveSettings) -> tuple[_Windo
     if not 0 < on < off <= n:
         return None, f"step edges {on}..{off} outside the sweep of {n} samples"
     min_n = max(2, round(s.min_window_s * rate))
+    for name, window_s in (("baseline", s.baseline_window_s), ("steady-state", s.ss_window_s)):
+        if round(window_s * rate) < min_n:  # time enough, too few samples: the rate is the cause
+            return None, (
+                f"too few samples: the {name} window of {window_s * 1e3:g} ms holds "
+                f"{round(window_s * rate)} at {rate:g} Hz, fewer than {min_n} (check the "
+                "sampling rate or the unit of the times)"
+            )
     nb = min(round(s.baseline_window_s * rate), on)
     if nb < min_n:
         return None, f"too short: {on / rate * 1e3:.1f} ms before the step for the baseline"
