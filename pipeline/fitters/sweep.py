@@ -278,8 +278,8 @@ def _windows(sweep: Sweep, epoch: StepEpoch, s: PassiveSettings) -> tuple[_Windo
         if round(window_s * rate) < min_n:  # time enough, too few samples: the rate is the cause
             return None, (
                 f"too few samples: the {name} window of {window_s * 1e3:g} ms holds "
-                f"{round(window_s * rate)} at {rate:g} Hz, fewer than {min_n} (check the "
-                "sampling rate or the unit of the times)"
+                f"{round(window_s * rate)} at {rate:g} Hz, fewer than the {min_n} needed "
+                "(check the sampling rate or the unit of the times)"
             )
     nb = min(round(s.baseline_window_s * rate), on)
     if nb < min_n:
