@@ -113,10 +113,10 @@ def _parse(text: str, where: str) -> pd.DataFrame:
         raise SheetError(f"{where}: not a readable CSV table (the sheet is empty)")
     body = text.lstrip("\r\n")
     try:
-        dialect = csv.Sniffer().sniff(body[:4096])
-    except csv.Error:
-        dialect = csv.excel
-    names = [h.strip() for h in next(csv.reader(StringIO(body), dialect))]
+        header = next(csv.reader(StringIO(body), csv.Sniffer().sniff(body[:4096])))
+    except (csv.Error, ValueError):  # no dialect found, or one csv.reader refuses (3.13)
+        header = next(csv.reader(StringIO(body), csv.excel))
+    names = [h.strip() for h in header]
     twice = sorted({n for n in names if n and names.count(n) > 1})
     if twice:
         raise SheetError(f"{where}: column {twice[0]!r} appears twice in the header")
