@@ -239,6 +239,18 @@ def remove_hum(
     return np.subtract(v, hum, out=hum)  # in place: one full-length temporary fewer
 
 
+def remove_hum_where_flat(
+    v: np.ndarray, rate: float, onset_index: int, ss: tuple[int, int], harmonics: int
+) -> np.ndarray:
+    """``v`` minus the mains hum fitted where a step's membrane is flat, as the fitter does.
+
+    The hum is fitted before the step (samples ``0 .. onset_index``) and in the steady-state
+    window ``ss`` (samples): the charging curve would leak into the sinusoids, and so would
+    the after-step tail, which still relaxes (and rebounds). See :func:`remove_hum`.
+    """
+    return remove_hum(v, rate, [(0, onset_index), ss], harmonics)
+
+
 def _design(basis: np.ndarray, rate: float, regions, rows: list[np.ndarray]):
     """Rows ``idx`` of the hum fit, its design (hum columns, then an offset and a slope per
     region) and the normal matrix; None with too few rows."""
@@ -936,9 +948,7 @@ def _measure(
 
     if not usable(*w.base, "baseline"):
         return SweepFit(**head, baseline_window=_secs(w.base, rate), reason="; ".join(reasons))
-    # hum is fitted before the step and late in it, where the membrane is flat; the after-step
-    # tail still relaxes (and rebounds) and would leak into the sinusoids
-    v = remove_hum(raw, rate, [(0, on), w.ss], s.hum_harmonics) if s.remove_hum else raw
+    v = remove_hum_where_flat(raw, rate, on, w.ss, s.hum_harmonics) if s.remove_hum else raw
     base = float(v[slice(*w.base)].mean())
     rms = float(raw[slice(*w.base)].std())
     after = NAN

@@ -48,7 +48,7 @@ from matplotlib.ticker import MaxNLocator, NullLocator, ScalarFormatter
 from matplotlib.transforms import Bbox, IdentityTransform
 
 from pipeline.fitters.results import CellFit, ExpFit, SweepFit
-from pipeline.fitters.sweep import PassiveSettings, remove_hum
+from pipeline.fitters.sweep import PassiveSettings, remove_hum_where_flat
 from pipeline.qc import CellVerdict
 from pipeline.recording import Recording, Sweep
 from pipeline.report.atomic import atomic_path
@@ -755,10 +755,10 @@ def residual_bins(n: int, rate: float) -> np.ndarray:
 
 
 def _as_fitted(v: _SweepView, hum_harmonics: int | None) -> np.ndarray:
-    """The sweep's voltage as the fitter measured it (V): mains hum fitted before the step and
-    in the steady-state window, where the membrane is flat, and removed from the whole sweep
-    (``fitters.sweep._measure`` does the same). Unchanged with ``hum_harmonics`` None or when
-    those windows are unknown."""
+    """The sweep's voltage as the fitter measured it (V): with the mains hum removed by the
+    fitter's own :func:`~pipeline.fitters.sweep.remove_hum_where_flat`, from the sweep's step
+    onset and steady-state window. Unchanged with ``hum_harmonics`` None or when those windows
+    are unknown."""
     volts = v.sweep.voltage
     if not hum_harmonics or v.epoch is None or not v.epoch.usable or v.fit is None:
         return volts
@@ -768,7 +768,7 @@ def _as_fitted(v: _SweepView, hum_harmonics: int | None) -> np.ndarray:
     ss = (round(ss0 * rate), round(ss1 * rate))
     if not (0 < on <= ss[0] < ss[1] <= volts.size):
         return volts
-    return remove_hum(volts, rate, [(0, on), ss], hum_harmonics)
+    return remove_hum_where_flat(volts, rate, on, ss, hum_harmonics)
 
 
 def _binned_residual(
