@@ -246,3 +246,44 @@ def test_forkserver_workers_start_with_the_preloaded_modules(tmp_path, preload):
     done = subprocess.run([sys.executable, str(script)], capture_output=True, text=True)
     assert done.returncode == 0, done.stderr
     assert done.stdout.strip() == str([preload, preload])
+
+
+def test_the_installed_command_is_the_quick_exit_entry_point():
+    from importlib.metadata import entry_points
+
+    (script,) = entry_points(group="console_scripts", name="patchbatch")
+    assert script.value == "pipeline.cli:entry"
+
+
+def test_the_command_exits_with_its_status_and_everything_written(day, tmp_path):
+    # `python -m pipeline` is the command as a user runs it: a whole process, whose shutdown
+    # skips the collector's pass over every object (cli.entry). Its output must be complete:
+    # the summary line on stdout, the log, the tables; and the status must be main()'s.
+    import subprocess
+    import sys
+
+    folder = tmp_path / "day"
+    shutil.copytree(day, folder)
+    (folder / "broken.nwb").write_bytes(b"not an hdf5 file at all")
+    out = tmp_path / "out"
+    done = subprocess.run(
+        [sys.executable, "-m", "pipeline", "run", str(folder), "-o", str(out), "-j", "1"],
+        capture_output=True,
+        text=True,
+    )
+    assert done.returncode == 1, done.stderr
+    assert done.stdout.rstrip().endswith(f"Open {out}/index.html"), done.stdout
+    assert "3 cell(s) from 4 file(s): 2 pass QC, 1 file(s) could not be analysed" in done.stdout
+    assert "broken.nwb" in (out / "patchbatch.log").read_text()
+    assert len(_cells(out)) == 4
+    assert len(list((out / "figures").glob("*.png"))) == 3
+
+
+def test_entry_freezes_the_collector_only_after_main(monkeypatch):
+    import gc
+
+    seen = []
+    monkeypatch.setattr(cli, "main", lambda: seen.append(gc.get_freeze_count()) or 7)
+    monkeypatch.setattr(gc, "freeze", lambda: seen.append("frozen"))
+    assert cli.entry() == 7
+    assert seen == [gc.get_freeze_count(), "frozen"]
