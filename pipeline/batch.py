@@ -359,6 +359,7 @@ def _execute_pool(todo, config, figure_dir, n) -> Iterator[tuple[int, dict]]:
     unfinished = []
     with ProcessPoolExecutor(max_workers=n, mp_context=context) as pool:
         futures = {pool.submit(job.run, config, figure_dir): job for job in todo}
+        _import_report_modules()
         for future in as_completed(futures):
             job = futures[future]
             try:
@@ -375,6 +376,16 @@ def _execute_pool(todo, config, figure_dir, n) -> Iterator[tuple[int, dict]]:
                 yield job.index, solo.submit(job.run, config, figure_dir).result()
             except Exception as exc:
                 yield job.index, _worker_failed(job, exc)
+
+
+def _import_report_modules() -> None:
+    """Import what the tables and the page need (pandas, pyarrow's Parquet writer, jinja2) while
+    the workers analyse: the main process would only wait then, and after the last file it is
+    the one process working (DEVELOPERS.md, "Where the time goes")."""
+    import pyarrow.parquet  # noqa: F401  (pandas' Parquet engine, imported on first write)
+
+    import pipeline.report.page  # noqa: F401
+    import pipeline.report.tables  # noqa: F401
 
 
 def _execute_dask(todo, config, figure_dir, scheduler, workers) -> Iterator[tuple[int, dict]]:
@@ -401,6 +412,7 @@ def _execute_dask(todo, config, figure_dir, scheduler, workers) -> Iterator[tupl
             raise SchedulerError(f"{scheduler}: cannot reach the Dask scheduler ({exc})") from None
         with client:
             futures = {client.submit(job.run, config, figure_dir, pure=False): job for job in todo}
+            _import_report_modules()
             for future in dask_completed(list(futures)):
                 job = futures[future]
                 try:
