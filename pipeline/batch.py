@@ -8,6 +8,7 @@ input order, so the tables are identical whatever the executor and worker count.
 
 from __future__ import annotations
 
+import contextlib
 import json
 import logging
 import os
@@ -359,7 +360,7 @@ def _execute_pool(todo, config, figure_dir, n) -> Iterator[tuple[int, dict]]:
     unfinished = []
     with ProcessPoolExecutor(max_workers=n, mp_context=context) as pool:
         futures = {pool.submit(job.run, config, figure_dir): job for job in todo}
-        _import_report_modules()
+        _import_report_modules(figure_dir is not None)
         for future in as_completed(futures):
             job = futures[future]
             try:
@@ -378,14 +379,21 @@ def _execute_pool(todo, config, figure_dir, n) -> Iterator[tuple[int, dict]]:
                 yield job.index, _worker_failed(job, exc)
 
 
-def _import_report_modules() -> None:
-    """Import what the tables and the page need (pandas, pyarrow's Parquet writer, jinja2) while
-    the workers analyse: the main process would only wait then, and after the last file it is
-    the one process working (DEVELOPERS.md, "Where the time goes")."""
-    import pyarrow.parquet  # noqa: F401  (pandas' Parquet engine, imported on first write)
+def _import_report_modules(figures: bool) -> None:
+    """Import what the tables and the page need (pandas, pyarrow's Parquet writer, jinja2 and,
+    for the summary plot, matplotlib) while the workers analyse: the main process would only
+    wait then, and after the last file it is the one process working (DEVELOPERS.md, "Where
+    the time goes"). A fork pool's main process has the figure module already.
 
-    import pipeline.report.page  # noqa: F401
-    import pipeline.report.tables  # noqa: F401
+    Any failure is left for the report stage to meet again, after every result is cached.
+    """
+    import importlib
+
+    names = ["pyarrow.parquet", "pipeline.report.tables", "pipeline.report.page"]
+    names += list(_FIGURE_MODULES) if figures else []
+    with contextlib.suppress(Exception):
+        for name in names:
+            importlib.import_module(name)
 
 
 def _execute_dask(todo, config, figure_dir, scheduler, workers) -> Iterator[tuple[int, dict]]:
@@ -412,7 +420,7 @@ def _execute_dask(todo, config, figure_dir, scheduler, workers) -> Iterator[tupl
             raise SchedulerError(f"{scheduler}: cannot reach the Dask scheduler ({exc})") from None
         with client:
             futures = {client.submit(job.run, config, figure_dir, pure=False): job for job in todo}
-            _import_report_modules()
+            _import_report_modules(figure_dir is not None)
             for future in dask_completed(list(futures)):
                 job = futures[future]
                 try:

@@ -18,9 +18,20 @@ CACHE_DIR = ".patchbatch-cache"
 
 
 def file_sha256(path: str | Path) -> str:
-    """Hex sha256 of a file's bytes."""
-    # file_digest reads into one small reused buffer: a third faster than reading 1 MB
-    # blocks on the bench day (0.16 s against 0.23 s for its 40 files, 150 MB)
+    """The sha256 of a file's bytes.
+
+    Parameters
+    ----------
+    path : str or pathlib.Path
+        The file.
+
+    Returns
+    -------
+    str
+        64 hexadecimal digits.
+    """
+    # file_digest reads into one small reused buffer: 0.16 s against 0.23 s reading 1 MB
+    # blocks, for the bench day's 40 files (150 MB)
     with open(path, "rb") as fh:
         return hashlib.file_digest(fh, "sha256").hexdigest()
 

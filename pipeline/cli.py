@@ -65,19 +65,35 @@ def entry() -> int:
     -------
     int
         The exit status.
+
+    Notes
+    -----
+    Only as a process's last act: it freezes the garbage collector for good, so a
+    long-lived program calling it would never collect its cyclic garbage again. Programs
+    call :func:`main`.
     """
     status = main()
     # All outputs are written and closed by now. The interpreter's shutdown would run the
-    # cyclic garbage collector over every object of scipy, pandas and matplotlib, about 0.5 s
-    # measured on the benchmark's machine (DEVELOPERS.md, "Where the time goes"); frozen,
-    # they are left to the operating system. atexit handlers and the flushing of the standard
-    # streams still run. Not in main(): a program calling it keeps its collector.
+    # cyclic garbage collector over every object of scipy, pandas and matplotlib
+    # (DEVELOPERS.md, "Where the time goes", gives the cost); frozen, they are left to the
+    # operating system. atexit handlers and the flushing of the standard streams still run.
     gc.freeze()
     return status
 
 
 def main(argv: Sequence[str] | None = None) -> int:
-    """Entry point of the ``patchbatch`` command; returns the exit status."""
+    """Run one ``patchbatch`` command (what :func:`entry` runs, without its quick exit).
+
+    Parameters
+    ----------
+    argv : sequence of str, optional
+        The arguments after the program name; default ``sys.argv[1:]``.
+
+    Returns
+    -------
+    int
+        The exit status (see the module docstring).
+    """
     parser = build_parser()
     args = parser.parse_args(argv)
     try:

@@ -248,11 +248,14 @@ def test_forkserver_workers_start_with_the_preloaded_modules(tmp_path, preload):
     assert done.stdout.strip() == str([preload, preload])
 
 
-def test_the_installed_command_is_the_quick_exit_entry_point():
-    from importlib.metadata import entry_points
+def test_the_command_is_the_quick_exit_entry_point():
+    import tomllib
+    from pathlib import Path
 
-    (script,) = entry_points(group="console_scripts", name="patchbatch")
-    assert script.value == "pipeline.cli:entry"
+    project = tomllib.loads((Path(__file__).parents[1] / "pyproject.toml").read_text())
+    assert project["project"]["scripts"]["patchbatch"] == "pipeline.cli:entry"
+    main_module = (Path(cli.__file__).parent / "__main__.py").read_text()
+    assert "sys.exit(entry())" in main_module
 
 
 def test_the_command_exits_with_its_status_and_everything_written(day, tmp_path):
@@ -283,7 +286,25 @@ def test_entry_freezes_the_collector_only_after_main(monkeypatch):
     import gc
 
     seen = []
-    monkeypatch.setattr(cli, "main", lambda: seen.append(gc.get_freeze_count()) or 7)
+    monkeypatch.setattr(cli, "main", lambda: seen.append("main") or 7)
     monkeypatch.setattr(gc, "freeze", lambda: seen.append("frozen"))
     assert cli.entry() == 7
-    assert seen == [gc.get_freeze_count(), "frozen"]
+    assert seen == ["main", "frozen"]
+
+
+def test_a_failed_early_import_is_left_for_the_report_stage(monkeypatch):
+    # imported early only to overlap the workers: a failure there must not throw away the
+    # results being computed (the report stage meets it again, after they are cached)
+    import importlib
+
+    from pipeline import batch
+
+    asked = []
+
+    def broken(name):
+        asked.append(name)
+        raise ImportError(f"no module named {name}")
+
+    monkeypatch.setattr(importlib, "import_module", broken)
+    batch._import_report_modules(figures=True)
+    assert asked == ["pyarrow.parquet"]

@@ -208,9 +208,7 @@ def summary_png(
         axes = fig.subplots(1, len(cols), squeeze=False)[0]
         for ax, col in zip(axes, cols, strict=True):
             _strip_box(ax, pd.to_numeric(cells[col], errors="coerce"), labels, order, passed, rng)
-            # y given: the title sits where matplotlib's search above the axes would put it
-            # (nothing is drawn above them), without the search (~10 ms a panel)
-            ax.set_title(_LABELS.get(col, col), fontsize=9, y=1.0)
+            ax.set_title(_LABELS.get(col, col), fontsize=9)
             ax.set_xlabel(title or "")
         fig.subplots_adjust(left=0.06, right=0.99, bottom=0.22, top=0.88, wspace=0.38)
         canvas.draw()
