@@ -17,6 +17,7 @@ from pipeline.recording import Recording, Sweep
 from pipeline.report.figures import (
     FAIL_COLOUR,
     PASS_COLOUR,
+    _drift_mv,
     cell_figure,
     column_bands,
     envelope,
@@ -429,3 +430,16 @@ def test_a_window_outside_the_traces_widens_the_panel_as_axvspan_would():
     ax = fig.add_subplot()
     _draw_traces(ax, fig, views, fit, 40.0)
     assert ax.get_xlim()[0] <= -100.0  # ms: the window is shown, not cut off
+
+
+@pytest.mark.parametrize(
+    ("drift_v", "text"),
+    [
+        (-3.7e-7, "+0.00 mV"),  # .2g gave "-0.00037 mV": a false precision of 0.1 uV
+        (0.0123, "+12.30 mV"),
+        (-0.123, "-123.00 mV"),  # .2g gave "-1.2e+02 mV"
+        (-0.0051e-3, "-0.01 mV"),
+    ],
+)
+def test_baseline_drift_reads_in_hundredths_of_a_millivolt(drift_v, text):
+    assert _drift_mv(drift_v) == text

@@ -865,6 +865,13 @@ def _fmt_ci(value: float, ci: tuple[float, float], scale: float, unit: str) -> s
     return text
 
 
+def _drift_mv(drift_v: float) -> str:
+    """A baseline drift as a person reads it: signed, to 10 uV (``+0.00 mV`` when smaller),
+    never in exponent notation (``.2g`` gave ``-0.00037`` or ``1.2e+02``)."""
+    mv = drift_v * 1e3
+    return f"{0.0 if abs(mv) < 0.005 else mv:+.2f} mV"
+
+
 def _property_lines(
     cell_fit: CellFit | None, views: list[_SweepView], spikes: Any = None
 ) -> list[str]:
@@ -875,7 +882,7 @@ def _property_lines(
     if _finite(f.sag_ratio) and _finite(f.sag_step_a):
         sag += f" (at {f.sag_step_a * 1e12:.0f} pA)"
     return [
-        f"Vrest      {_fmt(f.vrest_v, 1e3, 'mV')}" + (f"  (drift {f.vrest_drift_v * 1e3:.2g} mV)" if _finite(f.vrest_drift_v) else ""),
+        f"Vrest      {_fmt(f.vrest_v, 1e3, 'mV')}" + (f"  (drift {_drift_mv(f.vrest_drift_v)})" if _finite(f.vrest_drift_v) else ""),
         f"Rin        {_fmt_ci(f.rin_ohm, f.rin_ci_ohm, 1e-6, 'MΩ')}",
         f"tau        {_fmt_ci(f.tau_s, f.tau_ci_s, 1e3, 'ms')}",
         f"Cm         {_fmt_ci(f.cm_f, f.cm_ci_f, 1e12, 'pF')}  (tau/Rin)",
