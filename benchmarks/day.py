@@ -29,6 +29,7 @@ import math
 import os
 import resource
 import shutil
+import statistics
 import subprocess
 import sys
 import tempfile
@@ -227,11 +228,9 @@ def one_round(day: Path, base: Path, env: dict) -> dict[str, tuple[float, int, f
 
 
 def median(values: list[float]) -> float:
-    ordered = sorted(v for v in values if not math.isnan(v))
-    if not ordered:
-        return math.nan
-    mid = len(ordered) // 2
-    return ordered[mid] if len(ordered) % 2 else 0.5 * (ordered[mid - 1] + ordered[mid])
+    """The median of the values that are not NaN (a stage missing from a round); NaN if none."""
+    present = [v for v in values if not math.isnan(v)]
+    return statistics.median(present) if present else math.nan
 
 
 def main() -> int:

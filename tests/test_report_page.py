@@ -193,6 +193,27 @@ def test_summary_plot_with_and_without_condition():
     assert summary_png(fake_cells(), ("tau_ms",)) == summary_png(fake_cells(), ("tau_ms",))
 
 
+def test_summary_plot_is_drawn_as_stock_matplotlib_draws_it(monkeypatch):
+    # the plot goes through the cell figures' canvas (kept renderer, cached text bitmaps, own
+    # PNG writer): its pixels must be those of matplotlib's own Agg canvas and PNG writer
+    import io
+
+    from matplotlib.backends.backend_agg import FigureCanvasAgg
+    from PIL import Image
+
+    from pipeline.report import figures
+
+    def pixels(png: bytes) -> np.ndarray:
+        return np.asarray(Image.open(io.BytesIO(png)).convert("RGBA"))
+
+    cells = fake_cells(12)
+    columns = ("vrest_mv", "rin_mohm", "tau_ms", "cm_pf", "sag_ratio")
+    ours = pixels(summary_png(cells, columns))
+    monkeypatch.setattr(figures, "_Canvas", FigureCanvasAgg)
+    stock = pixels(summary_png(cells, columns))
+    assert ours.shape == stock.shape and np.array_equal(ours, stock)
+
+
 def test_page_without_cells_or_summary_columns(tmp_path):
     empty = cells_frame([])
     path = write_page(tmp_path, empty, run_info={"errors": ["every file failed"]}, figures={})

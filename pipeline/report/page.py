@@ -10,6 +10,7 @@ from __future__ import annotations
 
 import base64
 import hashlib
+import io
 import json
 import math
 import os
@@ -194,25 +195,25 @@ def summary_png(
     passed = pd.Series([st == "pass" for st in states], index=cells.index)
     # matplotlib only here: a tables-only run (no figures, no plots) never imports it
     import matplotlib
-    from matplotlib.backends.backend_agg import FigureCanvasAgg
     from matplotlib.figure import Figure
 
-    from pipeline.report.figures import png_bytes
+    from pipeline.report.figures import _Canvas  # the cell figures' canvas and PNG writer
 
     rng = np.random.default_rng(0)  # fixed jitter: the page is identical run to run
     with matplotlib.rc_context({"text.parse_math": False, "font.size": 8}):
         fig = Figure(
             figsize=(max(2.4 * len(cols), 4.0), 2.9 + 0.05 * max(len(g) for g in order)), dpi=100
         )
-        canvas = FigureCanvasAgg(fig)
+        _Canvas(fig)
         axes = fig.subplots(1, len(cols), squeeze=False)[0]
         for ax, col in zip(axes, cols, strict=True):
             _strip_box(ax, pd.to_numeric(cells[col], errors="coerce"), labels, order, passed, rng)
             ax.set_title(_LABELS.get(col, col), fontsize=9)
             ax.set_xlabel(title or "")
         fig.subplots_adjust(left=0.06, right=0.99, bottom=0.22, top=0.88, wspace=0.38)
-        canvas.draw()
-    return png_bytes(np.asarray(canvas.buffer_rgba()), dpi=100)  # the cell figures' encoder
+        buf = io.BytesIO()
+        fig.savefig(buf, format="png", dpi=100)
+    return buf.getvalue()
 
 
 def _cached_summary(
