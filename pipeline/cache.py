@@ -9,12 +9,15 @@ from __future__ import annotations
 
 import hashlib
 import json
+import os
+import re
 from pathlib import Path
 from typing import Any
 
 from pipeline import __version__
 
 CACHE_DIR = ".patchbatch-cache"
+_ENTRY_NAME = re.compile(r"[0-9a-f]{32}\.json")  # entry_key's 32 hex digits
 
 
 def file_sha256(path: str | Path) -> str:
@@ -40,6 +43,15 @@ def entry_key(file_hash: str, config_digest: str) -> str:
     """The cache key of one input under one config and version."""
     text = f"{file_hash}:{config_digest}:{__version__}"
     return hashlib.sha256(text.encode()).hexdigest()[:32]
+
+
+def has_entries(outdir: str | Path) -> bool:
+    """Whether the output folder's cache holds any entry (a fresh folder has none)."""
+    try:
+        with os.scandir(Path(outdir) / CACHE_DIR) as found:
+            return any(_ENTRY_NAME.fullmatch(e.name) for e in found)
+    except OSError:  # no cache folder yet
+        return False
 
 
 def load_entry(outdir: str | Path, key: str) -> dict[str, Any] | None:

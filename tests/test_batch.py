@@ -308,3 +308,86 @@ def test_a_failed_early_import_is_left_for_the_report_stage(monkeypatch):
     monkeypatch.setattr(importlib, "import_module", broken)
     batch._import_report_modules(figures=True)
     assert asked == ["pyarrow.parquet"]
+
+
+def test_a_fresh_folder_starts_analysing_before_the_inputs_are_hashed(day, tmp_path, monkeypatch):
+    # nothing to look up in a fresh folder: the first hash waits here until an analysis has
+    # begun, so a batch that hashed everything before analysing would time out below
+    import threading
+
+    from pipeline import analysis
+
+    began = threading.Event()
+    real_hash, real_analyse = cache.file_sha256, analysis.analyse_file
+    waited = []
+
+    def hash_after_an_analysis(path):
+        waited.append(began.wait(timeout=10))
+        return real_hash(path)
+
+    def analyse(*args, **kwargs):
+        began.set()
+        return real_analyse(*args, **kwargs)
+
+    monkeypatch.setattr(cache, "file_sha256", hash_after_an_analysis)
+    monkeypatch.setattr("pipeline.batch.analyse_file", analyse)
+    out = tmp_path / "out"
+    result = run_batch([day], out=out, workers=1, figures=False, progress=False)
+    assert waited == [True, True, True]
+    # the results are stored under the keys a lookup computes, and run.json has the hashes
+    files = sorted(day.glob("*.nwb"))
+    digest = result.info["config_digest"]
+    for path, listed in zip(files, result.info["inputs"], strict=True):
+        assert listed == {"file": str(path), "sha256": real_hash(path)}
+        assert cache.load_entry(out, cache.entry_key(real_hash(path), digest)) is not None
+    monkeypatch.setattr("pipeline.batch.analyse_file", None)  # a re-run must not analyse
+    again = run_batch([day], out=out, workers=1, figures=False, progress=False)
+    assert again.info["counts"]["cached"] == 3
+
+
+def test_no_hashing_thread_runs_when_a_fork_pool_forks(day, tmp_path, monkeypatch):
+    import multiprocessing
+    import threading
+
+    from pipeline import batch
+
+    if multiprocessing.get_start_method() != "fork":
+        pytest.skip("the pool does not fork here")
+    real_hash, real_pool = cache.file_sha256, batch.ProcessPoolExecutor
+    threads_at_fork = []
+
+    def slow_hash(path):  # still hashing when the pool would start, unless it is waited for
+        threading.Event().wait(0.3)
+        return real_hash(path)
+
+    def pool(*args, **kwargs):
+        threads_at_fork.append(sorted(t.name for t in threading.enumerate()))
+        return real_pool(*args, **kwargs)
+
+    monkeypatch.setattr(cache, "file_sha256", slow_hash)
+    monkeypatch.setattr(batch, "ProcessPoolExecutor", pool)
+    result = run_batch([day], out=tmp_path / "out", workers=2, figures=False, progress=False)
+    assert result.exit_status == 0 and threads_at_fork
+    assert all("patchbatch-sha256" not in names for names in threads_at_fork)
+
+
+def test_an_interrupted_run_stops_hashing(day, tmp_path, monkeypatch):
+    import threading
+
+    hashed = []
+
+    def slow_hash(path):
+        hashed.append(path)
+        threading.Event().wait(0.5)
+        return "0" * 64
+
+    def interrupted(*args, **kwargs):
+        raise KeyboardInterrupt
+
+    monkeypatch.setattr(cache, "file_sha256", slow_hash)
+    monkeypatch.setattr("pipeline.batch.analyse_file", interrupted)
+    with pytest.raises(KeyboardInterrupt):
+        run_batch([day], out=tmp_path / "out", workers=1, figures=False, progress=False)
+    # the first file's hash was under way; the others are not hashed after the interruption
+    assert len(hashed) == 1
+    assert not any(t.name == "patchbatch-sha256" for t in threading.enumerate())
