@@ -504,7 +504,12 @@ def _progress(total: int, progress: bool | None):
         return None
     from tqdm import tqdm
 
-    return tqdm(total=total, unit="file", desc="patchbatch", file=sys.stderr)
+    class Bar(tqdm):
+        # no monitor thread (it tunes bars updated many times a second): a fork pool forks
+        # after the bar exists, and forking while another thread runs can deadlock a child
+        monitor_interval = 0
+
+    return Bar(total=total, unit="file", desc="patchbatch", file=sys.stderr)
 
 
 def _report_one(result: dict[str, Any], bar) -> None:
