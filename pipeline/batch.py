@@ -9,15 +9,15 @@ input order, so the tables are identical whatever the executor and worker count.
 from __future__ import annotations
 
 import contextlib
+import functools
 import json
 import logging
 import os
 import re
 import sys
-import threading
 import time
-from collections.abc import Callable, Iterator, Sequence
-from concurrent.futures import Future, ProcessPoolExecutor, as_completed
+from collections.abc import Iterator, Sequence
+from concurrent.futures import ProcessPoolExecutor, ThreadPoolExecutor, as_completed
 from dataclasses import dataclass, field
 from datetime import UTC, datetime
 from pathlib import Path
@@ -248,7 +248,8 @@ def _analyse_all(files, config, outdir, figures, workers, scheduler, progress):
 
         def key(i: int) -> str | None:
             file_hash = hashes.get(i)
-            return cache.entry_key(file_hash, digest + prefixes[i]) if file_hash else None
+            source = f"{prefixes[i]}:{files[i]}"
+            return cache.entry_key(file_hash, digest, source) if file_hash else None
 
         results: dict[int, dict[str, Any]] = {}
         todo: list[Job] = []
@@ -262,7 +263,7 @@ def _analyse_all(files, config, outdir, figures, workers, scheduler, progress):
         stats = {"cached": len(results), "analysed": len(todo)}
         log.info("%d file(s) from the cache, %d to analyse", len(results), len(todo))
         bar = _progress(len(todo), progress)
-        finished = _execute(todo, config, figure_dir, workers, scheduler, hashes.finish)
+        finished = _execute(todo, config, figure_dir, workers, scheduler, hashes)
         for i, result in finished:
             # Fresh results take the same JSON form as cached ones: identical tables.
             results[i] = cache.normalise(result)
@@ -282,33 +283,19 @@ class _Hashes:
     pool's imports (~0.1 s of the 0.12-0.16 s it takes for the bench day's 150 MB)."""
 
     def __init__(self, files: Sequence[Path]) -> None:
-        self._files = list(files)
-        self._done: list[Future] = [Future() for _ in self._files]
-        self._stopped = threading.Event()
-        self._thread = threading.Thread(target=self._run, name="patchbatch-sha256", daemon=True)
-        self._thread.start()
-
-    def _run(self) -> None:
-        for path, done in zip(self._files, self._done, strict=True):
-            if self._stopped.is_set():
-                done.cancel()
-                continue
-            try:
-                done.set_result(_sha_or_none(path))
-            except BaseException as exc:  # met again by whoever asks for this hash
-                done.set_exception(exc)
+        self._pool = ThreadPoolExecutor(max_workers=1, thread_name_prefix="patchbatch-sha256")
+        self._done = [self._pool.submit(_sha_or_none, path) for path in files]
 
     def get(self, i: int) -> str | None:
         return self._done[i].result()
 
     def finish(self) -> list[str | None]:
         """All hashes, with the thread ended (as it must be before a fork)."""
-        self._thread.join()
+        self._pool.shutdown(wait=True)
         return [done.result() for done in self._done]
 
     def stop(self) -> None:
-        self._stopped.set()
-        self._thread.join()
+        self._pool.shutdown(wait=True, cancel_futures=True)
 
 
 @dataclass(frozen=True)
@@ -353,23 +340,26 @@ def _figures_present(result: dict[str, Any], figure_dir: str | None) -> bool:
     )
 
 
-def _execute(
-    todo, config, figure_dir, workers, scheduler, before_fork: Callable[[], object] = lambda: None
-) -> Iterator[tuple[int, dict]]:
-    """Yield (input index, result) as files finish, on the chosen executor; ``before_fork`` is
-    called before a fork pool forks (forking while another thread runs can deadlock a child)."""
+def _execute(todo, config, figure_dir, workers, scheduler, hashes) -> Iterator[tuple[int, dict]]:
+    """Yield (input index, result) as files finish, on the chosen executor.
+
+    A file's hash is complete before its analysis starts, so a file rewritten meanwhile has the
+    results of its new bytes stored under its old hash (a key never asked for again), never the
+    other way round; a fork pool waits for all of them, as it must not fork beside a thread.
+    """
     if not todo:
         return
     if scheduler:
-        yield from _execute_dask(todo, config, figure_dir, scheduler, workers)
+        yield from _execute_dask(todo, config, figure_dir, scheduler, workers, hashes)
         return
     n = workers if workers else (config.run.workers or os.cpu_count() or 1)
     n = max(1, min(n, len(todo)))
     if n == 1:
         for job in todo:
+            hashes.get(job.index)
             yield job.index, job.run(config, figure_dir)
         return
-    yield from _execute_pool(todo, config, figure_dir, n, before_fork)
+    yield from _execute_pool(todo, config, figure_dir, n, hashes)
 
 
 # What every pool worker imports on its first file: scipy.optimize for the fits, matplotlib
@@ -400,7 +390,7 @@ def _preload(context, figures: bool) -> None:
             importlib.import_module(name)
 
 
-def _execute_pool(todo, config, figure_dir, n, before_fork) -> Iterator[tuple[int, dict]]:
+def _execute_pool(todo, config, figure_dir, n, hashes) -> Iterator[tuple[int, dict]]:
     """The process pool. A worker that dies (a crash in a C library, an OOM kill) breaks the
     whole pool; the files that were then unfinished are re-run one per fresh process, so only
     the file that kills its worker is lost."""
@@ -410,10 +400,10 @@ def _execute_pool(todo, config, figure_dir, n, before_fork) -> Iterator[tuple[in
     context = multiprocessing.get_context()  # the pools' start method, and the preload's
     _preload(context, figure_dir is not None)
     if context.get_start_method() == "fork":
-        before_fork()  # the solo pools below fork later still: by then nothing else runs
+        hashes.finish()  # the solo pools below fork later still: no thread of ours runs then
     unfinished = []
     with ProcessPoolExecutor(max_workers=n, mp_context=context) as pool:
-        futures = {pool.submit(job.run, config, figure_dir): job for job in todo}
+        futures = {_submit(pool.submit, job, hashes, config, figure_dir): job for job in todo}
         _import_report_modules(figure_dir is not None)
         for future in as_completed(futures):
             job = futures[future]
@@ -433,6 +423,11 @@ def _execute_pool(todo, config, figure_dir, n, before_fork) -> Iterator[tuple[in
                 yield job.index, _worker_failed(job, exc)
 
 
+def _submit(submit, job: Job, hashes, *args: Any) -> Any:
+    hashes.get(job.index)  # hashed before it is analysed (see _execute)
+    return submit(job.run, *args)
+
+
 def _import_report_modules(figures: bool) -> None:
     """Import what the tables and the page need (pandas, pyarrow's Parquet writer, jinja2 and,
     for the summary plot, matplotlib) while the workers analyse: the main process would only
@@ -450,7 +445,9 @@ def _import_report_modules(figures: bool) -> None:
             importlib.import_module(name)
 
 
-def _execute_dask(todo, config, figure_dir, scheduler, workers) -> Iterator[tuple[int, dict]]:
+def _execute_dask(
+    todo, config, figure_dir, scheduler, workers, hashes
+) -> Iterator[tuple[int, dict]]:
     from distributed import Client, LocalCluster
     from distributed import as_completed as dask_completed
 
@@ -473,7 +470,8 @@ def _execute_dask(todo, config, figure_dir, scheduler, workers) -> Iterator[tupl
         except (OSError, TimeoutError) as exc:  # not an OSError of the output folder
             raise SchedulerError(f"{scheduler}: cannot reach the Dask scheduler ({exc})") from None
         with client:
-            futures = {client.submit(job.run, config, figure_dir, pure=False): job for job in todo}
+            submit = functools.partial(client.submit, pure=False)
+            futures = {_submit(submit, job, hashes, config, figure_dir): job for job in todo}
             _import_report_modules(figure_dir is not None)
             for future in dask_completed(list(futures)):
                 job = futures[future]
