@@ -15,6 +15,7 @@ from dataclasses import replace
 from pathlib import Path
 from typing import Any
 
+from pipeline.cache import file_sha256
 from pipeline.config import Config
 from pipeline.errors import RecordingError
 from pipeline.recording import Recording
@@ -140,11 +141,14 @@ def _analyse(
     cell_row["qc_flags"] = "; ".join(verdict.flags)
     _add(timings, "qc", time.perf_counter() - t0)
 
-    figure, figure_error = None, None
+    figure, figure_sha256, figure_error = None, None, None
     if figure_dir is not None:
         t0 = time.perf_counter()
         try:
             figure = _figure(recording, epochs, cell_fit, verdict, spikes, figure_dir, config)
+            # the cache keeps the figure's digest: a PNG drawn since under another config
+            # (figures are named by cell id alone) is not taken for this result's
+            figure_sha256 = file_sha256(Path(figure_dir) / figure)
         except Exception as exc:  # a drawing problem must not cost the cell its numbers
             figure_error = f"{recording.cell_id}: figure not drawn ({type(exc).__name__}: {exc})"
         _add(timings, "figures", time.perf_counter() - t0)
@@ -154,6 +158,7 @@ def _analyse(
         "sweeps": sweep_rows,
         "spikes": spike_rows,
         "figure": figure,
+        "figure_sha256": figure_sha256,
         "figure_error": figure_error,
     }
 

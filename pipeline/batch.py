@@ -237,8 +237,8 @@ def _analyse_all(files, config, outdir, figures, workers, scheduler, progress):
     """Analyse every file not in the cache; returns results in input order and counts.
 
     A folder with cache entries waits for each input's hash to look it up. A fresh folder has
-    nothing to look up: its analysis (or a pool's preload) starts at once, beside the hashing,
-    and each hash is needed only to store that file's result.
+    nothing to look up: each file's analysis waits only for its own hash, so the analysis (or a
+    pool's preload) runs beside the hashing of the rest.
     """
     digest = config.digest()
     figure_dir = str(outdir / "figures") if figures else None
@@ -333,10 +333,14 @@ def id_prefixes(files: Sequence[Path]) -> list[str]:
 
 
 def _figures_present(result: dict[str, Any], figure_dir: str | None) -> bool:
+    """Whether every cell's figure is there as this result drew it (the same bytes)."""
     if figure_dir is None:
         return True
     return all(
-        c.get("figure") and (Path(figure_dir) / c["figure"]).is_file() for c in result["cells"]
+        c.get("figure")
+        and c.get("figure_sha256")
+        and _sha_or_none(Path(figure_dir) / c["figure"]) == c["figure_sha256"]
+        for c in result["cells"]
     )
 
 
@@ -403,7 +407,13 @@ def _execute_pool(todo, config, figure_dir, n, hashes) -> Iterator[tuple[int, di
         hashes.finish()  # the solo pools below fork later still: no thread of ours runs then
     unfinished = []
     with ProcessPoolExecutor(max_workers=n, mp_context=context) as pool:
-        futures = {_submit(pool.submit, job, hashes, config, figure_dir): job for job in todo}
+        futures = {}
+        for k, job in enumerate(todo):
+            try:
+                futures[_submit(pool.submit, job, hashes, config, figure_dir)] = job
+            except BrokenProcessPool:  # a worker died while the later files were hashed
+                unfinished.extend(todo[k:])
+                break
         _import_report_modules(figure_dir is not None)
         for future in as_completed(futures):
             job = futures[future]
@@ -418,7 +428,7 @@ def _execute_pool(todo, config, figure_dir, n, hashes) -> Iterator[tuple[int, di
     for job in sorted(unfinished, key=lambda j: j.index):
         with ProcessPoolExecutor(max_workers=1, mp_context=context) as solo:
             try:
-                yield job.index, solo.submit(job.run, config, figure_dir).result()
+                yield job.index, _submit(solo.submit, job, hashes, config, figure_dir).result()
             except Exception as exc:
                 yield job.index, _worker_failed(job, exc)
 

@@ -1,8 +1,9 @@
 """The incremental cache: one JSON file per analysed input, in the output folder.
 
-An entry is keyed by the input's sha256, the config digest, the package version and the input's
-path (its rows name it), so a re-run over unchanged inputs re-analyses nothing, and a run killed
-midway resumes from the entries already written. JSON only (never pickle): nothing from a cache is ever executed.
+An entry is keyed by the input's sha256, the config digest, the package version, and the
+input's path and cell-id prefix (its rows name them), so a re-run over unchanged inputs
+re-analyses nothing, and a run killed midway resumes from the entries already written. JSON
+only (never pickle): nothing from a cache is ever executed.
 """
 
 from __future__ import annotations

@@ -360,9 +360,13 @@ def test_a_fresh_folder_hashes_each_file_before_its_analysis_but_not_all_first(
 @pytest.mark.parametrize("workers", [1, 2])
 def test_a_file_rewritten_after_its_analysis_is_analysed_again(day, tmp_path, monkeypatch, workers):
     # a rig still writing into the day's folder: c02 gets other bytes (c00's) once analysed
+    import multiprocessing
     import threading
 
     from pipeline import analysis
+
+    if workers > 1 and multiprocessing.get_start_method() != "fork":
+        pytest.skip("only forked workers see the patched analysis")
 
     folder = tmp_path / "day"
     shutil.copytree(day, folder)
@@ -389,6 +393,96 @@ def test_a_file_rewritten_after_its_analysis_is_analysed_again(day, tmp_path, mo
     assert cells.loc["c02", "rin_mohm"] == pytest.approx(cells.loc["c00", "rin_mohm"], rel=1e-9)
     fresh = run_batch([folder], out=tmp_path / "fresh", workers=1, figures=False, progress=False)
     pd.testing.assert_frame_equal(again.cells, fresh.cells)
+
+
+def test_a_pool_hashes_before_each_submit_and_survives_a_worker_dying_meanwhile(
+    day, tmp_path, monkeypatch
+):
+    # spawn and forkserver pools (macOS, Linux from Python 3.14) submit each file once it is
+    # hashed; a worker dying meanwhile breaks the pool at the next submit, and the files not
+    # yet submitted must still be re-run one by one, as those in flight are
+    import multiprocessing
+    import threading
+    from concurrent.futures import Future
+    from concurrent.futures.process import BrokenProcessPool
+    from pathlib import Path
+
+    from pipeline import batch
+
+    events = []
+    real_hash = cache.file_sha256
+
+    def hash_and_note(path):  # slow: a submit that did not wait would come first
+        threading.Event().wait(0.2)
+        digest = real_hash(path)
+        events.append(("hashed", Path(path).name))
+        return digest
+
+    class Pool:  # runs jobs in this process; the shared pool breaks at its second submit
+        def __init__(self, max_workers, mp_context):
+            self.solo = max_workers == 1
+
+        def __enter__(self):
+            return self
+
+        def __exit__(self, *exc):
+            return False
+
+        def submit(self, fn, *args):
+            name = Path(fn.__self__.path).name
+            if not self.solo and any(e[0] == "submitted" for e in events):
+                raise BrokenProcessPool("a child process terminated abruptly")
+            events.append(("submitted", name))
+            done = Future()
+            done.set_result(fn(*args))
+            return done
+
+    spawn = multiprocessing.get_context("spawn")
+    monkeypatch.setattr(multiprocessing, "get_context", lambda *args: spawn)
+    monkeypatch.setattr(cache, "file_sha256", hash_and_note)
+    monkeypatch.setattr(batch, "ProcessPoolExecutor", Pool)
+    result = run_batch([day], out=tmp_path / "out", workers=2, figures=False, progress=False)
+    assert result.exit_status == 0
+    assert list(result.cells["status"]) == ["ok", "ok", "ok"]
+    submitted = [name for kind, name in events if kind == "submitted"]
+    assert sorted(submitted) == ["c00.nwb", "c01.nwb", "c02.nwb"]  # two of them re-run solo
+    for name in submitted:
+        assert events.index(("hashed", name)) < events.index(("submitted", name))
+
+
+def test_a_re_run_with_a_new_file_of_the_same_name_renames_the_cached_cell(day, tmp_path):
+    # rig1/c00 was cached as "c00"; once rig2/c00 joins the day, its id needs its folder
+    folder = tmp_path / "day"
+    (folder / "rig1").mkdir(parents=True)
+    shutil.copyfile(day / "c00.nwb", folder / "rig1" / "c00.nwb")
+    out = tmp_path / "out"
+    first = run_batch([folder], out=out, workers=1, figures=False, progress=False)
+    assert list(first.cells["cell_id"]) == ["c00"]
+    (folder / "rig2").mkdir()
+    shutil.copyfile(day / "c01.nwb", folder / "rig2" / "c00.nwb")
+    again = run_batch([folder], out=out, workers=1, figures=False, progress=False)
+    assert list(again.cells["cell_id"]) == ["rig1-c00", "rig2-c00"]
+
+
+def test_a_figure_drawn_under_another_config_is_drawn_again(day, tmp_path):
+    # figures are named by cell id alone: a --force run at another dpi redraws c00.png, and a
+    # run back under the first config must not take that PNG for its cached result's
+    from pipeline.config import load_config
+
+    out = tmp_path / "out"
+    small = tmp_path / "small.toml"
+    small.write_text("[report]\nfigure_dpi = 50\n")
+    first = run_batch([day], out=out, workers=1, progress=False)
+    drawn = (out / "figures" / "c00.png").read_bytes()
+    run_batch([day], load_config(small), out=out, workers=1, progress=False, force=True)
+    assert (out / "figures" / "c00.png").read_bytes() != drawn
+    again = run_batch([day], out=out, workers=1, progress=False, force=True)
+    assert again.info["counts"]["analysed"] == 3  # its cached results, but not their figures
+    assert (out / "figures" / "c00.png").read_bytes() == drawn
+    pd.testing.assert_frame_equal(again.cells, first.cells)
+    # untouched figures are taken from the cache
+    third = run_batch([day], out=out, workers=1, progress=False)
+    assert third.info["counts"]["cached"] == 3
 
 
 def test_files_with_the_same_bytes_keep_their_own_rows_on_a_re_run(day, tmp_path):
