@@ -42,8 +42,9 @@ def analyse_file(
     -------
     dict
         ``file``, ``cells`` (one dict per cell: ``cell`` row, ``sweeps`` rows, ``spikes`` rows,
-        ``figure`` file name or None), ``error`` (None, or ``{"stage", "message"}`` when the file
-        could not be read), ``seconds`` per stage.
+        ``figure`` file name or None, ``figure_sha256`` its digest or None, ``figure_error``
+        why it was not drawn or None), ``error`` (None, or ``{"stage", "message"}`` when the
+        file could not be read), ``seconds`` per stage.
     """
     from pipeline.readers import open_recordings
 
@@ -89,6 +90,7 @@ def analyse_recording(
             "sweeps": [],
             "spikes": [],
             "figure": None,
+            "figure_sha256": None,
             "traceback": traceback.format_exc(limit=8),
         }
 
@@ -145,10 +147,11 @@ def _analyse(
     if figure_dir is not None:
         t0 = time.perf_counter()
         try:
-            figure = _figure(recording, epochs, cell_fit, verdict, spikes, figure_dir, config)
+            drawn = _figure(recording, epochs, cell_fit, verdict, spikes, figure_dir, config)
             # the cache keeps the figure's digest: a PNG drawn since under another config
             # (figures are named by cell id alone) is not taken for this result's
-            figure_sha256 = file_sha256(Path(figure_dir) / figure)
+            figure_sha256 = file_sha256(Path(figure_dir) / drawn)
+            figure = drawn
         except Exception as exc:  # a drawing problem must not cost the cell its numbers
             figure_error = f"{recording.cell_id}: figure not drawn ({type(exc).__name__}: {exc})"
         _add(timings, "figures", time.perf_counter() - t0)

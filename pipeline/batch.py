@@ -338,8 +338,8 @@ def _figures_present(result: dict[str, Any], figure_dir: str | None) -> bool:
         return True
     return all(
         c.get("figure")
-        and c.get("figure_sha256")
-        and _sha_or_none(Path(figure_dir) / c["figure"]) == c["figure_sha256"]
+        and (Path(figure_dir) / c["figure"]).is_file()  # a regular file: never wait on a FIFO
+        and _sha_or_none(Path(figure_dir) / c["figure"]) == c.get("figure_sha256")
         for c in result["cells"]
     )
 
@@ -397,7 +397,8 @@ def _preload(context, figures: bool) -> None:
 def _execute_pool(todo, config, figure_dir, n, hashes) -> Iterator[tuple[int, dict]]:
     """The process pool. A worker that dies (a crash in a C library, an OOM kill) breaks the
     whole pool; the files that were then unfinished are re-run one per fresh process, so only
-    the file that kills its worker is lost."""
+    the file that kills its worker is lost. Files not yet submitted when the pool broke (it
+    waits for each one's hash on spawn and forkserver) go to a new pool: none of them did it."""
     import multiprocessing
     from concurrent.futures.process import BrokenProcessPool
 
@@ -405,14 +406,14 @@ def _execute_pool(todo, config, figure_dir, n, hashes) -> Iterator[tuple[int, di
     _preload(context, figure_dir is not None)
     if context.get_start_method() == "fork":
         hashes.finish()  # the solo pools below fork later still: no thread of ours runs then
-    unfinished = []
+    unfinished, unsubmitted = [], []
     with ProcessPoolExecutor(max_workers=n, mp_context=context) as pool:
         futures = {}
         for k, job in enumerate(todo):
             try:
                 futures[_submit(pool.submit, job, hashes, config, figure_dir)] = job
             except BrokenProcessPool:  # a worker died while the later files were hashed
-                unfinished.extend(todo[k:])
+                unsubmitted = todo[k:]  # a fresh pool never breaks at its first submit
                 break
         _import_report_modules(figure_dir is not None)
         for future in as_completed(futures):
@@ -423,6 +424,8 @@ def _execute_pool(todo, config, figure_dir, n, hashes) -> Iterator[tuple[int, di
                 unfinished.append(job)
             except Exception as exc:
                 yield job.index, _worker_failed(job, exc)
+    if unsubmitted:
+        yield from _execute_pool(unsubmitted, config, figure_dir, n, hashes)
     if unfinished:
         log.warning("a worker died; re-running %d unfinished file(s) one by one", len(unfinished))
     for job in sorted(unfinished, key=lambda j: j.index):

@@ -86,7 +86,26 @@ def _well_formed(entry: dict[str, Any]) -> bool:
             return False
         if not all(isinstance(r, dict) for k in ("sweeps", "spikes") for r in cell[k]):
             return False
+        if not _plain_figure(cell.get("figure"), cell.get("figure_sha256")):
+            return False
     return all("cell_id" in cell["cell"] for cell in cells)
+
+
+_FIGURE_NAME = re.compile(r"[^/\\\x00]+\.png")  # a name in the figure folder, no path
+_SHA256 = re.compile(r"[0-9a-f]{64}")
+
+
+def _plain_figure(name: Any, digest: Any) -> bool:
+    """A figure as the analysis records it: none, or a PNG's name with its sha256 (a tampered
+    entry must not send the batch to read some other file, such as a FIFO)."""
+    if name is None:
+        return digest is None
+    return (
+        isinstance(name, str)
+        and _FIGURE_NAME.fullmatch(name) is not None
+        and isinstance(digest, str)
+        and _SHA256.fullmatch(digest) is not None
+    )
 
 
 def store_entry(outdir: str | Path, key: str, result: dict[str, Any]) -> None:

@@ -399,8 +399,8 @@ def test_a_pool_hashes_before_each_submit_and_survives_a_worker_dying_meanwhile(
     day, tmp_path, monkeypatch
 ):
     # spawn and forkserver pools (macOS, Linux from Python 3.14) submit each file once it is
-    # hashed; a worker dying meanwhile breaks the pool at the next submit, and the files not
-    # yet submitted must still be re-run one by one, as those in flight are
+    # hashed; a worker dying meanwhile breaks the pool at the next submit: the files not yet
+    # submitted go to a new pool (none of them broke it), those in flight are re-run solo
     import multiprocessing
     import threading
     from concurrent.futures import Future
@@ -409,18 +409,23 @@ def test_a_pool_hashes_before_each_submit_and_survives_a_worker_dying_meanwhile(
 
     from pipeline import batch
 
-    events = []
+    events, pools = [], []
+    first_in_second_pool = threading.Event()
     real_hash = cache.file_sha256
 
-    def hash_and_note(path):  # slow: a submit that did not wait would come first
-        threading.Event().wait(0.2)
+    def hash_and_note(path):
+        if Path(path).name == "c02.nwb":  # hashed only once c01 is done in the second pool:
+            first_in_second_pool.wait(timeout=10)  # a submit that did not wait comes first
+            threading.Event().wait(0.2)
         digest = real_hash(path)
         events.append(("hashed", Path(path).name))
         return digest
 
-    class Pool:  # runs jobs in this process; the shared pool breaks at its second submit
+    class Pool:  # runs jobs in this process; the first shared pool breaks at its 2nd submit
         def __init__(self, max_workers, mp_context):
-            self.solo = max_workers == 1
+            self.kind = "solo" if max_workers == 1 else f"shared {len(pools)}"
+            self.submitted = 0
+            pools.append(self)
 
         def __enter__(self):
             return self
@@ -429,12 +434,14 @@ def test_a_pool_hashes_before_each_submit_and_survives_a_worker_dying_meanwhile(
             return False
 
         def submit(self, fn, *args):
-            name = Path(fn.__self__.path).name
-            if not self.solo and any(e[0] == "submitted" for e in events):
+            if self.kind == "shared 0" and self.submitted == 1:
                 raise BrokenProcessPool("a child process terminated abruptly")
-            events.append(("submitted", name))
+            self.submitted += 1
+            events.append(("submitted", Path(fn.__self__.path).name, self.kind))
             done = Future()
             done.set_result(fn(*args))
+            if self.kind == "shared 1":
+                first_in_second_pool.set()
             return done
 
     spawn = multiprocessing.get_context("spawn")
@@ -444,10 +451,10 @@ def test_a_pool_hashes_before_each_submit_and_survives_a_worker_dying_meanwhile(
     result = run_batch([day], out=tmp_path / "out", workers=2, figures=False, progress=False)
     assert result.exit_status == 0
     assert list(result.cells["status"]) == ["ok", "ok", "ok"]
-    submitted = [name for kind, name in events if kind == "submitted"]
-    assert sorted(submitted) == ["c00.nwb", "c01.nwb", "c02.nwb"]  # two of them re-run solo
-    for name in submitted:
-        assert events.index(("hashed", name)) < events.index(("submitted", name))
+    submitted = [e[1:] for e in events if e[0] == "submitted"]
+    assert submitted == [("c00.nwb", "shared 0"), ("c01.nwb", "shared 1"), ("c02.nwb", "shared 1")]
+    for name, _ in submitted:
+        assert events.index(("hashed", name)) < events.index(("submitted", name, _))
 
 
 def test_a_re_run_with_a_new_file_of_the_same_name_renames_the_cached_cell(day, tmp_path):
@@ -483,6 +490,21 @@ def test_a_figure_drawn_under_another_config_is_drawn_again(day, tmp_path):
     # untouched figures are taken from the cache
     third = run_batch([day], out=out, workers=1, progress=False)
     assert third.info["counts"]["cached"] == 3
+
+
+def test_a_cache_entry_naming_a_figure_outside_the_figure_folder_is_not_used(day, tmp_path):
+    # a tampered entry must not make the batch read some other file (a FIFO, /dev/zero...)
+    out = tmp_path / "out"
+    run_batch([day], out=out, workers=1, progress=False)
+    outside = tmp_path / "elsewhere.png"
+    shutil.copyfile(out / "figures" / "c00.png", outside)
+    for entry in (out / cache.CACHE_DIR).glob("*.json"):
+        data = json.loads(entry.read_text())
+        if data.get("cells") and data["cells"][0]["cell"]["cell_id"] == "c00":
+            data["cells"][0]["figure"] = "../../elsewhere.png"  # same bytes as its digest
+            entry.write_text(json.dumps(data))
+    again = run_batch([day], out=out, workers=1, progress=False)
+    assert (again.info["counts"]["cached"], again.info["counts"]["analysed"]) == (2, 1)
 
 
 def test_files_with_the_same_bytes_keep_their_own_rows_on_a_re_run(day, tmp_path):
