@@ -145,8 +145,8 @@ def timed(cmd: list[str], **kwargs) -> tuple[float, int, float, int]:
 
         def children(root):
             # each thread's children file (Linux 3.5+): a few reads per sample. Scanning all of
-            # /proc instead costs ~3 ms of CPU per parent, 18% of a core at -j 2, which the
-            # run being measured then lacks.
+            # /proc instead took ~3 ms of CPU per parent each sample, which a -j 2 run (both
+            # cores busy) lacked: 0.12 s a run (DEVELOPERS.md).
             found, todo = [], [root]
             while todo:
                 parent = todo.pop()

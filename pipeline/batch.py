@@ -244,13 +244,12 @@ def _analyse_all(files, config, outdir, figures, workers, scheduler, progress):
     figure_dir = str(outdir / "figures") if figures else None
     prefixes = id_prefixes(files)
     hashes = _Hashes(files)
+
+    def key(i: int) -> str | None:
+        file_hash = hashes.get(i)
+        return cache.entry_key(file_hash, digest, str(files[i]), prefixes[i]) if file_hash else None
+
     try:
-
-        def key(i: int) -> str | None:
-            file_hash = hashes.get(i)
-            source = f"{prefixes[i]}:{files[i]}"
-            return cache.entry_key(file_hash, digest, source) if file_hash else None
-
         results: dict[int, dict[str, Any]] = {}
         todo: list[Job] = []
         look_up = cache.has_entries(outdir)
@@ -337,11 +336,14 @@ def _figures_present(result: dict[str, Any], figure_dir: str | None) -> bool:
     if figure_dir is None:
         return True
     return all(
-        c.get("figure")
-        and (Path(figure_dir) / c["figure"]).is_file()  # a regular file: never wait on a FIFO
-        and _sha_or_none(Path(figure_dir) / c["figure"]) == c.get("figure_sha256")
+        c.get("figure") and _same_file(Path(figure_dir) / c["figure"], c.get("figure_sha256"))
         for c in result["cells"]
     )
+
+
+def _same_file(path: Path, sha256: str | None) -> bool:
+    # a regular file only: hashing a FIFO or a device would wait or read for ever
+    return path.is_file() and _sha_or_none(path) == sha256
 
 
 def _execute(todo, config, figure_dir, workers, scheduler, hashes) -> Iterator[tuple[int, dict]]:

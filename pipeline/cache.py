@@ -40,13 +40,13 @@ def file_sha256(path: str | Path) -> str:
         return hashlib.file_digest(fh, "sha256").hexdigest()
 
 
-def entry_key(file_hash: str, config_digest: str, source: str = "") -> str:
+def entry_key(file_hash: str, config_digest: str, path: str = "", id_prefix: str = "") -> str:
     """The cache key of one input under one config and version.
 
-    ``source`` names the input as its results do (its path and cell-id prefix): two files with
-    the same bytes under other names give other rows, so they must not share an entry.
+    ``path`` and ``id_prefix`` name the input as its rows do: two files with the same bytes
+    under other names give other rows, so they must not share an entry.
     """
-    text = f"{file_hash}:{config_digest}:{__version__}:{source}"
+    text = f"{file_hash}:{config_digest}:{__version__}:{id_prefix}:{path}"
     return hashlib.sha256(text.encode()).hexdigest()[:32]
 
 

@@ -350,7 +350,7 @@ def test_a_fresh_folder_hashes_each_file_before_its_analysis_but_not_all_first(
     digest = result.info["config_digest"]
     for path, listed in zip(files, result.info["inputs"], strict=True):
         assert listed == {"file": str(path), "sha256": real_hash(path)}
-        key = cache.entry_key(real_hash(path), digest, f":{path}")
+        key = cache.entry_key(real_hash(path), digest, str(path))
         assert cache.load_entry(out, key) is not None
     monkeypatch.setattr("pipeline.batch.analyse_file", None)  # a re-run must not analyse
     again = run_batch([day], out=out, workers=1, figures=False, progress=False)
