@@ -11,6 +11,7 @@ from __future__ import annotations
 import math
 import time
 import traceback
+from collections.abc import Sequence
 from dataclasses import replace
 from pathlib import Path
 from typing import Any
@@ -22,7 +23,12 @@ from pipeline.recording import Recording
 
 
 def analyse_file(
-    path: str, config: Config, figure_dir: str | None = None, *, id_prefix: str = ""
+    path: str,
+    config: Config,
+    figure_dir: str | None = None,
+    *,
+    id_prefix: str = "",
+    avoid: Sequence[str] = (),
 ) -> dict[str, Any]:
     """Analyse every cell of one input file.
 
@@ -35,8 +41,11 @@ def analyse_file(
     figure_dir : str, optional
         Folder for the per-cell PNG figures; None writes no figures.
     id_prefix : str
-        Put before every cell id (the batch uses it when files in different folders share a
-        stem).
+        Put before every cell id (the batch uses it when files share a stem).
+    avoid : sequence of str
+        Other inputs' cell ids. A file of several cells, one of whose ``<stem>-<electrode>``
+        ids is among them, names its cells by its file name instead (``pair.nwb-e0`` beside
+        ``pair-e0.nwb``).
 
     Returns
     -------
@@ -58,8 +67,7 @@ def analyse_file(
         message = f"{path}: unexpected {type(exc).__name__}: {exc}"
         return _failed(path, id_prefix, "read", message, exc)
     timings["read"] = time.perf_counter() - start
-    if id_prefix:
-        recordings = [replace(r, cell_id=id_prefix + r.cell_id) for r in recordings]
+    recordings = _named(recordings, Path(path), id_prefix, avoid)
     cells = [analyse_recording(rec, config, figure_dir, timings) for rec in recordings]
     return {"file": str(path), "cells": cells, "error": None, "seconds": timings}
 
@@ -240,6 +248,18 @@ def _figure(recording, epochs, cell_fit, verdict, spikes, figure_dir, config) ->
         ),
     )
     return name
+
+
+def _named(
+    recordings: list[Recording], path: Path, id_prefix: str, avoid: Sequence[str]
+) -> list[Recording]:
+    """The recordings with the batch's cell ids (see :func:`analyse_file`)."""
+    named = [replace(r, cell_id=id_prefix + r.cell_id) for r in recordings]
+    if len(named) > 1 and any(r.cell_id in avoid for r in named):
+        # several cells are "<stem>-<electrode>": the file's name keeps them off the other's id
+        cut = len(id_prefix) + len(path.stem)
+        named = [replace(r, cell_id=id_prefix + path.name + r.cell_id[cut:]) for r in named]
+    return named
 
 
 def _failed(

@@ -243,11 +243,14 @@ def _analyse_all(files, config, outdir, figures, workers, scheduler, progress):
     digest = config.digest()
     figure_dir = str(outdir / "figures") if figures else None
     prefixes = id_prefixes(files)
+    avoid = ids_to_avoid(files, prefixes)
     hashes = _Hashes(files)
 
     def key(i: int) -> str | None:
         file_hash = hashes.get(i)
-        return cache.entry_key(file_hash, digest, str(files[i]), prefixes[i]) if file_hash else None
+        if not file_hash:
+            return None
+        return cache.entry_key(file_hash, digest, str(files[i]), prefixes[i], avoid[i])
 
     try:
         results: dict[int, dict[str, Any]] = {}
@@ -258,7 +261,7 @@ def _analyse_all(files, config, outdir, figures, workers, scheduler, progress):
             if hit is not None and _figures_present(hit, figure_dir):
                 results[i] = hit
             else:
-                todo.append(Job(i, str(path), prefixes[i]))
+                todo.append(Job(i, str(path), prefixes[i], avoid[i]))
         stats = {"cached": len(results), "analysed": len(todo)}
         log.info("%d file(s) from the cache, %d to analyse", len(results), len(todo))
         bar = _progress(len(todo), progress)
@@ -299,21 +302,26 @@ class _Hashes:
 
 @dataclass(frozen=True)
 class Job:
-    """One file to analyse: its place in the input order and cell-id prefix."""
+    """One file to analyse: its place in the input order, cell-id prefix and the other
+    inputs' ids its cells must not take."""
 
     index: int
     path: str
     id_prefix: str = ""
+    avoid: tuple[str, ...] = ()
 
     def run(self, config: Config, figure_dir: str | None) -> dict[str, Any]:
-        return analyse_file(self.path, config, figure_dir, id_prefix=self.id_prefix)
+        return analyse_file(
+            self.path, config, figure_dir, id_prefix=self.id_prefix, avoid=self.avoid
+        )
 
 
 def id_prefixes(files: Sequence[Path]) -> list[str]:
-    """Cell-id prefixes that keep ids unique when files in different folders share a stem.
+    """Cell-id prefixes that keep ids unique when files share a stem.
 
     A stem seen once keeps its plain id (the file stem, as DESIGN says); a repeated stem gets
-    the names of its parent folders, as many as make it unique (``rig1-cell01``).
+    the names of its parent folders, as many as make it unique (``rig1-cell01``), and, where
+    files of that stem share a folder, the file's type too (``day-csv-cell01``).
     """
     stems: dict[str, list[Path]] = {}
     for path in files:
@@ -325,10 +333,29 @@ def id_prefixes(files: Sequence[Path]) -> list[str]:
             out.append("")
             continue
         depth = 1
-        while depth < len(path.parts) and len({p.parts[-1 - depth :] for p in group}) < len(group):
+        while depth < len(path.parts) - 1 and len(
+            {_id_parts(p, depth, group) for p in group}
+        ) < len(group):
             depth += 1
-        out.append("-".join(path.parts[-1 - depth : -1]) + "-")
+        out.append("-".join(_id_parts(path, depth, group)) + "-")
     return out
+
+
+def _id_parts(path: Path, depth: int, group: Sequence[Path]) -> tuple[str, ...]:
+    """The last ``depth`` folders of ``path``, and its type when another file of the group
+    shares its folder (folders alone cannot tell them apart)."""
+    folders = path.parts[-1 - depth : -1]
+    shared = any(p.parent == path.parent for p in group if p != path)
+    return (*folders, path.suffix.lstrip(".")) if shared else folders
+
+
+def ids_to_avoid(files: Sequence[Path], prefixes: Sequence[str]) -> list[tuple[str, ...]]:
+    """For each file, the other inputs' cell ids that its own ``<stem>-<electrode>`` ids could
+    equal (``pair-e0`` of ``pair-e0.nwb``, for ``pair.nwb``); empty for almost every file."""
+    bases = [prefix + path.stem for path, prefix in zip(files, prefixes, strict=True)]
+    return [
+        tuple(sorted({other for other in bases if other.startswith(base + "-")})) for base in bases
+    ]
 
 
 def _figures_present(result: dict[str, Any], figure_dir: str | None) -> bool:
@@ -544,6 +571,7 @@ def _assemble(files, results, run, config, outdir, sheet, figures):
     cell_rows, sweep_rows, spike_rows, errors, fig_map = [], [], [], [], {}
     figure_problems: list[str] = []
     seconds: dict[str, float] = {}
+    repeated = _repeated_ids(results)
     for result in results:
         for stage, s in (result.get("seconds") or {}).items():
             seconds[stage] = seconds.get(stage, 0.0) + s
@@ -552,6 +580,11 @@ def _assemble(files, results, run, config, outdir, sheet, figures):
             cell_rows.append(_error_row(result))
             continue
         for cell in result["cells"]:
+            if cell["cell"]["cell_id"] in repeated:
+                row = _repeated_row(cell["cell"], repeated)
+                errors.append({"file": result["file"], "stage": "ids", "message": row["status"]})
+                cell_rows.append(row)
+                continue
             cell_rows.append(dict(cell["cell"]))
             sweep_rows.extend(cell["sweeps"])
             spike_rows.extend(cell["spikes"])
@@ -620,6 +653,41 @@ def _rule_column_problems(config: Config, cells, sweeps) -> list[str]:
             f"table{hint}"
         )
     return out
+
+
+def _repeated_ids(results: Sequence[dict[str, Any]]) -> dict[str, list[str]]:
+    """Cell ids that more than one cell of the day was given, with the file of each such cell.
+
+    The batch's prefixes and ``avoid`` lists leave none but in contrived cases (electrode
+    names that hold a dash and the rest of another file's stem, a prefixed id equal to
+    another file's stem).
+    """
+    files: dict[str, list[str]] = {}
+    for result in results:
+        if result["error"]:
+            continue
+        for cell in result["cells"]:
+            files.setdefault(cell["cell"]["cell_id"], []).append(result["file"])
+    return {cell_id: where for cell_id, where in files.items() if len(where) > 1}
+
+
+def _repeated_row(row: dict[str, Any], repeated: dict[str, list[str]]) -> dict[str, Any]:
+    """A cell whose id another cell also has: a failed row (its figure, sheet row and sweep
+    rows could be the other cell's), saying which files to rename."""
+    cell_id, source = row["cell_id"], row.get("source_file", "")
+    others = [f for f in repeated[cell_id] if f != source] or repeated[cell_id]
+    message = (
+        f"{source}: cell id {cell_id!r} is also that of a cell in {', '.join(others)}; rename "
+        "one of the files so that every cell has its own id"
+    )
+    keep = ("cell_id", "source_file", "electrode", "n_sweeps")
+    return {
+        **{k: row[k] for k in keep if k in row},
+        "n_sweeps_used": 0,
+        "qc_pass": False,
+        "qc_reasons": message,
+        "status": message,
+    }
 
 
 def _error_row(result: dict[str, Any]) -> dict[str, Any]:

@@ -12,6 +12,7 @@ import hashlib
 import json
 import os
 import re
+from collections.abc import Sequence
 from pathlib import Path
 from typing import Any
 
@@ -40,13 +41,22 @@ def file_sha256(path: str | Path) -> str:
         return hashlib.file_digest(fh, "sha256").hexdigest()
 
 
-def entry_key(file_hash: str, config_digest: str, path: str = "", id_prefix: str = "") -> str:
+def entry_key(
+    file_hash: str,
+    config_digest: str,
+    path: str = "",
+    id_prefix: str = "",
+    avoid: Sequence[str] = (),
+) -> str:
     """The cache key of one input under one config and version.
 
-    ``path`` and ``id_prefix`` name the input as its rows do: two files with the same bytes
-    under other names give other rows, so they must not share an entry.
+    ``path``, ``id_prefix`` and ``avoid`` (the other inputs' ids its cells must not take) name
+    the input as its rows do: two files with the same bytes under other names give other rows,
+    so they must not share an entry.
     """
     text = f"{file_hash}:{config_digest}:{__version__}:{id_prefix}:{path}"
+    if avoid:  # only then: the keys of every other input stay as they were
+        text += ":avoid:" + "\n".join(avoid)
     return hashlib.sha256(text.encode()).hexdigest()[:32]
 
 

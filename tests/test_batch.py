@@ -574,3 +574,102 @@ def test_an_interrupted_run_stops_hashing(day, tmp_path, monkeypatch):
     # the first file was hashed (it is before its analysis); the third never is
     assert 1 <= len(hashed) <= 2
     assert not any(t.name.startswith("patchbatch-sha256") for t in threading.enumerate())
+
+
+def _two_cells(path, electrodes, seeds=(1, 2)):
+    """A file holding two short passive cells, recorded on ``electrodes``."""
+    from dataclasses import replace as with_
+
+    from day_factory import RIG, SHORT
+
+    from pipeline.simulate import CellModel, simulate_cell
+    from pipeline.writers import write_nwb
+
+    recs = []
+    for electrode, seed, area in zip(electrodes, seeds, (9000e-12, 15000e-12), strict=True):
+        model = CellModel(soma_area_m2=area, rm_ohm_m2=2.0)
+        rec = simulate_cell(model, SHORT, RIG, seed=seed, cell_id=electrode, source_file=str(path))
+        recs.append(with_(rec, electrode=electrode))
+    write_nwb(recs, path, identifier=path.stem, subject_id="A0")
+    return path
+
+
+def test_a_file_of_one_cell_named_like_another_files_cell_keeps_every_cell_apart(day, tmp_path):
+    # pair.nwb holds electrodes e0 and e1 ("pair-e0", "pair-e1"); pair-e0.nwb holds one cell,
+    # "pair-e0" by its stem. Each cell must keep its own row, figure and cache entry.
+    folder = tmp_path / "day"
+    folder.mkdir()
+    _two_cells(folder / "pair.nwb", ("e0", "e1"))
+    shutil.copyfile(day / "c00.nwb", folder / "pair-e0.nwb")
+    out = tmp_path / "out"
+    first = run_batch([folder], out=out, workers=1, progress=False)
+    assert first.exit_status == 0
+    assert list(first.cells["cell_id"]) == ["pair-e0", "pair.nwb-e0", "pair.nwb-e1"]
+    assert first.cells["status"].eq("ok").all()
+    rin = first.cells.set_index("cell_id")["rin_mohm"]
+    assert abs(rin["pair-e0"] - rin["pair.nwb-e0"]) > 10  # two different cells
+    figures = {p.name: p.read_bytes() for p in (out / "figures").glob("*.png")}
+    assert sorted(figures) == ["pair-e0.png", "pair.nwb-e0.png", "pair.nwb-e1.png"]
+    assert figures["pair-e0.png"] != figures["pair.nwb-e0.png"]
+    assert set(first.sweeps["cell_id"]) == {"pair-e0", "pair.nwb-e0", "pair.nwb-e1"}
+    again = run_batch([folder], out=out, workers=1, progress=False)
+    assert again.info["counts"]["cached"] == 2
+    pd.testing.assert_frame_equal(again.cells, first.cells)
+    # without pair-e0.nwb beside it, pair.nwb names its cells by its stem, as DESIGN says
+    (folder / "pair-e0.nwb").unlink()
+    alone = run_batch([folder], out=tmp_path / "alone", workers=1, progress=False)
+    assert list(alone.cells["cell_id"]) == ["pair-e0", "pair-e1"]
+
+
+def test_files_of_one_stem_in_one_folder_get_ids_that_name_their_type(day, tmp_path):
+    from day_factory import write_csv_cell
+
+    folder = tmp_path / "day"
+    folder.mkdir()
+    shutil.copyfile(day / "c00.nwb", folder / "c00.nwb")
+    write_csv_cell(folder / "c00.csv")
+    (folder / "rig2").mkdir()
+    shutil.copyfile(day / "c01.nwb", folder / "rig2" / "c00.nwb")
+    result = run_batch([folder], out=tmp_path / "out", workers=1, progress=False)
+    assert list(result.cells["cell_id"]) == ["day-csv-c00", "day-nwb-c00", "rig2-c00"]
+    assert len(list((tmp_path / "out" / "figures").glob("*.png"))) == 3
+
+
+def test_cell_ids_that_still_repeat_fail_with_the_files_to_rename(tmp_path):
+    # contrived: electrode names with a dash. a.nwb's "b-c" and a-b.nwb's "c" are both "a-b-c".
+    folder = tmp_path / "day"
+    folder.mkdir()
+    _two_cells(folder / "a.nwb", ("b-c", "x"))
+    _two_cells(folder / "a-b.nwb", ("c", "d"), seeds=(3, 4))
+    out = tmp_path / "out"
+    result = run_batch([folder], out=out, workers=1, progress=False)
+    assert result.exit_status == 1
+    cells = result.cells.set_index("source_file")
+    ids = list(result.cells["cell_id"])
+    assert sorted(ids) == ["a-b-c", "a-b-c", "a-b-d", "a-x"]
+    repeated = result.cells[result.cells["cell_id"] == "a-b-c"]
+    for source, status in zip(repeated["source_file"], repeated["status"], strict=True):
+        other = str(folder / ("a.nwb" if source.endswith("a-b.nwb") else "a-b.nwb"))
+        assert "cell id 'a-b-c' is also that of a cell in " + other in status
+        assert "rename one of the files" in status
+    assert not repeated["qc_pass"].any()
+    assert "a-b-c" not in set(result.sweeps["cell_id"])  # whose rows they are is unknown
+    assert cells.loc[str(folder / "a.nwb")].shape[0] == 2
+    page = (out / "index.html").read_text()
+    assert 'figures/a-b-c.png"' not in page
+    assert sum(e["stage"] == "ids" for e in result.info["errors"]) == 2
+
+
+def test_the_cache_key_of_a_file_with_no_id_to_avoid_is_unchanged():
+    import hashlib
+
+    from pipeline import __version__
+
+    text = f"h:c:{__version__}:p-:/d/x.nwb"
+    assert (
+        cache.entry_key("h", "c", "/d/x.nwb", "p-")
+        == hashlib.sha256(text.encode()).hexdigest()[:32]
+    )
+    assert cache.entry_key("h", "c", "/d/x.nwb", "p-", ("x-e0",)) != cache.entry_key(
+        "h", "c", "/d/x.nwb", "p-"
+    )
