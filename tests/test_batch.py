@@ -673,3 +673,47 @@ def test_the_cache_key_of_a_file_with_no_id_to_avoid_is_unchanged():
     assert cache.entry_key("h", "c", "/d/x.nwb", "p-", ("x-e0",)) != cache.entry_key(
         "h", "c", "/d/x.nwb", "p-"
     )
+
+
+def _kept_figure_state() -> tuple[bool, bool]:
+    from pipeline.report import figures
+
+    return bool(getattr(figures._KEPT, "value", None)), bool(
+        getattr(figures._RENDERERS, "value", None)
+    )
+
+
+@pytest.mark.skipif(
+    "fork" not in __import__("multiprocessing").get_all_start_methods(), reason="no fork here"
+)
+def test_a_forked_worker_keeps_none_of_the_parents_figures_or_renderers():
+    # Their text layouts hold the parent's fonts, read by seek and read on shared descriptors:
+    # two workers drawing at once through them read each other's bytes.
+    import multiprocessing
+    from concurrent.futures import ProcessPoolExecutor
+
+    from pipeline.report import figures
+
+    figures._KEPT.value = {"a kept figure": object()}  # as after drawing in this process
+    figures._RENDERERS.value = {"a kept renderer": object()}
+    try:
+        assert _kept_figure_state() == (True, True)
+        with ProcessPoolExecutor(1, mp_context=multiprocessing.get_context("fork")) as pool:
+            assert pool.submit(_kept_figure_state).result() == (False, False)
+        assert _kept_figure_state() == (True, True)  # the parent keeps its own
+    finally:
+        figures.clear_figure_cache()
+
+
+def test_figures_are_all_drawn_by_a_pool_after_a_run_in_this_process(day, tmp_path):
+    # The race above lost figures ("FT_Load_Glyph ... invalid outline") when a program ran an
+    # in-process batch and then a pool; it struck most runs of this test before the fix.
+    run_batch([day], out=tmp_path / "first", workers=1, progress=False)
+    folder = tmp_path / "day"
+    for sub in ("rig1", "rig2", "rig3"):
+        (folder / sub).mkdir(parents=True)
+        for name in ("c00", "c01", "c02"):
+            shutil.copyfile(day / f"{name}.nwb", folder / sub / f"{name}.nwb")
+    result = run_batch([folder], out=tmp_path / "pool", workers=2, progress=False)
+    assert [w for w in result.info["warnings"] if "figure not drawn" in w] == []
+    assert len(list((tmp_path / "pool" / "figures").glob("*.png"))) == 9

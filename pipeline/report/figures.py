@@ -20,6 +20,7 @@ import contextlib
 import gc
 import hashlib
 import math
+import os
 import re
 import struct
 import textwrap
@@ -1343,6 +1344,15 @@ def clear_figure_cache() -> None:
     """Forget this thread's kept figures and renderers: the next figure is built anew."""
     _KEPT.value = {}
     _RENDERERS.value = {}
+
+
+# A forked child draws with fonts of its own. The kept renderers hold the parent's fonts (in
+# their glyph layouts), which read glyphs lazily by seek and read on the font file; a child
+# shares those files' offsets with its parent and siblings, so two workers loading glyphs at
+# once read each other's bytes (FreeType: "invalid outline", "too many hints") and lose the
+# figure. matplotlib clears its own font cache at a fork for the same reason.
+if hasattr(os, "register_at_fork"):
+    os.register_at_fork(after_in_child=clear_figure_cache)
 
 
 def _kept_figure(cfg: FigureSettings, with_spikes: bool) -> _KeptFigure:
