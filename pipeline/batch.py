@@ -704,26 +704,40 @@ def _error_row(result: dict[str, Any]) -> dict[str, Any]:
 
 
 def _join_sheet(cell_rows: list[dict[str, Any]], sheet: Sheet | None) -> list[str]:
-    """Add the sheet's columns to each cell row; report cells and rows that found no partner."""
+    """Add the sheet's columns to each cell row; report cells and rows that found no partner.
+
+    A row that is the best match of cells of several files (``cell01.nwb`` in ``rig1/`` and
+    ``rig2/``) is joined to none of them: which one it meant is a guess.
+    """
     if sheet is None:
         return []
-    warnings, matched = [], set()
-    for row in cell_rows:
-        hit = sheet.lookup(str(row["cell_id"]), str(row["source_file"]))
-        if hit is None:
-            warnings.append(
-                f"{sheet.path}: no row for cell {row['cell_id']} ({row['source_file']})"
-            )
+    hits = [sheet.lookup(str(row["cell_id"]), str(row["source_file"])) for row in cell_rows]
+    files: dict[int, list[str]] = {}
+    for row, hit in zip(cell_rows, hits, strict=True):
+        if hit is not None:
+            files.setdefault(hit[0], []).append(str(row["source_file"]))
+    shared = {index: sorted(set(f)) for index, f in files.items() if len(set(f)) > 1}
+    warnings = [
+        f"{sheet.path}: {sheet.describe_row(index)} matches several files ({', '.join(f)}); "
+        "joined to none: give each file's row the folders that tell them apart "
+        "(rig1/cell01.nwb)"
+        for index, f in shared.items()
+    ]
+    for row, hit in zip(cell_rows, hits, strict=True):
+        if hit is None or hit[0] in shared:
+            if hit is None:
+                warnings.append(
+                    f"{sheet.path}: no row for cell {row['cell_id']} ({row['source_file']})"
+                )
             row.update({c: "" for c in sheet.columns if c not in row})
             continue
-        matched.add(hit[0])
         for column, value in hit[1].items():
             if column in row and column not in ("cell_id", "source_file"):
                 warnings.append(f"{sheet.path}: column {column!r} clashes with a result column")
                 continue
             row[column] = value
     for index in range(len(sheet.rows)):
-        if index not in matched:
+        if index not in files:
             warnings.append(f"{sheet.path}: {sheet.describe_row(index)} matches no input file")
     return list(dict.fromkeys(warnings))
 

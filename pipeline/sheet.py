@@ -1,12 +1,15 @@
 """The metadata sheet: a CSV that adds experimental columns (condition, animal, slice...) to cells.
 
 The sheet is keyed by a ``cell_id`` column or a ``file`` column (file name, with or without its
-extension, or a path relative to the sheet). A ``cell_id`` match wins over a ``file`` match, so a
-file holding several cells can have one row per cell.
+extension, after as many of its folders as tell it from other files: ``rig2/cell01.nwb``; or a
+whole path). A ``file`` value matches a file whose path ends with it, and the most specific row
+wins. A ``cell_id`` match wins over a ``file`` match, so a file holding several cells can have
+one row per cell.
 """
 
 from __future__ import annotations
 
+import re
 from dataclasses import dataclass, field
 from pathlib import Path
 from typing import TYPE_CHECKING
@@ -41,20 +44,39 @@ class Sheet:
     rows: tuple[dict[str, str], ...]
     columns: tuple[str, ...]
     _by_cell: dict[str, int] = field(default_factory=dict, repr=False)
-    _by_file: dict[str, int] = field(default_factory=dict, repr=False)
+    # last path part of a ``file`` value (a name or a stem) -> (row index, its path parts)
+    _by_file: dict[str, list[tuple[int, tuple[str, ...]]]] = field(default_factory=dict, repr=False)
 
     def lookup(self, cell_id: str, source_file: str) -> tuple[int, dict[str, str]] | None:
-        """The sheet row (index, values) for a cell, or None when the sheet does not name it."""
+        """The sheet row (index, values) for a cell, or None when the sheet does not name it.
+
+        A ``cell_id`` row first; else the ``file`` row that names the most of the file's path
+        (its folders, then its name or stem): ``rig2/cell01.nwb`` is the row of
+        ``/data/day/rig2/cell01.nwb``, never of ``.../rig1/cell01.nwb``.
+        """
         index = self._by_cell.get(cell_id)
         if index is None:
-            p = Path(source_file)
-            for key in (p.name, p.stem, str(p)):
-                if key in self._by_file:
-                    index = self._by_file[key]
-                    break
+            index = self._file_row(source_file)
         if index is None:
             return None
         return index, {c: self.rows[index].get(c, "") for c in self.columns}
+
+    def _file_row(self, source_file: str) -> int | None:
+        parts = path_parts(source_file)
+        if not parts:
+            return None
+        folders, name = parts[:-1], parts[-1]
+        stem = Path(name).stem
+        best: tuple[int, int, int] | None = None  # (folders named, exact name, -row) of a match
+        for last in dict.fromkeys((name, stem)):
+            for index, row in self._by_file.get(last, []):
+                wanted = row[:-1]
+                if wanted and folders[-len(wanted) :] != wanted:
+                    continue
+                rank = (len(wanted), int(row[-1] == name), -index)
+                if best is None or rank > best:
+                    best = rank
+        return None if best is None else -best[2]
 
     def describe_row(self, index: int) -> str:
         """How to name a row in a message (its key values)."""
@@ -99,7 +121,7 @@ def read_sheet(path: str | Path) -> Sheet:
     by_key = {k: _index(rows, k, where) for k in keys}
     columns = tuple(c for c in frame.columns if c not in KEY_COLUMNS)
     return Sheet(
-        where, rows, columns, by_key.get("cell_id", {}), _with_stems(by_key.get("file", {}))
+        where, rows, columns, by_key.get("cell_id", {}), _file_index(by_key.get("file", {}))
     )
 
 
@@ -144,11 +166,17 @@ def _index(rows: tuple[dict[str, str], ...], key: str, where: str) -> dict[str, 
     return seen
 
 
-def _with_stems(by_file: dict[str, int]) -> dict[str, int]:
-    """Let ``file`` match with or without its extension and folder."""
-    out = dict(by_file)
-    for name, index in by_file.items():
-        p = Path(name)
-        out.setdefault(p.name, index)
-        out.setdefault(p.stem, index)
+def path_parts(text: str) -> tuple[str, ...]:
+    """A path's parts, split at ``/`` or ``\\`` (a sheet may come from another system), with
+    empty, ``.`` and ``..`` parts left out: ``"./rig2\\cell01.nwb"`` -> ``("rig2", "cell01.nwb")``."""
+    return tuple(p for p in re.split(r"[\\/]+", text.strip()) if p not in ("", ".", ".."))
+
+
+def _file_index(by_file: dict[str, int]) -> dict[str, list[tuple[int, tuple[str, ...]]]]:
+    """``file`` values by their last part (a name, or a stem when written without extension)."""
+    out: dict[str, list[tuple[int, tuple[str, ...]]]] = {}
+    for value, index in by_file.items():
+        parts = path_parts(value)
+        if parts:
+            out.setdefault(parts[-1], []).append((index, parts))
     return out

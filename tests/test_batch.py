@@ -717,3 +717,25 @@ def test_figures_are_all_drawn_by_a_pool_after_a_run_in_this_process(day, tmp_pa
     result = run_batch([folder], out=tmp_path / "pool", workers=2, progress=False)
     assert [w for w in result.info["warnings"] if "figure not drawn" in w] == []
     assert len(list((tmp_path / "pool" / "figures").glob("*.png"))) == 9
+
+
+def test_sheet_rows_with_folders_join_the_file_in_those_folders(day, tmp_path):
+    folder = tmp_path / "day"
+    for sub, name in (("rig1", "c00"), ("rig2", "c01")):
+        (folder / sub).mkdir(parents=True)
+        shutil.copyfile(day / f"{name}.nwb", folder / sub / "cell01.nwb")
+    (folder / "metadata.csv").write_text(
+        "file,condition,animal\nrig1/cell01.nwb,standard,A1\nrig2/cell01.nwb,enriched,A2\n"
+    )
+    result = run_batch([folder], out=tmp_path / "out", workers=1, figures=False, progress=False)
+    cells = result.cells.set_index("cell_id")
+    assert list(cells.loc[["rig1-cell01", "rig2-cell01"], "condition"]) == ["standard", "enriched"]
+    assert list(cells.loc[["rig1-cell01", "rig2-cell01"], "animal"]) == ["A1", "A2"]
+    assert result.info["warnings"] == []
+    # a bare name is both files' best match: a guess, so neither gets it, and the run says so
+    (folder / "metadata.csv").write_text("file,condition\ncell01.nwb,standard\n")
+    again = run_batch([folder], out=tmp_path / "again", workers=1, figures=False, progress=False)
+    assert all(pd.isna(v) or v == "" for v in again.cells["condition"])
+    shared = [w for w in again.info["warnings"] if "matches several files" in w]
+    assert len(shared) == 1 and "joined to none" in shared[0]
+    assert str(folder / "rig1" / "cell01.nwb") in shared[0]

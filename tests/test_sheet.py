@@ -50,3 +50,25 @@ def test_not_utf8(tmp_path):
 def test_missing_sheet(tmp_path):
     with pytest.raises(SheetError, match="metadata sheet not found"):
         read_sheet(tmp_path / "nope.csv")
+
+
+def test_a_row_with_folders_matches_only_the_file_in_those_folders(tmp_path):
+    sheet = read_sheet(
+        _write(
+            tmp_path,
+            "file,condition\nrig1/cell01.nwb,standard\nrig2\\cell01,enriched\ncell02.nwb,other\n",
+        )
+    )
+    assert sheet.lookup("x", "/data/day/rig1/cell01.nwb")[1]["condition"] == "standard"
+    assert sheet.lookup("y", "/data/day/rig2/cell01.nwb")[1]["condition"] == "enriched"
+    assert sheet.lookup("z", "/data/day/rig3/cell01.nwb") is None
+    assert sheet.lookup("w", "/data/day/rig3/cell02.nwb")[1]["condition"] == "other"
+
+
+def test_the_row_naming_most_of_the_path_wins(tmp_path):
+    sheet = read_sheet(
+        _write(tmp_path, "file,condition\ncell01.nwb,plain\n./day/rig2/cell01.nwb,rig2\n")
+    )
+    assert sheet.lookup("a", "/data/day/rig2/cell01.nwb")[1]["condition"] == "rig2"
+    assert sheet.lookup("b", "/data/day/rig1/cell01.nwb")[1]["condition"] == "plain"
+    assert sheet.lookup("c", "/data/other/rig2/cell01.nwb")[1]["condition"] == "plain"
