@@ -255,7 +255,8 @@ def _named(
 ) -> list[Recording]:
     """The recordings with the batch's cell ids (see :func:`analyse_file`)."""
     named = [replace(r, cell_id=id_prefix + r.cell_id) for r in recordings]
-    if len(named) > 1 and any(r.cell_id in avoid for r in named):
+    taken = {a.casefold() for a in avoid}  # a figure per id: apart on macOS and Windows too
+    if len(named) > 1 and any(r.cell_id.casefold() in taken for r in named):
         # several cells are "<stem>-<electrode>": the file's name keeps them off the other's id
         cut = len(id_prefix) + len(path.stem)
         named = [replace(r, cell_id=id_prefix + path.name + r.cell_id[cut:]) for r in named]

@@ -8,6 +8,7 @@ input order, so the tables are identical whatever the executor and worker count.
 
 from __future__ import annotations
 
+import bisect
 import contextlib
 import functools
 import json
@@ -246,18 +247,27 @@ def _analyse_all(files, config, outdir, figures, workers, scheduler, progress):
     avoid = ids_to_avoid(files, prefixes)
     hashes = _Hashes(files)
 
-    def key(i: int) -> str | None:
+    def key(i: int, cells: int = 2) -> str | None:
+        # A file of one cell keeps its stem whatever the other inputs: its key leaves out the
+        # ids its cells must avoid, so a new "<stem>-..." file beside it costs no re-analysis.
         file_hash = hashes.get(i)
         if not file_hash:
             return None
-        return cache.entry_key(file_hash, digest, str(files[i]), prefixes[i], avoid[i])
+        ids = avoid[i] if cells > 1 else ()
+        return cache.entry_key(file_hash, digest, str(files[i]), prefixes[i], ids)
+
+    def cached(i: int) -> dict[str, Any] | None:
+        hit = cache.load_entry(outdir, k) if (k := key(i, cells=1)) else None
+        if avoid[i] and (hit is None or len(hit["cells"]) > 1):  # a file of several cells
+            hit = cache.load_entry(outdir, k) if (k := key(i)) else None
+        return hit
 
     try:
         results: dict[int, dict[str, Any]] = {}
         todo: list[Job] = []
         look_up = cache.has_entries(outdir)
         for i, path in enumerate(files):
-            hit = cache.load_entry(outdir, k) if look_up and (k := key(i)) else None
+            hit = cached(i) if look_up else None
             if hit is not None and _figures_present(hit, figure_dir):
                 results[i] = hit
             else:
@@ -269,7 +279,7 @@ def _analyse_all(files, config, outdir, figures, workers, scheduler, progress):
         for i, result in finished:
             # Fresh results take the same JSON form as cached ones: identical tables.
             results[i] = cache.normalise(result)
-            if result["error"] is None and (k := key(i)):
+            if result["error"] is None and (k := key(i, len(result["cells"]))):
                 cache.store_entry(outdir, k, results[i])
             _report_one(result, bar)
         if bar is not None:
@@ -317,45 +327,70 @@ class Job:
 
 
 def id_prefixes(files: Sequence[Path]) -> list[str]:
-    """Cell-id prefixes that keep ids unique when files share a stem.
+    """Cell-id prefixes that keep the files' ids apart when stems repeat.
 
-    A stem seen once keeps its plain id (the file stem, as DESIGN says); a repeated stem gets
-    the names of its parent folders, as many as make it unique (``rig1-cell01``), and, where
-    files of that stem share a folder, the file's type too (``day-csv-cell01``).
+    A stem that no other file's id equals keeps its plain id (the file stem, as DESIGN says).
+    Files whose ids are equal (ignoring case: a figure per id must stay apart on macOS and
+    Windows) get the names of their parent folders, one more per round while they clash
+    (``rig1-cell01``), and the file's type too where files of that stem share a folder
+    (``day-csv-cell01``). In a clash between a prefixed id and a plain one (``rig1/c.nwb`` is
+    ``rig1-c``, as is ``rig1-c.nwb``), the prefixed one goes deeper. Ids still equal after
+    every folder are left to :func:`_repeated_ids`.
     """
-    stems: dict[str, list[Path]] = {}
-    for path in files:
-        stems.setdefault(path.stem, []).append(path)
-    out = []
-    for path in files:
-        group = stems[path.stem]
-        if len(group) == 1:
-            out.append("")
-            continue
-        depth = 1
-        while depth < len(path.parts) - 1 and len(
-            {_id_parts(p, depth, group) for p in group}
-        ) < len(group):
-            depth += 1
-        out.append("-".join(_id_parts(path, depth, group)) + "-")
-    return out
+    files = list(files)
+    typed = _shares_its_folder(files)
+    depth = [0] * len(files)
+    for _ in range(1 + max((len(p.parts) for p in files), default=0)):
+        ids = [_prefix(p, d, t) + p.stem for p, d, t in zip(files, depth, typed, strict=True)]
+        groups: dict[str, list[int]] = {}
+        for i, cell_id in enumerate(ids):
+            groups.setdefault(cell_id.casefold(), []).append(i)
+        deeper = False
+        for group in (g for g in groups.values() if len(g) > 1):
+            can = [i for i in group if depth[i] < len(files[i].parts) - 1]
+            prefixed = [i for i in can if depth[i]]
+            for i in prefixed or can:
+                depth[i] += 1
+                deeper = True
+        if not deeper:
+            break
+    return [_prefix(p, d, t) for p, d, t in zip(files, depth, typed, strict=True)]
 
 
-def _id_parts(path: Path, depth: int, group: Sequence[Path]) -> tuple[str, ...]:
-    """The last ``depth`` folders of ``path``, and its type when another file of the group
-    shares its folder (folders alone cannot tell them apart)."""
-    folders = path.parts[-1 - depth : -1]
-    shared = any(p.parent == path.parent for p in group if p != path)
-    return (*folders, path.suffix.lstrip(".")) if shared else folders
+def _shares_its_folder(files: Sequence[Path]) -> list[bool]:
+    """Whether another file of the same stem (ignoring case) lies in the same folder."""
+    seen: dict[tuple[Path, str], int] = {}
+    for path in files:
+        key = (path.parent, path.stem.casefold())
+        seen[key] = seen.get(key, 0) + 1
+    return [seen[(p.parent, p.stem.casefold())] > 1 for p in files]
+
+
+def _prefix(path: Path, depth: int, typed: bool) -> str:
+    """The last ``depth`` folders of ``path``, and its type where ``typed``, as an id prefix."""
+    if not depth:
+        return ""
+    parts = path.parts[-1 - depth : -1]
+    return "-".join((*parts, path.suffix.lstrip(".")) if typed else parts) + "-"
 
 
 def ids_to_avoid(files: Sequence[Path], prefixes: Sequence[str]) -> list[tuple[str, ...]]:
     """For each file, the other inputs' cell ids that its own ``<stem>-<electrode>`` ids could
-    equal (``pair-e0`` of ``pair-e0.nwb``, for ``pair.nwb``); empty for almost every file."""
+    equal, ignoring case (``pair-e0`` of ``pair-e0.nwb``, for ``pair.nwb``); empty for almost
+    every file. Found by bisection in the sorted ids, not by comparing every pair."""
     bases = [prefix + path.stem for path, prefix in zip(files, prefixes, strict=True)]
-    return [
-        tuple(sorted({other for other in bases if other.startswith(base + "-")})) for base in bases
-    ]
+    ordered = sorted((b.casefold(), b) for b in bases)
+    keys = [k for k, _ in ordered]
+    out = []
+    for base in bases:
+        start = base.casefold() + "-"
+        j = bisect.bisect_left(keys, start)
+        found = []
+        while j < len(keys) and keys[j].startswith(start):
+            found.append(ordered[j][1])
+            j += 1
+        out.append(tuple(sorted(set(found))))
+    return out
 
 
 def _figures_present(result: dict[str, Any], figure_dir: str | None) -> bool:
@@ -580,7 +615,7 @@ def _assemble(files, results, run, config, outdir, sheet, figures):
             cell_rows.append(_error_row(result))
             continue
         for cell in result["cells"]:
-            if cell["cell"]["cell_id"] in repeated:
+            if str(cell["cell"]["cell_id"]).casefold() in repeated:
                 row = _repeated_row(cell["cell"], repeated)
                 errors.append({"file": result["file"], "stage": "ids", "message": row["status"]})
                 cell_rows.append(row)
@@ -610,7 +645,8 @@ def _assemble(files, results, run, config, outdir, sheet, figures):
     warnings += _rule_column_problems(config, cells, sweeps)
     tables.write_tables(outdir, cells, sweeps, spikes)
     seconds["tables"] = time.perf_counter() - t0
-    info = _run_info(files, results, run, config, errors, warnings, sheet, seconds)
+    n_pass = int(cells["qc_pass"].sum()) if "qc_pass" in cells else 0
+    info = _run_info(files, results, run, config, errors, warnings, sheet, seconds, n_pass)
     t0 = time.perf_counter()
     page.write_page(
         outdir,
@@ -626,7 +662,6 @@ def _assemble(files, results, run, config, outdir, sheet, figures):
     tables.write_run_json(outdir, info)
     for w in warnings:
         log.warning("%s", w)
-    n_pass = int(cells["qc_pass"].sum()) if "qc_pass" in cells else 0
     log.info(
         "%d cell(s), %d pass QC, %d input error(s); wrote %s",
         len(cells),
@@ -656,18 +691,20 @@ def _rule_column_problems(config: Config, cells, sweeps) -> list[str]:
 
 
 def _repeated_ids(results: Sequence[dict[str, Any]]) -> dict[str, list[str]]:
-    """Cell ids that more than one cell of the day was given, with the file of each such cell.
+    """Cell ids (case-folded) that more than one cell or failed file of the day was given, with
+    the file of each.
 
     The batch's prefixes and ``avoid`` lists leave none but in contrived cases (electrode
-    names that hold a dash and the rest of another file's stem, a prefixed id equal to
-    another file's stem).
+    names that hold a dash and the rest of another file's stem; folders whose names differ
+    only in case).
     """
     files: dict[str, list[str]] = {}
     for result in results:
+        ids = [c["cell"]["cell_id"] for c in result["cells"]] if not result["error"] else []
         if result["error"]:
-            continue
-        for cell in result["cells"]:
-            files.setdefault(cell["cell"]["cell_id"], []).append(result["file"])
+            ids = [_error_row(result)["cell_id"]]
+        for cell_id in ids:
+            files.setdefault(str(cell_id).casefold(), []).append(result["file"])
     return {cell_id: where for cell_id, where in files.items() if len(where) > 1}
 
 
@@ -675,10 +712,11 @@ def _repeated_row(row: dict[str, Any], repeated: dict[str, list[str]]) -> dict[s
     """A cell whose id another cell also has: a failed row (its figure, sheet row and sweep
     rows could be the other cell's), saying which files to rename."""
     cell_id, source = row["cell_id"], row.get("source_file", "")
-    others = [f for f in repeated[cell_id] if f != source] or repeated[cell_id]
+    where = repeated[str(cell_id).casefold()]
+    others = [f for f in where if f != source] or where
     message = (
-        f"{source}: cell id {cell_id!r} is also that of a cell in {', '.join(others)}; rename "
-        "one of the files so that every cell has its own id"
+        f"{source}: cell id {cell_id!r} is also (ignoring case) that of a cell in "
+        f"{', '.join(others)}; rename one of the files so that every cell has its own id"
     )
     keep = ("cell_id", "source_file", "electrode", "n_sweeps")
     return {
@@ -742,7 +780,7 @@ def _join_sheet(cell_rows: list[dict[str, Any]], sheet: Sheet | None) -> list[st
     return list(dict.fromkeys(warnings))
 
 
-def _run_info(files, results, run, config, errors, warnings, sheet, secs):
+def _run_info(files, results, run, config, errors, warnings, sheet, secs, n_pass):
     return {
         "version": __version__,
         "started": run["started"].isoformat(),
@@ -757,7 +795,7 @@ def _run_info(files, results, run, config, errors, warnings, sheet, secs):
             "files": len(files),
             "files_failed": sum(1 for r in results if r["error"]),
             "cells": sum(len(r["cells"]) for r in results),
-            "cells_pass": sum(1 for r in results for c in r["cells"] if c["cell"].get("qc_pass")),
+            "cells_pass": n_pass,  # of the table: a cell whose id repeats has failed
             "cached": run["cached"],
             "analysed": run["analysed"],
         },

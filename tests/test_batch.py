@@ -650,7 +650,7 @@ def test_cell_ids_that_still_repeat_fail_with_the_files_to_rename(tmp_path):
     repeated = result.cells[result.cells["cell_id"] == "a-b-c"]
     for source, status in zip(repeated["source_file"], repeated["status"], strict=True):
         other = str(folder / ("a.nwb" if source.endswith("a-b.nwb") else "a-b.nwb"))
-        assert "cell id 'a-b-c' is also that of a cell in " + other in status
+        assert "cell id 'a-b-c' is also (ignoring case) that of a cell in " + other in status
         assert "rename one of the files" in status
     assert not repeated["qc_pass"].any()
     assert "a-b-c" not in set(result.sweeps["cell_id"])  # whose rows they are is unknown
@@ -658,6 +658,7 @@ def test_cell_ids_that_still_repeat_fail_with_the_files_to_rename(tmp_path):
     page = (out / "index.html").read_text()
     assert 'figures/a-b-c.png"' not in page
     assert sum(e["stage"] == "ids" for e in result.info["errors"]) == 2
+    assert result.info["counts"]["cells_pass"] == int(result.cells["qc_pass"].sum())
 
 
 def test_the_cache_key_of_a_file_with_no_id_to_avoid_is_unchanged():
@@ -739,3 +740,62 @@ def test_sheet_rows_with_folders_join_the_file_in_those_folders(day, tmp_path):
     shared = [w for w in again.info["warnings"] if "matches several files" in w]
     assert len(shared) == 1 and "joined to none" in shared[0]
     assert str(folder / "rig1" / "cell01.nwb") in shared[0]
+
+
+@pytest.mark.parametrize(
+    "paths, expected",
+    [
+        # a prefixed id that equals another file's stem goes one folder deeper
+        (["/d/day/rig1/c.nwb", "/d/day/rig2/c.nwb", "/d/day/rig1-c.nwb"],
+         ["day-rig1-", "rig2-", ""]),
+        # ids that differ only in case share a figure file on macOS and Windows
+        (["/d/day/CELL01.nwb", "/d/day/rig2/cell01.nwb"], ["day-", "rig2-"]),
+        # folder names with dashes: equal folder tuples are not the test, equal ids are
+        (["/d/X/2024-01/05/c.nwb", "/d/Y/2024/01-05/c.nwb", "/d/Z/05/c.nwb"],
+         ["2024-01-05-", "01-05-", "Z-05-"]),
+        (["/d/day/c.nwb", "/d/day/c.csv"], ["day-nwb-", "day-csv-"]),
+        (["/d/day/a.nwb", "/d/day/b.nwb"], ["", ""]),
+    ],
+)  # fmt: skip
+def test_id_prefixes_keep_every_id_apart_ignoring_case(paths, expected):
+    from pathlib import Path
+
+    from pipeline.batch import id_prefixes
+
+    files = [Path(p) for p in paths]
+    prefixes = id_prefixes(files)
+    assert prefixes == expected
+    ids = [(pre + f.stem).casefold() for pre, f in zip(prefixes, files, strict=True)]
+    assert len(set(ids)) == len(ids)
+
+
+def test_ids_to_avoid_ignore_case():
+    from pathlib import Path
+
+    from pipeline.batch import ids_to_avoid
+
+    files = [Path("/d/Pair.nwb"), Path("/d/pair-e0.nwb"), Path("/d/pairs.nwb"), Path("/d/q.nwb")]
+    assert ids_to_avoid(files, [""] * 4) == [("pair-e0",), (), (), ()]
+
+
+def test_a_file_of_several_cells_avoids_an_id_that_differs_only_in_case(day, tmp_path):
+    folder = tmp_path / "day"
+    folder.mkdir()
+    _two_cells(folder / "Pair.nwb", ("e0", "e1"))
+    shutil.copyfile(day / "c00.nwb", folder / "pair-e0.nwb")
+    result = run_batch([folder], out=tmp_path / "out", workers=1, progress=False)
+    assert list(result.cells["cell_id"]) == ["Pair.nwb-e0", "Pair.nwb-e1", "pair-e0"]
+    names = [p.name.casefold() for p in (tmp_path / "out" / "figures").glob("*.png")]
+    assert len(set(names)) == 3
+
+
+def test_a_file_of_one_cell_keeps_its_cache_entry_when_a_longer_stem_joins(day, tmp_path):
+    folder = tmp_path / "day"
+    folder.mkdir()
+    shutil.copyfile(day / "c00.nwb", folder / "cell1.nwb")
+    out = tmp_path / "out"
+    run_batch([folder], out=out, workers=1, figures=False, progress=False)
+    shutil.copyfile(day / "c01.nwb", folder / "cell1-retry.nwb")
+    again = run_batch([folder], out=out, workers=1, figures=False, progress=False)
+    assert (again.info["counts"]["cached"], again.info["counts"]["analysed"]) == (1, 1)
+    assert list(again.cells["cell_id"]) == ["cell1-retry", "cell1"]
