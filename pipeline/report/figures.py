@@ -1346,13 +1346,38 @@ def clear_figure_cache() -> None:
     _RENDERERS.value = {}
 
 
-# A forked child draws with fonts of its own. The kept renderers hold the parent's fonts (in
-# their glyph layouts), which read glyphs lazily by seek and read on the font file; a child
-# shares those files' offsets with its parent and siblings, so two workers loading glyphs at
-# once read each other's bytes (FreeType: "invalid outline", "too many hints") and lose the
-# figure. matplotlib clears its own font cache at a fork for the same reason.
+class _Drawing:
+    """What a draw in progress has changed for the whole process (the rcParams it set and the
+    collector it paused), for a child forked meanwhile by another thread to undo."""
+
+    rc_before: dict[str, Any] | None = None
+    gc_paused = False
+
+
+def _in_forked_child() -> None:
+    """A forked child starts with no kept figure and nothing of a draw in progress.
+
+    The kept renderers hold the parent's fonts (in their glyph layouts), which read glyphs
+    lazily by seek and read on the font file; a child shares those files' offsets with its
+    parent and siblings, so two workers loading glyphs at once read each other's bytes
+    (FreeType: "invalid outline", "too many hints") and lose the figure. matplotlib clears its
+    own font cache at a fork for the same reason. A child forked while another thread drew
+    would also inherit the draw lock held (for ever: that thread is not in the child), the
+    figure's rcParams and a paused collector.
+    """
+    global _DRAW_LOCK
+    clear_figure_cache()
+    _DRAW_LOCK = threading.Lock()
+    if _Drawing.rc_before is not None:
+        matplotlib.rcParams.update(_Drawing.rc_before)
+        _Drawing.rc_before = None
+    if _Drawing.gc_paused:
+        gc.enable()
+        _Drawing.gc_paused = False
+
+
 if hasattr(os, "register_at_fork"):
-    os.register_at_fork(after_in_child=clear_figure_cache)
+    os.register_at_fork(after_in_child=_in_forked_child)
 
 
 def _kept_figure(cfg: FigureSettings, with_spikes: bool) -> _KeptFigure:
@@ -1832,11 +1857,13 @@ def _gc_paused():
     """
     was_enabled = gc.isenabled()
     gc.disable()
+    _Drawing.gc_paused = was_enabled
     try:
         yield
     finally:
         if was_enabled:
             gc.enable()
+            _Drawing.gc_paused = False
 
 
 def _cell_figure(
@@ -1844,12 +1871,17 @@ def _cell_figure(
 ) -> None:
     with_spikes = spikes is not None
     # One figure at a time per process: rc_context changes the global rcParams.
-    with _DRAW_LOCK, matplotlib.rc_context(_RC):
-        page = _kept_figure(cfg, with_spikes)
-        _draw_kept(page, recording, epochs, cell_fit, verdict, path, spikes, cfg)
-        # kept only when drawn and cleared without error: a failure may leave any state
-        page.clear()
-        _keep(cfg, with_spikes, page)
+    with _DRAW_LOCK:
+        _Drawing.rc_before = {k: matplotlib.rcParams[k] for k in _RC}
+        try:
+            with matplotlib.rc_context(_RC):
+                page = _kept_figure(cfg, with_spikes)
+                _draw_kept(page, recording, epochs, cell_fit, verdict, path, spikes, cfg)
+                # kept only when drawn and cleared without error: a failure may leave any state
+                page.clear()
+                _keep(cfg, with_spikes, page)
+        finally:
+            _Drawing.rc_before = None
 
 
 _DRAW_LOCK = threading.Lock()
