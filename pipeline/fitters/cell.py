@@ -159,6 +159,9 @@ def _vrest(
         return NAN, NAN, 0.0
     v = np.array([f.baseline_v for f in rest])
     t = np.array([f.start_time_s + np.mean(f.baseline_window) for f in rest])
+    if np.isfinite(t).all():  # in time order, whatever the sweep numbers say
+        order = np.argsort(t, kind="stable")
+        v, t = v[order], t[order]
     if len(rest) < 3 or not np.isfinite(t).all() or np.ptp(t) <= 0:
         return float(np.median(v)), float(v[-1] - v[0]), 0.0
     slope, intercept = np.polyfit(t - t[0], v, 1)

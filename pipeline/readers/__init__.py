@@ -297,7 +297,12 @@ def make_recording(
     metadata: dict[str, str] | None = None,
     skipped: Sequence[str] = (),
 ) -> Recording:
-    """Build a Recording, refusing duplicate sweep numbers (ShapeError naming the file)."""
+    """Build a Recording, refusing duplicate sweep numbers (ShapeError naming the file).
+
+    Sweeps are put in the order of their numbers, whatever order the file stores them in: the
+    recording order every stage reads (a file written backwards gives the same cell).
+    """
+    sweeps = sorted(sweeps, key=lambda s: s.number)
     numbers = [s.number for s in sweeps]
     dupes = sorted({n for n in numbers if numbers.count(n) > 1})
     if dupes:
