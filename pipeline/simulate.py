@@ -572,7 +572,9 @@ def _first_order(x: np.ndarray, rate: float, tau: float) -> np.ndarray:
     if tau <= 0:
         return x.copy()
     a = math.exp(-1.0 / (rate * tau))
-    y, _ = signal.lfilter([0.0, 1.0 - a], [1.0, -a], x, axis=-1, zi=a * x[:, :1])
+    b, den = [0.0, 1.0 - a], [1.0, -a]
+    # steady state for the first sample: the filter's state for a unit input, times that sample
+    y, _ = signal.lfilter(b, den, x, axis=-1, zi=signal.lfilter_zi(b, den) * x[:, :1])
     return y
 
 

@@ -253,3 +253,26 @@ def test_first_spike_current_brackets_the_threshold() -> None:
 def test_bad_parameters_are_named(cell, protocol, nuisance, words: str) -> None:
     with pytest.raises(ValueError, match=words):
         sm.simulate_cell(cell, protocol, nuisance, seed=0, cell_id="bad")
+
+
+def test_electrode_filter_starts_at_steady_state_and_charges_as_an_rc_circuit() -> None:
+    # A held input stays where it is from the first sample (no start-up glitch); a step is
+    # the sampled RC charging curve 1 - exp(-t/tau) (Johnston & Wu 1995, ch. 2).
+    rate, tau = 20_000.0, 20e-6
+    held = sm._first_order(np.full((2, 8), -50e-12), rate, tau)
+    np.testing.assert_allclose(held, -50e-12, rtol=1e-12)
+    step = np.ones((1, 40))
+    step[0, 0] = 0.0  # the input steps to 1 at the second sample
+    t = np.arange(39) / rate  # time since the step, at the samples after it
+    np.testing.assert_allclose(
+        sm._first_order(step, rate, tau)[0, 1:], 1 - np.exp(-t / tau), atol=1e-12
+    )
+
+
+def test_a_held_current_through_an_unbalanced_bridge_gives_no_glitch_at_the_sweep_start() -> None:
+    rig = sm.Nuisance(bridge_error_ohm=20e6, electrode_tau_s=20e-6)
+    protocol = replace(SHORT, holding_a=-50e-12)
+    rec = sm.simulate_cell(sm.CellModel(), protocol, rig, seed=0, cell_id="held")
+    for sweep in rec.sweeps:
+        early = sweep.voltage[:20]
+        assert np.ptp(early) < 1e-6, np.ptp(early)  # flat: no jump of I * R_err at the start
