@@ -890,7 +890,8 @@ def _property_lines(
         f"sag ratio  {sag}",
         f"rebound    {_fmt(f.rebound_v, 1e3, 'mV')}",
         f"bridge err {_fmt(f.bridge_error_ohm, 1e-6, 'MΩ')}",
-        f"sweeps     {len(f.used)} used of {len(views)}",
+        # the sweeps behind Rin and tau; cells.csv's n_sweeps_used also counts spiking sweeps
+        f"Rin, tau   from {len(f.used)} of {len(views)} sweeps",
         *_spiking_lines(spikes),
         "[ ] = 95% interval",
     ]  # fmt: skip
