@@ -17,7 +17,7 @@ import os
 import re
 import sys
 import time
-from collections.abc import Iterator, Sequence
+from collections.abc import Iterable, Iterator, Sequence
 from concurrent.futures import ProcessPoolExecutor, ThreadPoolExecutor, as_completed
 from dataclasses import dataclass, field
 from datetime import UTC, datetime
@@ -658,6 +658,7 @@ def _assemble(files, results, run, config, outdir, sheet, figures):
         plot_cache=outdir / cache.CACHE_DIR,
     )
     seconds["page"] = time.perf_counter() - t0
+    _prune_figures(outdir / "figures", fig_map.values())
     info["finished"] = datetime.now(UTC).isoformat()
     tables.write_run_json(outdir, info)
     for w in warnings:
@@ -670,6 +671,25 @@ def _assemble(files, results, run, config, outdir, sheet, figures):
         outdir,
     )
     return BatchResult(cells, sweeps, spikes, info, errors)
+
+
+def _prune_figures(folder: Path, linked: Iterable[str]) -> None:
+    """Remove the PNGs in the figure folder that this run's page does not link: those of cells
+    a ``--force`` run no longer has, of a run with figures before one without, of cells whose
+    id repeated. Only plain ``.png`` files there; a file that cannot be removed stays."""
+    keep = {Path(name).name for name in linked}
+    try:
+        entries = list(os.scandir(folder))
+    except OSError:  # no figure folder
+        return
+    for entry in entries:
+        if (
+            entry.name.endswith(".png")
+            and entry.name not in keep
+            and entry.is_file(follow_symlinks=False)
+        ):
+            with contextlib.suppress(OSError):
+                os.unlink(entry.path)
 
 
 def _rule_column_problems(config: Config, cells, sweeps) -> list[str]:

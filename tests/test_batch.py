@@ -848,3 +848,14 @@ def test_a_child_forked_while_another_thread_draws_can_draw(monkeypatch, tmp_pat
         drawer.join(30)
         figures.clear_figure_cache()
     assert _draw_state() == before
+
+
+def test_a_forced_run_leaves_only_its_own_figures(day, tmp_path):
+    out = tmp_path / "out"
+    run_batch([day], out=out, workers=1, progress=False)
+    assert sorted(p.name for p in (out / "figures").glob("*.png")) == [
+        "c00.png", "c01.png", "c02.png"
+    ]  # fmt: skip
+    (out / "figures" / "notes.txt").write_text("a file of the lab's own")
+    run_batch([day / "c01.nwb"], out=out, workers=1, progress=False, force=True)
+    assert sorted(p.name for p in (out / "figures").iterdir()) == ["c01.png", "notes.txt"]
