@@ -570,7 +570,12 @@ def _frozen_excess(fits: list[SweepFit], re: float, level: float) -> tuple[float
 
 def _cm(tau, tau_ci, r_inst, rin_ci, excess_rel):
     """Cm = tau / R_inst (F), R_inst the input resistance before any slow gate moves, and its
-    interval from the relative half-widths of tau, Rin and the frozen excess in quadrature."""
+    interval from the relative half-widths of tau, Rin and the frozen excess in quadrature.
+
+    The quadrature is the propagation of errors on ln Cm = ln tau - ln R, so the interval is
+    taken there too: Cm * exp(-+rel), which is Cm * (1 -+ rel) for small errors and never
+    reaches zero or below when the errors are large (a cell whose frozen excess is barely
+    known)."""
     if not (math.isfinite(tau) and math.isfinite(r_inst) and r_inst > 0):
         return NAN, (NAN, NAN)
     cm = tau / r_inst
@@ -580,7 +585,7 @@ def _cm(tau, tau_ci, r_inst, rin_ci, excess_rel):
         + ((rin_ci[1] - rin_ci[0]) / 2 / rin) ** 2
         + excess_rel**2
     )
-    return cm, (cm * (1 - rel), cm * (1 + rel)) if math.isfinite(rel) else (NAN, NAN)
+    return cm, (cm * math.exp(-rel), cm * math.exp(rel)) if math.isfinite(rel) else (NAN, NAN)
 
 
 def _sag(hyper, i, ss, peak, re, s: PassiveSettings) -> tuple[float, float]:
