@@ -585,7 +585,9 @@ def _cm(tau, tau_ci, r_inst, rin_ci, excess_rel):
         + ((rin_ci[1] - rin_ci[0]) / 2 / rin) ** 2
         + excess_rel**2
     )
-    return cm, (cm * math.exp(-rel), cm * math.exp(rel)) if math.isfinite(rel) else (NAN, NAN)
+    if not (math.isfinite(rel) and rel < 700):  # exp overflows a float past ~709: no interval
+        return cm, (NAN, NAN)
+    return cm, (cm * math.exp(-rel), cm * math.exp(rel))
 
 
 def _sag(hyper, i, ss, peak, re, s: PassiveSettings) -> tuple[float, float]:
