@@ -443,3 +443,24 @@ def test_a_window_outside_the_traces_widens_the_panel_as_axvspan_would():
 )
 def test_baseline_drift_reads_in_hundredths_of_a_millivolt(drift_v, text):
     assert _drift_mv(drift_v) == text
+
+
+def test_a_cell_with_one_hyperpolarizing_step_draws_without_warnings(tmp_path):
+    # one step size: the colour bar's range must not collapse (matplotlib warns of identical
+    # limits and maps nothing)
+    import warnings
+
+    from pipeline.analysis import analyse_recording
+    from pipeline.config import load_config
+    from pipeline.simulate import CellModel, Nuisance, StepProtocol, simulate_cell
+
+    protocol = StepProtocol(
+        rate_hz=10_000.0, sweep_s=0.7, onset_s=0.1, step_s=0.35,
+        amplitudes_a=(-20e-12, 40e-12, 80e-12),
+    )  # fmt: skip
+    rec = simulate_cell(CellModel(), protocol, Nuisance(), seed=0, cell_id="one", source_file="x")
+    with warnings.catch_warnings(record=True) as caught:
+        warnings.simplefilter("always")
+        result = analyse_recording(rec, load_config(None), str(tmp_path))
+    assert result["figure"] == "one.png" and (tmp_path / "one.png").stat().st_size > 10_000
+    assert [str(w.message) for w in caught if "identical" in str(w.message)] == []

@@ -291,7 +291,10 @@ def _sweep_views(
 
 def _step_norm(hyper_steps_a: Sequence[float]) -> Normalize:
     lo = min(hyper_steps_a) * 1e12
-    return Normalize(vmin=lo, vmax=min(max(hyper_steps_a) * 1e12, lo * 0.1 if lo < 0 else 0))
+    hi = min(max(hyper_steps_a) * 1e12, lo * 0.1 if lo < 0 else 0)
+    if hi <= lo:  # one step size: a range around it (an empty one warns and maps nothing)
+        lo, hi = lo - 1.0, lo + 1.0
+    return Normalize(vmin=lo, vmax=hi)
 
 
 def _note(ax, text: str) -> None:
