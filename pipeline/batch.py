@@ -183,6 +183,7 @@ def run_batch(
                 files, config, outdir, figures, workers, scheduler, progress
             )
             run = {"inputs_given": inputs_given, "started": started, "hashes": hashes, **stats}
+            run["force"] = force
             return _assemble(files, results, run, config, outdir, the_sheet, figures)
         except OSError as exc:  # a full disk, a folder gone: say where, keep what is cached
             where = exc.filename or outdir
@@ -658,7 +659,8 @@ def _assemble(files, results, run, config, outdir, sheet, figures):
         plot_cache=outdir / cache.CACHE_DIR,
     )
     seconds["page"] = time.perf_counter() - t0
-    _prune_figures(outdir / "figures", fig_map.values())
+    if run.get("force"):  # only what --force replaces: never files of unknown origin
+        _prune_figures(outdir / "figures", fig_map.values())
     info["finished"] = datetime.now(UTC).isoformat()
     tables.write_run_json(outdir, info)
     for w in warnings:
@@ -674,10 +676,12 @@ def _assemble(files, results, run, config, outdir, sheet, figures):
 
 
 def _prune_figures(folder: Path, linked: Iterable[str]) -> None:
-    """Remove the PNGs in the figure folder that this run's page does not link: those of cells
-    a ``--force`` run no longer has, of a run with figures before one without, of cells whose
-    id repeated. Only plain ``.png`` files there; a file that cannot be removed stays."""
+    """Remove the PNGs in the figure folder that this ``--force`` run's page does not link (those
+    of the run it replaces). Only plain ``.png`` files there, not through a linked folder; a
+    file that cannot be removed stays."""
     keep = {Path(name).name for name in linked}
+    if folder.is_symlink():  # perhaps shared with another run's figures
+        return
     try:
         entries = list(os.scandir(folder))
     except OSError:  # no figure folder

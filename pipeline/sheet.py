@@ -76,7 +76,23 @@ class Sheet:
                 rank = (len(wanted), int(row[-1] == name), -index)
                 if best is None or rank > best:
                     best = rank
-        return None if best is None else -best[2]
+        if best is not None:
+            return -best[2]
+        return self._same_stem_row(stem)
+
+    def _same_stem_row(self, stem: str) -> int | None:
+        """Fallback when no row names the file's path: the one row, if only one, whose last
+        part has the file's stem ignoring case and extension (a path from another machine, a
+        folder reached through a link, ``Rig2`` for ``rig2``, ``cell01.abf`` exported as
+        ``cell01.nwb``)."""
+        found = {
+            index
+            for rows in self._by_file.values()
+            for index, row in rows
+            if Path(row[-1]).stem.casefold() == stem.casefold()
+            or row[-1].casefold() == stem.casefold()
+        }
+        return found.pop() if len(found) == 1 else None
 
     def describe_row(self, index: int) -> str:
         """How to name a row in a message (its key values)."""

@@ -859,3 +859,19 @@ def test_a_forced_run_leaves_only_its_own_figures(day, tmp_path):
     (out / "figures" / "notes.txt").write_text("a file of the lab's own")
     run_batch([day / "c01.nwb"], out=out, workers=1, progress=False, force=True)
     assert sorted(p.name for p in (out / "figures").iterdir()) == ["c01.png", "notes.txt"]
+
+
+def test_only_a_forced_run_prunes_figures_and_never_through_a_linked_folder(day, tmp_path):
+    out = tmp_path / "out"
+    (out / "figures").mkdir(parents=True)
+    (out / "figures" / "poster_panel.png").write_bytes(b"not ours")
+    run_batch([day / "c00.nwb"], out=out, workers=1, progress=False)
+    assert (out / "figures" / "poster_panel.png").exists()  # not a --force run
+    shared = tmp_path / "shared"
+    shared.mkdir()
+    (shared / "other_run.png").write_bytes(b"another run's")
+    linked = tmp_path / "linked"
+    linked.mkdir()
+    (linked / "figures").symlink_to(shared)
+    run_batch([day / "c01.nwb"], out=linked, workers=1, progress=False, force=True)
+    assert (shared / "other_run.png").exists()

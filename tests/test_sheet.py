@@ -72,3 +72,14 @@ def test_the_row_naming_most_of_the_path_wins(tmp_path):
     assert sheet.lookup("a", "/data/day/rig2/cell01.nwb")[1]["condition"] == "rig2"
     assert sheet.lookup("b", "/data/day/rig1/cell01.nwb")[1]["condition"] == "plain"
     assert sheet.lookup("c", "/data/other/rig2/cell01.nwb")[1]["condition"] == "plain"
+
+
+def test_a_row_no_path_matches_falls_back_to_the_one_row_of_that_stem(tmp_path):
+    # a path from another machine, a folder reached through a link, another case or extension
+    sheet = read_sheet(
+        _write(tmp_path, "file,condition\n/mnt/old/day1/cell01.nwb,a\nRig2/cell02.abf,b\n")
+    )
+    assert sheet.lookup("x", "/srv/data/day1/cell01.nwb")[1]["condition"] == "a"
+    assert sheet.lookup("y", "/srv/data/rig2/cell02.nwb")[1]["condition"] == "b"
+    two = read_sheet(_write(tmp_path, "file,condition\nr1/c.nwb,a\nr2/c.nwb,b\n", "two.csv"))
+    assert two.lookup("z", "/d/r3/c.nwb") is None  # two rows of that stem: no guess

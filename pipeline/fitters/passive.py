@@ -105,9 +105,10 @@ def fit_sweeps(
     The charging curves are first fitted on the three largest hyperpolarizing steps (best
     signal-to-noise); every hyperpolarizing sweep is then fitted starting no earlier than the
     dendritic equalisation time found on them, with the exp+sag model when the largest step
-    sags (small steps are too noisy to decide alone); when it does not, each sweep is fitted as
-    its own sag says (a slow K+ gate that closes on hyperpolarization sags at small steps
-    only, past its range not at all). Calling :func:`fit_sweep` sweep by sweep
+    sags (small steps are too noisy to decide alone: an upward baseline drift looks like sag
+    there). A slow K+ gate that closes on hyperpolarization sags at small steps only, so such
+    a cell is fitted with one exponential and its Cm is overestimated (tests/test_slow_gates.py,
+    a known limit). Calling :func:`fit_sweep` sweep by sweep
     skips this and decides per sweep. Each trace is measured once
     (:func:`pipeline.fitters.sweep.measure_sweep`); the second pass redoes only the charging
     fits, and not those it would repeat.
@@ -159,8 +160,8 @@ def _second_pass_settings(fits: Sequence[SweepFit], settings: PassiveSettings):
     ]
     start = max(settings.fit_start_min_s, float(np.median(eq)) if eq else 0.0)
     model = settings.charging_model
-    if model == "auto" and hyper[0].charging.model == "exp+sag":
-        model = "exp+sag"  # the largest step sags: every sweep gets the gate (small ones are noisy)
+    if model == "auto":
+        model = "exp+sag" if hyper[0].charging.model == "exp+sag" else "exp"
     if start == settings.fit_start_min_s and model == settings.charging_model:
         return None
     return replace(settings, fit_start_min_s=start, charging_model=model)
