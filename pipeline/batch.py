@@ -183,7 +183,7 @@ def run_batch(
                 files, config, outdir, figures, workers, scheduler, progress
             )
             run = {"inputs_given": inputs_given, "started": started, "hashes": hashes, **stats}
-            run["force"] = force
+            run |= {"force": force}
             return _assemble(files, results, run, config, outdir, the_sheet, figures)
         except OSError as exc:  # a full disk, a folder gone: say where, keep what is cached
             where = exc.filename or outdir
@@ -248,19 +248,19 @@ def _analyse_all(files, config, outdir, figures, workers, scheduler, progress):
     avoid = ids_to_avoid(files, prefixes)
     hashes = _Hashes(files)
 
-    def key(i: int, cells: int = 2) -> str | None:
+    def key(i: int, several: bool) -> str | None:
         # A file of one cell keeps its stem whatever the other inputs: its key leaves out the
         # ids its cells must avoid, so a new "<stem>-..." file beside it costs no re-analysis.
         file_hash = hashes.get(i)
         if not file_hash:
             return None
-        ids = avoid[i] if cells > 1 else ()
+        ids = avoid[i] if several else ()
         return cache.entry_key(file_hash, digest, str(files[i]), prefixes[i], ids)
 
     def cached(i: int) -> dict[str, Any] | None:
-        hit = cache.load_entry(outdir, k) if (k := key(i, cells=1)) else None
+        hit = cache.load_entry(outdir, k) if (k := key(i, several=False)) else None
         if avoid[i] and (hit is None or len(hit["cells"]) > 1):  # a file of several cells
-            hit = cache.load_entry(outdir, k) if (k := key(i)) else None
+            hit = cache.load_entry(outdir, k) if (k := key(i, several=True)) else None
         return hit
 
     try:
@@ -280,7 +280,7 @@ def _analyse_all(files, config, outdir, figures, workers, scheduler, progress):
         for i, result in finished:
             # Fresh results take the same JSON form as cached ones: identical tables.
             results[i] = cache.normalise(result)
-            if result["error"] is None and (k := key(i, len(result["cells"]))):
+            if result["error"] is None and (k := key(i, len(result["cells"]) > 1)):
                 cache.store_entry(outdir, k, results[i])
             _report_one(result, bar)
         if bar is not None:
@@ -774,11 +774,11 @@ def _join_sheet(cell_rows: list[dict[str, Any]], sheet: Sheet | None) -> list[st
     if sheet is None:
         return []
     hits = [sheet.lookup(str(row["cell_id"]), str(row["source_file"])) for row in cell_rows]
-    files: dict[int, list[str]] = {}
+    files: dict[int, set[str]] = {}  # sheet row -> the files of the cells it matched
     for row, hit in zip(cell_rows, hits, strict=True):
         if hit is not None:
-            files.setdefault(hit[0], []).append(str(row["source_file"]))
-    shared = {index: sorted(set(f)) for index, f in files.items() if len(set(f)) > 1}
+            files.setdefault(hit[0], set()).add(str(row["source_file"]))
+    shared = {index: sorted(f) for index, f in files.items() if len(f) > 1}
     warnings = [
         f"{sheet.path}: {sheet.describe_row(index)} matches several files ({', '.join(f)}); "
         "joined to none: give each file's row the folders that tell them apart "

@@ -19,7 +19,7 @@
 - Cm = tau / R_frozen, R_frozen the input resistance before the slow gate moves: Rin plus the
   part of each deflection the gate took back (kappa times the gated mode's deflection), read at
   rest from a line through the sweeps' values; R_frozen = Rin without sag. Interval from the
-  relative half-widths in quadrature.
+  relative half-widths in quadrature, on the log scale (Cm * exp(-+rel): never below zero).
 
 References
 ----------

@@ -893,8 +893,9 @@ def _property_lines(
         f"sag ratio  {sag}",
         f"rebound    {_fmt(f.rebound_v, 1e3, 'mV')}",
         f"bridge err {_fmt(f.bridge_error_ohm, 1e-6, 'MΩ')}",
-        # the sweeps behind Rin and tau; cells.csv's n_sweeps_used also counts spiking sweeps
-        f"Rin, tau   from {len(f.used)} of {len(views)} sweeps",
+        # the sweeps behind Rin, tau and sag (the largest step); cells.csv's n_sweeps_used
+        # also counts the spiking sweeps
+        f"passive    from {len(f.used)} of {len(views)} sweeps",
         *_spiking_lines(spikes),
         "[ ] = 95% interval",
     ]  # fmt: skip
