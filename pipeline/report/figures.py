@@ -290,8 +290,8 @@ def _sweep_views(
 
 
 def _step_norm(hyper_steps_a: Sequence[float]) -> Normalize:
-    lo = min(hyper_steps_a) * 1e12
-    hi = min(max(hyper_steps_a) * 1e12, lo * 0.1 if lo < 0 else 0)
+    """Step currents (A) to 0..1: the largest hyperpolarizing step 0, the smallest 1."""
+    lo, hi = min(hyper_steps_a) * 1e12, max(hyper_steps_a) * 1e12
     if hi <= lo:  # one step size: a range around it (an empty one warns and maps nothing)
         lo, hi = lo - 1.0, lo + 1.0
     return Normalize(vmin=lo, vmax=hi)
@@ -359,7 +359,7 @@ def _draw_traces(ax, fig, views: list[_SweepView], cell_fit: CellFit | None, dpi
         else:
             t, y = envelope(v.sweep.time() * 1e3, v.sweep.voltage * 1e3, n_columns)
             traces.append(_Trace(t, y, None, *style, hyper))
-    _draw_fits_and_windows(ax, views)
+    entries, fitted = _draw_fits_and_windows(ax, views)
     tops = [np.nanmax(tr.lo if tr.hi is None else tr.hi) for tr in traces]
     spans = [(np.nanmin(tr.lo), top, tr.hyper) for tr, top in zip(traces, tops, strict=True)]
     cap = _trace_limits(ax, spans, views)
@@ -383,6 +383,19 @@ def _draw_traces(ax, fig, views: list[_SweepView], cell_fit: CellFit | None, dpi
                    [tr.width for tr, _ in lines], [tr.style for tr, _ in lines], zorder=zorder,
                    capstyle="butt" if dotted else "projecting")  # fmt: skip
     _label_traces(ax, f"; clipped above {cap:.0f} mV" if cap is not None else "")
+    if entries:  # after the limits: the key goes where it covers the fewest trace samples
+        _key(ax, entries, "best", [*_trace_points(traces), *fitted])
+
+
+def _trace_points(traces: list[_Trace], per_trace: int = 60) -> list[tuple[float, float]]:
+    """A few (ms, mV) points along each trace (both edges of a band) for the key to avoid."""
+    out: list[tuple[float, float]] = []
+    for tr in traces:
+        step = max(1, tr.t.size // per_trace)
+        for y in (tr.lo, tr.hi) if tr.hi is not None else (tr.lo,):
+            pts = np.column_stack([tr.t[::step], y[::step]])
+            out.extend(map(tuple, pts[np.isfinite(pts).all(axis=1)]))
+    return out
 
 
 def _bands(ax, bands: list[tuple[_Trace, Any]], mv_per_point: float, zorder: float) -> None:
@@ -430,9 +443,13 @@ def _drawable(c: ExpFit) -> bool:
     return all(_finite(x) for x in values) and c.tau > 0 and c.t1 > c.t0
 
 
-def _draw_fits_and_windows(ax, views: list[_SweepView]) -> None:
+def _draw_fits_and_windows(ax, views: list[_SweepView]) -> tuple[list, list]:
+    """Fitted charging curves (grey for sweeps not used) and the windows of the sweeps used
+    (of all when none is); returns the key's entries and points along the curves."""
     windows = {"charging fit": [], "steady state": [], "baseline": []}
-    curves = []
+    curves, colours = [], []
+    used = [id(v) for v in views if v.fit is not None and v.used]
+    shaded = set(used) if used else {id(v) for v in views}
     for v in views:
         f = v.fit
         if f is None:
@@ -440,13 +457,17 @@ def _draw_fits_and_windows(ax, views: list[_SweepView]) -> None:
         if _drawable(f.charging):
             t = np.linspace(f.charging.t0, f.charging.t1, 120)
             curves.append((t * 1e3, f.charging.curve(t) * 1e3))
-            windows["charging fit"].append((f.charging.t0, f.charging.t1))
+            colours.append(FIT_COLOUR if v.used else EXCLUDED_COLOUR)
+            if id(v) in shaded:
+                windows["charging fit"].append((f.charging.t0, f.charging.t1))
+        if id(v) not in shaded:
+            continue
         for key, win in (("steady state", f.ss_window), ("baseline", f.baseline_window)):
             if all(_finite(x) for x in win):
                 windows[key].append(win)
     if curves:
         n = len(curves)
-        _lines(ax, curves, [FIT_COLOUR] * n, [1.0] * n, ["--"] * n, zorder=3, capstyle="butt")
+        _lines(ax, curves, colours, [1.0] * n, ["--"] * n, zorder=3, capstyle="butt")
     shades = {"charging fit": "#9ecae1", "steady state": "#fdd0a2", "baseline": "0.88"}
     spans = {  # each kind's windows as one span, ms
         key: (min(w[0] for w in wins) * 1e3, max(w[1] for w in wins) * 1e3)
@@ -469,12 +490,16 @@ def _draw_fits_and_windows(ax, views: list[_SweepView]) -> None:
     entries = [
         (f"{key} window", "patch", {"facecolor": shades[key], "alpha": 0.45}) for key in spans
     ]
-    if windows["charging fit"]:
+    if FIT_COLOUR in colours:
         entries.append(
             ("fitted charging curve", "line", {"color": FIT_COLOUR, "ls": "--", "lw": 1})
         )
-    if entries:
-        _key(ax, entries, "lower right")
+    if EXCLUDED_COLOUR in colours:
+        entries.append(
+            ("fit of a sweep not used", "line", {"color": EXCLUDED_COLOUR, "ls": "--", "lw": 1})
+        )
+    fitted = [(x, y) for t, c in curves for x, y in zip(t[::12], c[::12], strict=True)]
+    return entries, fitted
 
 
 _HOLLOW = {"marker": "o", "ms": math.sqrt(28), "mfc": "none", "mec": EXCLUDED_COLOUR, "mew": 1.0}
@@ -624,8 +649,8 @@ def _draw_colourbar(cax, views: list[_SweepView], cmap_name: str) -> None:
     mesh) per figure, which cannot be kept from one cell to the next.
     """
     hyper = [v.step_a for v in views if _finite(v.step_a) and v.step_a < 0]
-    if not hyper:
-        return  # the slot stays hidden
+    if not any(_finite(v.step_a) and v.step_a < 0 and not v.excluded_because for v in views):
+        return  # no sweep drawn in colour: the slot stays hidden
     norm = _step_norm(hyper)
     colours = matplotlib.colormaps[cmap_name](np.linspace(0, 0.9, 256))[:, None, :3]
     cax.set_visible(True)
@@ -694,7 +719,11 @@ def _draw_iv_fit(ax, points: list[_SweepView], cell_fit: CellFit | None) -> None
         ax.text(0.03, 0.95, "no I-V fit", transform=ax.transAxes, va="top", color=MISSING_COLOUR)
         return
     xs = [v.step_a for v in points if v.used] or [v.step_a for v in points]
-    x = np.linspace(min(min(xs), 0.0), max(max(xs), 0.0), 50)
+    curved = f.rin_method in ("quadratic", "cubic")
+    # a bent V-I relation: Rin is the curve's slope at rest, drawn as its tangent near zero
+    # current only (over the whole range it would miss the far points it was never meant to meet)
+    reach = 0.5 if curved else 1.0
+    x = np.linspace(min(min(xs), 0.0) * reach, max(max(xs), 0.0) * reach, 50)
     b, slope = _iv_offset_v(points, f.iv_intercept_v), f.iv_slope_ohm
     lo, hi = f.rin_ci_ohm
     entries: list = []
@@ -712,6 +741,8 @@ def _draw_iv_fit(ax, points: list[_SweepView], cell_fit: CellFit | None) -> None
         entries.append(("95% interval", "patch", {"facecolor": FIT_COLOUR, "alpha": 0.15}))
         avoid += [*np.column_stack([x * 1e12, y1]), *np.column_stack([x * 1e12, y2])]
     label = f"steady-state fit: {slope / 1e6:.0f} MΩ"
+    if curved:
+        label = f"slope at 0 pA ({f.rin_method} fit): {slope / 1e6:.0f} MΩ"
     if _finite(f.bridge_error_ohm) and f.bridge_error_ohm != 0 and _finite(f.rin_ohm):
         label += (
             f"\n(Rin {f.rin_ohm / 1e6:.0f} MΩ after {f.bridge_error_ohm / 1e6:.1f} MΩ bridge error)"
@@ -806,7 +837,7 @@ def _draw_residuals(ax, views: list[_SweepView], hum_harmonics: int | None) -> N
     ax.set_ylabel("data − fit (mV)")
     hum = "hum removed as for the fit; " if hum_harmonics else ""
     _title(ax, f"charging-curve fit residuals ({hum}bin means, bins widen from 0.5 ms)")
-    rms, curves = [], []
+    rms, rms_all, curves = [], [], []
     for v in views:
         c: ExpFit | None = v.fit.charging if v.fit is not None else None
         if c is None or not _drawable(c) or v.sweep is None:
@@ -816,15 +847,18 @@ def _draw_residuals(ax, views: list[_SweepView], hum_harmonics: int | None) -> N
             continue
         curves.append((*binned, v.colour if v.used else EXCLUDED_COLOUR))
         if _finite(c.resid_rms):
-            rms.append(c.resid_rms * 1e3)
+            (rms if v.used else rms_all).append(c.resid_rms * 1e3)
     if not curves:
         _note(ax, "no charging-curve fits to show")
         return
     xy = [(tt, rr) for tt, rr, _ in curves]
     _lines(ax, xy, [to_rgba(c) for _, _, c in curves], [0.8] * len(xy), ["-"] * len(xy), 2)
+    # the sweeps behind tau; fits of sweeps left out are said to be so
+    what = f"{len(rms)} used fit{'s' * (len(rms) != 1)}" if rms else "no fit used"
+    rms = rms or rms_all
     if rms:
         ax.text(
-            0.99, 0.96, f"fit RMS {min(rms):.2f}–{max(rms):.2f} mV, {len(rms)} fits",
+            0.99, 0.96, f"fit RMS {min(rms):.2f}–{max(rms):.2f} mV, {what}",
             transform=ax.transAxes, ha="right", va="top", fontsize=7,
         )  # fmt: skip
 
@@ -858,14 +892,20 @@ def _draw_baselines(ax, views: list[_SweepView]) -> None:
             )  # fmt: skip
 
 
+def _num(x: float, digits: int = 3) -> str:
+    """``x`` to ``digits`` significant digits, whole numbers written out (``1300``, not the
+    ``1.3e+03`` of ``g``)."""
+    return f"{x:.0f}" if abs(x) >= 10**digits else f"{x:.{digits}g}"
+
+
 def _fmt(value: float, scale: float, unit: str, digits: int = 3) -> str:
-    return f"{value * scale:.{digits}g} {unit}" if _finite(value) else "not measured"
+    return f"{_num(value * scale, digits)} {unit}" if _finite(value) else "not measured"
 
 
 def _fmt_ci(value: float, ci: tuple[float, float], scale: float, unit: str) -> str:
     text = _fmt(value, scale, unit)
     if _finite(value) and all(_finite(c) for c in ci):
-        text += f" [{ci[0] * scale:.3g}, {ci[1] * scale:.3g}]"
+        text += f" [{_num(ci[0] * scale)}, {_num(ci[1] * scale)}]"
     return text
 
 
@@ -889,7 +929,7 @@ def _property_lines(
         f"Vrest      {_fmt(f.vrest_v, 1e3, 'mV')}" + (f"  (drift {_drift_mv(f.vrest_drift_v)})" if _finite(f.vrest_drift_v) else ""),
         f"Rin        {_fmt_ci(f.rin_ohm, f.rin_ci_ohm, 1e-6, 'MΩ')}",
         f"tau        {_fmt_ci(f.tau_s, f.tau_ci_s, 1e3, 'ms')}",
-        f"Cm         {_fmt_ci(f.cm_f, f.cm_ci_f, 1e12, 'pF')}  (tau/Rin)",
+        *_cm_lines(f),
         f"sag ratio  {sag}",
         f"rebound    {_fmt(f.rebound_v, 1e3, 'mV')}",
         f"bridge err {_fmt(f.bridge_error_ohm, 1e-6, 'MΩ')}",
@@ -899,6 +939,16 @@ def _property_lines(
         *_spiking_lines(spikes),
         "[ ] = 95% interval",
     ]  # fmt: skip
+
+
+def _cm_lines(f: CellFit) -> list[str]:
+    """The Cm line, naming the resistance it divides tau by: with sag that is the input
+    resistance before Ih moves (``rin_frozen_mohm``), not the Rin shown above it."""
+    cm = f"Cm         {_fmt_ci(f.cm_f, f.cm_ci_f, 1e12, 'pF')}"
+    frozen, rin = f.rin_frozen_ohm, f.rin_ohm
+    if not (_finite(frozen) and _finite(rin)) or abs(frozen - rin) <= 0.005 * abs(rin):
+        return [f"{cm}  (tau/Rin)"]
+    return [cm, f"           tau/R before Ih, R {_fmt(frozen, 1e-6, 'MΩ')}"]
 
 
 def _spiking_lines(spikes: Any) -> list[str]:
@@ -916,6 +966,12 @@ def _spiking_lines(spikes: Any) -> list[str]:
         width = _fmt(getattr(first, "width_s", math.nan), 1e3, "ms", 2)
         lines += [f"1st spike  threshold {thr}", f"           width {width}"]
     return lines
+
+
+def _wrap_name(text: str, width: int) -> list[str]:
+    """A cell id or file name in lines of ``width``: broken at spaces, else cut anywhere (a
+    long file name has none, and breaking at its hyphens would split a date)."""
+    return textwrap.wrap(text, width, break_on_hyphens=False) or [text]
 
 
 def _wrapped(items: Iterable[str], width: int, limit: int) -> list[str]:
@@ -956,6 +1012,14 @@ class _TextColumn:
         self.fig, self.x0, self.y0, self.h = fig, box.x0, box.y0, box.height
         self.y = 1.0  # fraction of the box height, from its bottom
         self.height_pt = box.height * fig.get_figheight() * 72
+        self.width_pt = box.width * fig.get_figwidth() * 72
+
+    def chars(self, size: float) -> int:
+        """Characters of the monospace font that fit across the box: its advance is 0.6 em,
+        which hinting rounds up to whole pixels at low dpi."""
+        dpi = self.fig.dpi
+        advance_px = math.ceil(0.61 * size * dpi / 72)
+        return max(int(self.width_pt * dpi / 72 / advance_px), 20)
 
     def add(self, lines: Sequence[str], size: float = 8.5, gap: float = 0.6, **kw: Any) -> None:
         if not lines:
@@ -970,13 +1034,16 @@ class _TextColumn:
 
 def _draw_text(box, fig, recording, cell_fit, verdict, views, cell_id: str, spikes: Any) -> None:
     col = _TextColumn(fig, box)
-    header = textwrap.wrap(f"cell {cell_id}", 44)
+    header = _wrap_name(f"cell {cell_id}", col.chars(9))
     if recording is not None:
-        header += textwrap.wrap(f"file {Path(recording.source_file).name}", 44)
+        header += _wrap_name(f"file {Path(recording.source_file).name}", col.chars(9))
     col.add(header, 9, family="monospace", weight="bold")
     status = cell_fit.status if cell_fit is not None else "no passive results"
     if status != "ok":
-        col.add(textwrap.wrap(f"status: {status}", 44), 8.5, family="monospace", color=FAIL_COLOUR)
+        col.add(
+            textwrap.wrap(f"status: {status}", col.chars(8.5)), 8.5, family="monospace",
+            color=FAIL_COLOUR,
+        )  # fmt: skip
     col.add(_property_lines(cell_fit, views, spikes), 8.5, gap=1.0, family="monospace")
     passed = verdict is not None and verdict.qc_pass and status == "ok"
     word = "QC PASS" if passed else ("QC FAIL" if verdict is not None else "QC: no verdict")
@@ -987,13 +1054,15 @@ def _draw_text(box, fig, recording, cell_fit, verdict, views, cell_id: str, spik
             ("failed because:", list(verdict.reasons) or ["(the QC verdict gives no reason)"])
         )
     if verdict is not None and verdict.flags:
-        sections.append(("flags (cell still passes):", list(verdict.flags)))
+        # a flag alone never fails a cell; under a failed verdict it is not one of the reasons
+        title = "flags (cell still passes):" if passed else "flags (not why it fails):"
+        sections.append((title, list(verdict.flags)))
     excluded = _grouped_reasons(views)
     if excluded:
         sections.append(("sweeps not used:", excluded))
     for k, (title, items) in enumerate(sections):
         budget = max((col.lines_left(7.5) - 2 * (len(sections) - k)) // (len(sections) - k), 2)
-        col.add([title, *_wrapped(items, 50, budget)], 7.5, gap=0.8, family="monospace")
+        col.add([title, *_wrapped(items, col.chars(7.5), budget)], 7.5, gap=0.8, family="monospace")
 
 
 def _spike_fields(spikes: Any) -> tuple[Any, list[tuple[float, float]]]:
