@@ -151,31 +151,75 @@ def _parse(text: str, where: str) -> pd.DataFrame:
         raise SheetError(f"{where}: not a readable CSV table (the sheet is empty)")
     body = text.lstrip("\r\n")
     try:
-        header = next(csv.reader(StringIO(body), csv.Sniffer().sniff(body[:4096])))
+        # the separators sheets use; left open, the sniffer may pick a letter of a name
+        dialect: type[csv.Dialect] | csv.Dialect = csv.Sniffer().sniff(body[:4096], ",;\t|")
+        header = next(csv.reader(StringIO(body), dialect))
     except (csv.Error, ValueError):  # no dialect found, or one csv.reader refuses (3.13)
-        header = next(csv.reader(StringIO(body), csv.excel))
+        dialect = csv.excel
+        header = next(csv.reader(StringIO(body), dialect))
     names = [h.strip() for h in header]
     twice = sorted({n for n in names if n and names.count(n) > 1})
     if twice:
         raise SheetError(f"{where}: column {twice[0]!r} appears twice in the header")
+    rows = _rows(body, dialect, names, where)
+    keep = [k for k, n in enumerate(names) if n]  # trailing separators in the header: no column
+    return pd.DataFrame([[r[k] for k in keep] for r in rows], columns=[names[k] for k in keep])
+
+
+def _rows(body: str, dialect, names: list[str], where: str) -> list[list[str]]:
+    """The data rows, each as wide as the header: short rows padded with empty cells, and
+    empty cells past the header's end (a spreadsheet's trailing separators) dropped. A value
+    past the header's end, or under a column with no name, would be joined to the wrong
+    column or lost, so it stops the run."""
+    import csv
+    from io import StringIO
+
+    width = len(names)
     try:
-        return pd.read_csv(
-            StringIO(body), dtype=str, keep_default_na=False, sep=None, engine="python"
-        )
-    except (pd.errors.ParserError, pd.errors.EmptyDataError, ValueError, csv.Error) as exc:
+        rows = list(csv.reader(StringIO(body), dialect))
+    except csv.Error as exc:
         raise SheetError(f"{where}: not a readable CSV table ({exc})") from None
+    out = []
+    for number, row in enumerate(rows[1:], start=2):
+        if not row:  # a blank line
+            continue
+        extra = [v for v in row[width:] if v.strip()]
+        if extra:
+            raise SheetError(
+                f"{where}: row {number} has {len(row)} fields but the header names {width} "
+                f"columns (first extra value {extra[0]!r}); quote values that hold the "
+                "separator, or add the column's name to the header"
+            )
+        nameless = [k for k, n in enumerate(names) if not n and k < len(row) and row[k].strip()]
+        if nameless:
+            raise SheetError(
+                f"{where}: row {number} has a value ({row[nameless[0]]!r}) in column "
+                f"{nameless[0] + 1}, which has no name in the header"
+            )
+        out.append((row + [""] * width)[:width])
+    return out
 
 
 def _index(rows: tuple[dict[str, str], ...], key: str, where: str) -> dict[str, int]:
     seen: dict[str, int] = {}
+    spelled: dict[str, tuple[str, int]] = {}  # the value as compared -> (as written, row)
     for i, row in enumerate(rows):
         value = row.get(key, "")
         if not value:
             continue
-        if value in seen:
-            raise SheetError(
-                f"{where}: {key} {value!r} appears twice (rows {seen[value] + 2} and {i + 2})"
+        # the same file or cell however written: ``./cell01.nwb``, ``cell01.nwb``,
+        # ``Cell01.NWB`` (ids and figure names are told apart ignoring case)
+        same = ("/".join(path_parts(value)) if key == "file" else value).casefold()
+        if same in spelled:
+            first, j = spelled[same]
+            what = "file" if key == "file" else "cell"
+            said = (
+                f"{value!r} appears twice"
+                if first == value
+                else f"{first!r} and {value!r} name the same {what}"
             )
+            raise SheetError(f"{where}: {key} {said} (rows {j + 2} and {i + 2})")
+        spelled[same] = (value, i)
         seen[value] = i
     if not seen and key == "cell_id":
         return {}

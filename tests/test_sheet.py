@@ -83,3 +83,37 @@ def test_a_row_no_path_matches_falls_back_to_the_one_row_of_that_stem(tmp_path):
     assert sheet.lookup("y", "/srv/data/rig2/cell02.nwb")[1]["condition"] == "b"
     two = read_sheet(_write(tmp_path, "file,condition\nr1/c.nwb,a\nr2/c.nwb,b\n", "two.csv"))
     assert two.lookup("z", "/d/r3/c.nwb") is None  # two rows of that stem: no guess
+
+
+@pytest.mark.parametrize(
+    "text",
+    [
+        "file,condition,animal,\ncell01.nwb,ctrl,A1,\ncell02.nwb,drug,A2,\n",  # header too
+        "file,condition,animal\ncell01.nwb,ctrl,A1,\ncell02.nwb,drug,A2,,\n",  # rows only
+    ],
+)
+def test_trailing_separators_keep_every_column_in_place(tmp_path, text):
+    # a spreadsheet export's trailing commas made pandas take the first column as the index:
+    # no row was joined (or a false "appears twice" stopped the run)
+    sheet = read_sheet(_write(tmp_path, text))
+    assert sheet.columns == ("condition", "animal")
+    assert sheet.lookup("cell02", "/day/cell02.nwb")[1] == {"condition": "drug", "animal": "A2"}
+
+
+def test_a_value_past_the_header_stops_the_run_naming_the_row(tmp_path):
+    with pytest.raises(SheetError, match=r"row 3 has 4 fields but the header names 3 .*'x'"):
+        read_sheet(_write(tmp_path, "file,condition,animal\ncell01.nwb,ctrl,A1\nc2,drug,A2,x\n"))
+    with pytest.raises(SheetError, match=r"row 2 has a value \('x'\) in column 3, which has no"):
+        read_sheet(_write(tmp_path, "file,condition,\ncell01.nwb,ctrl,x\n"))
+
+
+@pytest.mark.parametrize(
+    ("first", "second"),
+    [("./cell01.nwb", "cell01.nwb"), ("Cell01.nwb", "cell01.NWB"), ("rig1//c.nwb", "rig1/c.nwb")],
+)
+def test_one_file_spelled_two_ways_is_a_duplicate(tmp_path, first, second):
+    # the first spelling silently won (or neither row was joined) and the other was reported
+    # as matching no file
+    text = f"file,condition\n{first},ctrl\n{second},drug\n"
+    with pytest.raises(SheetError, match=r"name the same file \(rows 2 and 3\)"):
+        read_sheet(_write(tmp_path, text))
