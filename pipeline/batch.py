@@ -112,9 +112,16 @@ def discover_inputs(inputs: Sequence[str | Path], exclude: Path | None = None) -
 
 
 def _wanted(path: Path, exclude: Path | None) -> bool:
+    """Not the sheet, not hidden, and not a table this program wrote: one in the output folder
+    (which may be the input folder itself) or in an earlier run's output folder (one holding
+    a cache) that lies in the input tree."""
     if path.name == SHEET_NAME or any(part.startswith(".") for part in path.parts[-2:]):
         return False
-    return exclude is None or not path.resolve().is_relative_to(exclude.resolve())
+    if path.name not in OUTPUT_NAMES:
+        return True
+    folder = path.parent
+    here = exclude is not None and folder.resolve() == exclude.resolve()
+    return not (here or (folder / cache.CACHE_DIR).is_dir())
 
 
 def find_sheet(inputs: Sequence[str | Path]) -> Path | None:
@@ -637,13 +644,14 @@ def _assemble(files, results, run, config, outdir, sheet, figures):
                         "traceback": cell["traceback"],
                     }
                 )
-    warnings = _join_sheet(cell_rows, sheet) + figure_problems
+    sheet_columns, warnings = _join_sheet(cell_rows, sheet)
+    warnings += figure_problems
     t0 = time.perf_counter()
-    sheet_columns = sheet.columns if sheet else ()
     cells = tables.cells_frame(cell_rows, sheet_columns)
     sweeps = tables.sweeps_frame(sweep_rows)
     spikes = tables.spikes_frame(spike_rows)
-    warnings += _rule_column_problems(config, cells, sweeps)
+    if any(not r["error"] and r["cells"] for r in results):  # else no table has its columns
+        warnings += _rule_column_problems(config, cells, sweeps)
     tables.write_tables(outdir, cells, sweeps, spikes)
     seconds["tables"] = time.perf_counter() - t0
     n_pass = int(cells["qc_pass"].sum()) if "qc_pass" in cells else 0
@@ -765,14 +773,21 @@ def _error_row(result: dict[str, Any]) -> dict[str, Any]:
     }
 
 
-def _join_sheet(cell_rows: list[dict[str, Any]], sheet: Sheet | None) -> list[str]:
+def _join_sheet(
+    cell_rows: list[dict[str, Any]], sheet: Sheet | None
+) -> tuple[tuple[str, ...], list[str]]:
     """Add the sheet's columns to each cell row; report cells and rows that found no partner.
 
     A row that is the best match of cells of several files (``cell01.nwb`` in ``rig1/`` and
-    ``rig2/``) is joined to none of them: which one it meant is a guess.
+    ``rig2/``) is joined to none of them: which one it meant is a guess. A sheet column named
+    like a result column (``source_file``, ``rin_mohm``...) is not joined: the result stays.
+    Returns the columns joined and the warnings.
     """
     if sheet is None:
-        return []
+        return (), []
+    results = {column for row in cell_rows for column in row}
+    clashes = [c for c in sheet.columns if c in results]
+    joined = tuple(c for c in sheet.columns if c not in results)
     hits = [sheet.lookup(str(row["cell_id"]), str(row["source_file"])) for row in cell_rows]
     files: dict[int, set[str]] = {}  # sheet row -> the files of the cells it matched
     for row, hit in zip(cell_rows, hits, strict=True):
@@ -780,6 +795,11 @@ def _join_sheet(cell_rows: list[dict[str, Any]], sheet: Sheet | None) -> list[st
             files.setdefault(hit[0], set()).add(str(row["source_file"]))
     shared = {index: sorted(f) for index, f in files.items() if len(f) > 1}
     warnings = [
+        f"{sheet.path}: column {c!r} is not joined: the cell table has a result column of "
+        "that name; rename it in the sheet"
+        for c in clashes
+    ]
+    warnings += [
         f"{sheet.path}: {sheet.describe_row(index)} matches several files ({', '.join(f)}); "
         "joined to none: give each file's row the folders that tell them apart "
         "(rig1/cell01.nwb)"
@@ -791,17 +811,13 @@ def _join_sheet(cell_rows: list[dict[str, Any]], sheet: Sheet | None) -> list[st
                 warnings.append(
                     f"{sheet.path}: no row for cell {row['cell_id']} ({row['source_file']})"
                 )
-            row.update({c: "" for c in sheet.columns if c not in row})
+            row.update(dict.fromkeys(joined, ""))
             continue
-        for column, value in hit[1].items():
-            if column in row and column not in ("cell_id", "source_file"):
-                warnings.append(f"{sheet.path}: column {column!r} clashes with a result column")
-                continue
-            row[column] = value
+        row.update({c: v for c, v in hit[1].items() if c in joined})
     for index in range(len(sheet.rows)):
         if index not in files:
             warnings.append(f"{sheet.path}: {sheet.describe_row(index)} matches no input file")
-    return list(dict.fromkeys(warnings))
+    return joined, list(dict.fromkeys(warnings))
 
 
 def _run_info(files, results, run, config, errors, warnings, sheet, secs, n_pass):

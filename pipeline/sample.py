@@ -17,6 +17,7 @@ import datetime as dt
 from dataclasses import dataclass, replace
 from pathlib import Path
 
+from pipeline.errors import PatchbatchError
 from pipeline.simulate import (
     CellModel,
     Dendrite,
@@ -172,7 +173,10 @@ def write_sample_day(folder: str | Path) -> list[Path]:
     from pipeline.writers import write_csv, write_nix, write_nwb
 
     out = Path(folder)
-    out.mkdir(parents=True, exist_ok=True)
+    try:
+        out.mkdir(parents=True, exist_ok=True)
+    except OSError as exc:  # a file of that name, a read-only parent...
+        raise PatchbatchError(f"{out}: cannot make the sample folder ({exc.strerror})") from None
     written, sheet = [], [SHEET_HEADER]
     start = dt.datetime(2026, 3, 14, 13, 0, tzinfo=dt.UTC)
     for i, cell in enumerate(_cells()):

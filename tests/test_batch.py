@@ -875,3 +875,55 @@ def test_only_a_forced_run_prunes_figures_and_never_through_a_linked_folder(day,
     (linked / "figures").symlink_to(shared)
     run_batch([day / "c01.nwb"], out=linked, workers=1, progress=False, force=True)
     assert (shared / "other_run.png").exists()
+
+
+def test_an_earlier_runs_tables_in_the_input_tree_are_not_read_as_recordings(day, tmp_path):
+    # `patchbatch run . -o reports`, then `-o reports2`: reports/cells.csv, sweeps.csv and
+    # spikes.csv were analysed as recordings (3 failed inputs, exit 1)
+    folder = tmp_path / "day"
+    shutil.copytree(day, folder)
+    first = run_batch([folder], out=folder / "reports", workers=1, figures=False, progress=False)
+    second = run_batch([folder], out=folder / "again", workers=1, figures=False, progress=False)
+    assert first.exit_status == second.exit_status == 0
+    assert list(second.cells["cell_id"]) == ["c00", "c01", "c02"]
+
+
+def test_the_input_folder_can_be_the_output_folder(day, tmp_path):
+    # every input was left out as lying in the output folder: "no recording files found"
+    folder = tmp_path / "day"
+    shutil.copytree(day, folder)
+    for _ in range(2):  # the second run finds its own tables there and leaves them out
+        result = run_batch([folder], out=folder, workers=1, figures=False, progress=False)
+        assert result.exit_status == 0 and len(result.cells) == 3
+
+
+def test_a_missing_input_alone_gives_its_error_and_no_rule_warnings(tmp_path):
+    # with no cell analysed, every QC rule's column was reported missing from the tables
+    result = run_batch([tmp_path / "nothere.nwb"], out=tmp_path / "out", progress=False)
+    assert result.exit_status == 1
+    assert "no such file" in result.errors[0]["message"]
+    assert result.info["warnings"] == []
+
+
+def test_a_sheet_column_named_like_a_result_is_not_joined(day, tmp_path):
+    # a `source_file` column replaced the recording's path in cells.csv without a word
+    sheet = tmp_path / "sheet.csv"
+    sheet.write_text(
+        "file,condition,source_file,rin_mohm\n"
+        + "".join(f"c0{i}.nwb,ctrl,elsewhere.nwb,1\n" for i in range(3))
+    )
+    result = run_batch([day], out=tmp_path / "out", sheet=sheet, workers=1, figures=False,
+                       progress=False)  # fmt: skip
+    cells = result.cells
+    assert cells["source_file"].str.endswith(tuple(f"c0{i}.nwb" for i in range(3))).all()
+    assert (cells["rin_mohm"] > 10).all() and (cells["condition"] == "ctrl").all()
+    said = " ".join(result.info["warnings"])
+    assert "'source_file' is not joined" in said and "'rin_mohm' is not joined" in said
+    assert list(cells.columns[:3]) == ["cell_id", "source_file", "condition"]
+
+
+def test_sample_into_a_file_is_a_usage_error(tmp_path, capsys):
+    target = tmp_path / "afile"
+    target.write_text("")
+    assert cli.main(["sample", str(target)]) == 2
+    assert "cannot make the sample folder" in capsys.readouterr().err
