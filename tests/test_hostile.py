@@ -274,7 +274,7 @@ def test_sheet_columns_cannot_overwrite_results(tmp_path):
     assert cells.loc["good", "rin_mohm"] == pytest.approx(222.2, rel=0.03)  # not the sheet's 1
     assert list(cells["condition"]) == ["ctrl", "ctrl"]
     for column in ("status", "qc_pass", "rin_mohm"):
-        assert re.search(rf"column '{column}' clashes with a result column", err), err
+        assert re.search(rf"column '{column}' is not joined: the cell table has a result", err), err
 
 
 def test_nwb_declaring_more_samples_than_a_sweep_holds_is_refused_unread(tmp_path, monkeypatch):

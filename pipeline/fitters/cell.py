@@ -467,6 +467,12 @@ def summarize_cell(
     tau, tau_ci, tau_se, tau_used = _tau(hyper, peak - re * i, s)
     wide_tau = [f for f, p in zip(hyper, peak - re * i, strict=True) if abs(p) <= s.tau_range_v]
     excess, excess_half = _frozen_excess(wide_tau, re, s.confidence)
+    if excess < 0:  # a restoring gate (Ih) lowers R as it opens; the model fits none here
+        notes.append(
+            "the sag model gave a resistance before the slow gate moves below Rin (no "
+            "restoring gate): Cm from tau/Rin"
+        )
+        excess, excess_half = 0.0, 0.0
     rin_ci = _interval(rin, rin_se, apparent.dof, s.confidence)
     rin_frozen = rin * (1.0 + excess)
     cm, cm_ci = _cm(tau, tau_ci, rin_frozen, rin_ci, excess_half / (1.0 + excess))
@@ -480,6 +486,7 @@ def summarize_cell(
         rin_ohm=rin,
         rin_ci_ohm=rin_ci,
         rin_frozen_ohm=rin_frozen,
+        ss_charge_left=_charge_left([hyper[k] for k in pick], tau),
         rin_peak_ohm=rin_peak,
         rin_apparent_ohm=apparent.value,
         rin_method=method,
@@ -534,6 +541,18 @@ def _tau(hyper: list[SweepFit], peak_m: np.ndarray, s: PassiveSettings):
 
 def _tau_ok(f: SweepFit) -> bool:
     return f.charging.ok and math.isfinite(f.charging.tau_se) and f.charging.tau_se > 0
+
+
+def _charge_left(fits: list[SweepFit], tau: float) -> float:
+    """Fraction of the charging still to come where the steady-state window starts, exp(-t/tau)
+    with t from the step onset (the largest among the sweeps behind Rin): a step too short for
+    its tau is measured before steady state, and Rin comes out low."""
+    left = [
+        math.exp(-(f.ss_window[0] - f.onset_s) / tau)
+        for f in fits
+        if math.isfinite(f.ss_window[0]) and math.isfinite(f.onset_s)
+    ]
+    return max(left) if left and math.isfinite(tau) and tau > 0 else NAN
 
 
 def _frozen_excess(fits: list[SweepFit], re: float, level: float) -> tuple[float, float]:

@@ -262,6 +262,7 @@ class CellFit:
     rin_frozen_ohm: float = (
         NAN  # input resistance before the slow (Ih) gate moves; = Rin without sag
     )
+    ss_charge_left: float = NAN  # exp(-t/tau) at the steady-state window's start (fraction)
 
     @property
     def n_sweeps(self) -> int:
@@ -294,6 +295,7 @@ class CellFit:
             "sag_step_pa": _pa(self.sag_step_a),
             "sag_ratio_at_target": self.sag_ratio_at_target,
             "rin_frozen_mohm": _mohm(self.rin_frozen_ohm),
+            "ss_charge_left_pct": 100 * self.ss_charge_left,
             "rebound_mv": _mv(self.rebound_v),
             "status": self.status,
             "notes": self.notes,

@@ -995,7 +995,10 @@ def _measure(
     r = (y - base - jump) / peak_m
     i_peak = min(int((k_peak + ksm / 2) // k), t.size - 1)
     noise = max(rms / math.sqrt(k), 1e-7)  # floor: noiseless traces still have rounding
-    sagging = ss_dv - peak_dv > max(5 * rms / math.sqrt(ksm), 0.01 * abs(peak_m))
+    # a sag peaks and then relaxes: a peak inside the steady-state window is a response still
+    # charging there (a step short for its tau), not a restoring gate
+    before_ss = on + w.settle + k_peak + ksm // 2 < w.ss[0]
+    sagging = before_ss and ss_dv - peak_dv > max(5 * rms / math.sqrt(ksm), 0.01 * abs(peak_m))
     ss_mid = float(np.mean(w.ss)) / rate
     return SweepMeasure(
         s, head, fit, tuple(reasons), t, y, r, i_peak, sagging, noise, epoch.onset, ss_mid
