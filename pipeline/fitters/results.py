@@ -147,7 +147,7 @@ class SweepFit:
     step_a: float = NAN  # step current relative to holding, A (positive = depolarizing)
     holding_a: float = NAN
     baseline_v: float = NAN  # mean in the pre-step window, V
-    baseline_rms_v: float = NAN  # RMS noise in the pre-step window, V
+    baseline_rms_v: float = NAN  # RMS noise in the pre-step window (mains hum removed), V
     baseline_after_v: float = NAN  # mean after the step has relaxed, V
     ss_dv: float = NAN  # steady-state deflection from baseline, V
     peak_dv: float = NAN  # peak deflection from baseline (noise-robust), V

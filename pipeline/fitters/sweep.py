@@ -950,7 +950,8 @@ def _measure(
         return SweepFit(**head, baseline_window=_secs(w.base, rate), reason="; ".join(reasons))
     v = remove_hum_where_flat(raw, rate, on, w.ss, s.hum_harmonics) if s.remove_hum else raw
     base = float(v[slice(*w.base)].mean())
-    rms = float(raw[slice(*w.base)].std())
+    # the noise the fits see: mains hum, removed above, is not noise of the recording's own
+    rms = float(v[slice(*w.base)].std())
     after = NAN
     if w.after is None:
         reasons.append("no relaxed window after the step for the 'after' baseline")

@@ -1,0 +1,39 @@
+"""Mains hum is removed before the fits, so it is not counted as baseline noise.
+
+A clean simulated cell with 0.5 mV RMS of 60 Hz hum lost every sweep to the noisy-baseline
+rule (0.5 mV, common practice), which measured the raw trace, hum and all.
+"""
+
+from __future__ import annotations
+
+import pytest
+
+from pipeline.analysis import analyse_recording
+from pipeline.config import load_config
+from pipeline.simulate import CellModel, Nuisance, StepProtocol, simulate_cell, true_properties
+
+PROTOCOL = StepProtocol(
+    rate_hz=20_000.0, sweep_s=1.0, onset_s=0.15, step_s=0.5,
+    amplitudes_a=tuple(a * 1e-12 for a in (-100, -80, -60, -40, -20, 20, 40)),
+)  # fmt: skip
+CELL = CellModel(soma_area_m2=1e-8, rm_ohm_m2=2.0)  # 200 MOhm, 100 pF, 20 ms
+
+
+@pytest.mark.parametrize("hum_hz", [50.0, 60.0])
+def test_hum_alone_does_not_reject_the_sweeps(hum_hz):
+    rig = Nuisance(noise_rms_v=0.1e-3, hum_rms_v=0.5e-3, hum_hz=hum_hz)
+    rec = simulate_cell(CELL, PROTOCOL, rig, seed=1, cell_id="hum", source_file="x.nwb")
+    result = analyse_recording(rec, load_config(None), None)
+    noise = [s["baseline_rms_mv"] for s in result["sweeps"]]
+    assert max(noise) < 0.15  # the 0.1 mV of noise, not the hum's 0.5 mV
+    cell, truth = result["cell"], true_properties(CELL)
+    assert cell["qc_pass"], cell["qc_reasons"]
+    assert cell["rin_mohm"] == pytest.approx(truth["rin_ohm"] * 1e-6, rel=0.03)
+    assert cell["tau_ms"] == pytest.approx(truth["tau0_s"] * 1e3, rel=0.05)
+
+
+def test_noise_itself_still_rejects_the_sweeps():
+    rig = Nuisance(noise_rms_v=0.8e-3)
+    rec = simulate_cell(CELL, PROTOCOL, rig, seed=1, cell_id="noisy", source_file="x.nwb")
+    sweeps = analyse_recording(rec, load_config(None), None)["sweeps"]
+    assert all("baseline noise" in s["excluded_because"] for s in sweeps)
