@@ -197,7 +197,8 @@ def _from_schedule(sweep: Sweep, settings: StepSettings, index: int) -> StepEpoc
             sweep,
             "no current",
             "no current stored and no step schedule in the config "
-            "(set steps.schedule_onset_s, schedule_duration_s and schedule_first_a)",
+            "(set all four: steps.schedule_onset_s, schedule_duration_s, schedule_first_a "
+            "and schedule_increment_a)",
             source="schedule",
         )
     amplitude = first + index * (settings.schedule_increment_a or 0.0)

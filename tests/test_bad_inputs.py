@@ -844,8 +844,9 @@ def check_no_current(cells, sweeps, stem):
     assert (mine["step_kind"] == "no current").all()
     assert (
         mine["excluded_because"]
-        == "not a usable step: no current stored and no step schedule in the config (set "
-        "steps.schedule_onset_s, schedule_duration_s and schedule_first_a)"
+        == "not a usable step: no current stored and no step schedule in the config (set all "
+        "four: steps.schedule_onset_s, schedule_duration_s, schedule_first_a and "
+        "schedule_increment_a)"
     ).all()
     assert cells.loc[stem, "status"] == "no usable hyperpolarizing sweep"
 

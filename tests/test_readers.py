@@ -580,6 +580,16 @@ def test_csv_without_current_column(tmp_path):
     assert rec.sweeps[0].rate == pytest.approx(1000.0)
 
 
+def test_csv_columns_of_other_kinds_are_ignored(tmp_path):
+    # a `time_of_day` column failed the whole file: "unknown unit 'of_day'"
+    rows = "\n".join(f"1,{j / 1000:.3f},{-65 + 0.01 * j:.2f},0,13:0{j % 10},x" for j in range(12))
+    path = tmp_path / "extra.csv"
+    path.write_text("sweep,time_s,voltage_mv,current_pa,time_of_day,current_step_label\n" + rows)
+    (rec,) = _open(path)
+    assert rec.sweeps[0].rate == pytest.approx(1000.0)
+    assert rec.sweeps[0].voltage[0] == pytest.approx(-0.065)
+
+
 # ---- bad inputs -------------------------------------------------------------------------------
 
 

@@ -19,7 +19,8 @@ One row per sample, a header row whose column names carry the units::
   depolarizing. A sweep whose current cells are all empty has no stored current.
 
 The delimiter (comma, tab or semicolon) is sniffed from the header; column names are not case
-sensitive; lines starting with ``#`` are comments. Extensions ``.csv``, ``.tsv`` and ``.txt``.
+sensitive; lines starting with ``#`` are comments. Other columns (``time_of_day``, ``note``) are
+ignored. Extensions ``.csv``, ``.tsv`` and ``.txt``.
 """
 
 from __future__ import annotations
@@ -105,7 +106,9 @@ def _columns(path: str, header) -> dict[str, str]:
         if key == "sweep":
             found["sweep"] = col
             continue
-        m = re.fullmatch(r"(time|voltage|current)(?:_(\w+))?", key)
+        # a unit is one word: ``time_of_day`` or ``current_step_label`` are other columns,
+        # left alone, while ``voltage_volts`` is ours with a unit we do not know
+        m = re.fullmatch(r"(time|voltage|current)(?:_([^\W_]+))?", key)
         if m is None:
             continue
         kind, unit = m.group(1), m.group(2)
