@@ -195,3 +195,28 @@ def test_a_curved_iv_is_drawn_as_its_tangent_near_rest_and_said_so():
     assert min(line.get_xdata()) == pytest.approx(min(used) / 2)
     labels = [t.get_text() for t in ax.get_children() if hasattr(t, "get_text")]
     assert any(lab.startswith("slope at 0 pA (quadratic fit)") for lab in labels)
+
+
+def test_fi_panel_keeps_its_fit_line_and_markers_inside_and_marks_block():
+    # the slope line ran above the panel's top, silent steps' markers were cut in half at
+    # 0 Hz, and a step in depolarization block (no rate) was dropped without a mark
+    from types import SimpleNamespace
+
+    from pipeline.report.figures import MISSING_COLOUR, _draw_fi
+
+    rec, epochs, fit, verdict = base.fake_cell()
+    views = _views(rec, epochs, fit, verdict)
+    steps = {v.number: v.step_a for v in views}
+    fi = [SimpleNamespace(step_a=steps[n], rate_hz=r) for n, r in ((11, 0.0), (12, 10.0),
+          (13, 20.0), (14, 30.0))]  # fmt: skip
+    spikes = SimpleNamespace(
+        fi=fi, fi_sweeps=(12, 13, 14), fi_slope_hz_per_a=6e11, fi_intercept_hz=-60.0,
+        block_step_a=steps[15],
+    )  # fmt: skip
+    fig, ax = _axes()
+    _draw_fi(ax, views, spikes)
+    lo, hi = ax.get_ylim()
+    line_top = -60.0 + 6e11 * steps[14]  # 36 Hz at 160 pA, above the highest point
+    assert lo < 0 and hi >= line_top
+    block = [ln for ln in ax.lines if ln.get_color() == MISSING_COLOUR]
+    assert block and block[0].get_xdata()[0] == pytest.approx(steps[15] * 1e12)

@@ -1134,18 +1134,28 @@ def _draw_fi(ax, views: list[_SweepView], spikes: Any) -> None:
         _note(ax, "no f–I points")
         return
     ax.plot([p[0] * 1e12 for p in points], [p[1] for p in points], "o-", color="black", ms=4, lw=1)
-    ax.set_ylim(0, max(max(p[1] for p in points) * 1.08, 5.0))  # rates start at 0 Hz
+    top = max(p[1] for p in points)
     slope = getattr(spikes, "fi_slope_hz_per_a", math.nan)
     intercept = getattr(spikes, "fi_intercept_hz", math.nan)
     steps = {v.number: v.step_a for v in views}
     fitted = [steps[n] for n in getattr(spikes, "fi_sweeps", ()) if _finite(steps.get(n))]
-    title = "f–I"
+    title, entries = "f–I", []
     if _finite(slope) and _finite(intercept) and len(fitted) >= 2:
         x = np.array([min(fitted), max(fitted)])
-        ax.plot(x * 1e12, intercept + slope * x, color=FAIL_COLOUR, lw=1.2, ls="--")
-        _key(ax, [("slope fit", "line", {"color": FAIL_COLOUR, "lw": 1.2, "ls": "--"})],
-             "lower right", alpha=0.8)  # fmt: skip
+        line = intercept + slope * x
+        ax.plot(x * 1e12, line, color=FAIL_COLOUR, lw=1.2, ls="--")
+        top = max(top, float(np.max(line)))  # the line's end stays inside the panel
+        entries.append(("slope fit", "line", {"color": FAIL_COLOUR, "lw": 1.2, "ls": "--"}))
         title += f": slope {slope * 1e-9:.0f} Hz/nA over {len(fitted)} steps"
+    block = getattr(spikes, "block_step_a", math.nan)
+    if _finite(block):  # its rate is not a firing rate: no point, but say where it starts
+        ax.axvline(block * 1e12, color=MISSING_COLOUR, lw=1.0, ls=":")
+        entries.append(("depolarization block", "line", {"color": MISSING_COLOUR, "ls": ":"}))
+        ax.update_datalim([(block * 1e12, 0.0)], updatey=False)
+    top = max(top * 1.08, 5.0)
+    ax.set_ylim(-0.04 * top, top)  # a little below 0 Hz: silent steps' markers are whole
+    if entries:
+        _key(ax, entries, "lower right", alpha=0.8)
     _title(ax, title)
 
 
