@@ -220,3 +220,44 @@ def test_fi_panel_keeps_its_fit_line_and_markers_inside_and_marks_block():
     assert lo < 0 and hi >= line_top
     block = [ln for ln in ax.lines if ln.get_color() == MISSING_COLOUR]
     assert block and block[0].get_xdata()[0] == pytest.approx(steps[15] * 1e12)
+
+
+def test_overlapping_draws_in_two_threads_leave_the_collector_as_they_found_it():
+    # a flag, not a count: the second thread's draw recorded "was off", the first one's end
+    # turned the collector on mid-draw, and a child forked then kept it off for good
+    import gc
+    import threading
+
+    from pipeline.report.figures import _Drawing, _gc_paused, _in_forked_child
+
+    assert gc.isenabled()
+    first_in, second_in, first_out = threading.Event(), threading.Event(), threading.Event()
+    seen = {}
+
+    def first():
+        with _gc_paused():
+            first_in.set()
+            second_in.wait(10)
+        first_out.set()
+
+    def second():
+        first_in.wait(10)
+        with _gc_paused():
+            second_in.set()
+            first_out.wait(10)
+            seen["during"] = gc.isenabled()
+            seen["flag"] = _Drawing.gc_paused
+
+    threads = [threading.Thread(target=f) for f in (first, second)]
+    for t in threads:
+        t.start()
+    for t in threads:
+        t.join(20)
+    assert seen == {"during": False, "flag": True}  # still paused for the second draw
+    assert gc.isenabled() and _Drawing.gc_depth == 0
+    # a child forked while another thread drew turns it back on (the state it inherits, and
+    # the fork's handler, set up by hand: the drawing thread is not in the child)
+    gc.disable()
+    _Drawing.gc_paused, _Drawing.gc_depth = True, 1
+    _in_forked_child()
+    assert gc.isenabled() and _Drawing.gc_depth == 0 and not _Drawing.gc_paused

@@ -1435,7 +1435,9 @@ class _Drawing:
     collector it paused), for a child forked meanwhile by another thread to undo."""
 
     rc_before: dict[str, Any] | None = None
-    gc_paused = False
+    gc_paused = False  # the collector was on when the first of the draws under way paused it
+    gc_depth = 0  # draws under way (threads) that want it paused
+    gc_lock = threading.Lock()
 
 
 def _in_forked_child() -> None:
@@ -1457,7 +1459,8 @@ def _in_forked_child() -> None:
         _Drawing.rc_before = None
     if _Drawing.gc_paused:
         gc.enable()
-        _Drawing.gc_paused = False
+    _Drawing.gc_paused, _Drawing.gc_depth = False, 0
+    _Drawing.gc_lock = threading.Lock()  # perhaps held by a thread the child does not have
 
 
 if hasattr(os, "register_at_fork"):
@@ -1939,15 +1942,19 @@ def _gc_paused():
     collections that walk the whole heap of a worker (imported libraries included), ~10 % of the
     figure's time. The figure's own garbage is collected once it is done.
     """
-    was_enabled = gc.isenabled()
-    gc.disable()
-    _Drawing.gc_paused = was_enabled
+    with _Drawing.gc_lock:  # counted: the last of several drawing threads turns it back on
+        if _Drawing.gc_depth == 0:
+            _Drawing.gc_paused = gc.isenabled()
+            gc.disable()
+        _Drawing.gc_depth += 1
     try:
         yield
     finally:
-        if was_enabled:
-            gc.enable()
-            _Drawing.gc_paused = False
+        with _Drawing.gc_lock:
+            _Drawing.gc_depth -= 1
+            if _Drawing.gc_depth == 0 and _Drawing.gc_paused:
+                gc.enable()
+                _Drawing.gc_paused = False
 
 
 def _cell_figure(
