@@ -192,6 +192,9 @@ def run_batch(
             run = {"inputs_given": inputs_given, "started": started, "hashes": hashes, **stats}
             run |= {"force": force}
             return _assemble(files, results, run, config, outdir, the_sheet, figures)
+        except PatchbatchError as exc:  # e.g. an unreachable scheduler: in the log file too
+            log.error("%s", exc)
+            raise
         except OSError as exc:  # a full disk, a folder gone: say where, keep what is cached
             where = exc.filename or outdir
             raise OutputFolderError(

@@ -927,3 +927,17 @@ def test_sample_into_a_file_is_a_usage_error(tmp_path, capsys):
     target.write_text("")
     assert cli.main(["sample", str(target)]) == 2
     assert "cannot make the sample folder" in capsys.readouterr().err
+
+
+def test_an_unreachable_scheduler_is_said_in_the_log_file_too(day, tmp_path, monkeypatch):
+    # the run had already written its owner record and opened its log: the log said nothing
+    distributed = pytest.importorskip("distributed")
+
+    def refuse(address, *args, **kwargs):
+        raise OSError("connection refused")
+
+    monkeypatch.setattr(distributed, "Client", refuse)
+    out = tmp_path / "out"
+    code = cli.main(["run", str(day), "-o", str(out), "-q", "--scheduler", "tcp://127.0.0.1:9"])
+    assert code == 2
+    assert "cannot reach the Dask scheduler" in (out / "patchbatch.log").read_text()
