@@ -80,8 +80,8 @@ class BatchResult:
 def discover_inputs(inputs: Sequence[str | Path], exclude: Path | None = None) -> list[Path]:
     """Files to analyse: the files given, and supported files found recursively in folders.
 
-    The metadata sheet (``metadata.csv``) and anything inside ``exclude`` (the output folder) are
-    left out. A path that does not exist is returned as is, so that it becomes an error row.
+    The metadata sheet (``metadata.csv``) and the tables this program writes (in ``exclude``,
+    the output folder, or in an earlier run's output folder) are left out. A path that does not exist is returned as is, so that it becomes an error row.
 
     Raises
     ------
@@ -653,7 +653,7 @@ def _assemble(files, results, run, config, outdir, sheet, figures):
     cells = tables.cells_frame(cell_rows, sheet_columns)
     sweeps = tables.sweeps_frame(sweep_rows)
     spikes = tables.spikes_frame(spike_rows)
-    if any(not r["error"] and r["cells"] for r in results):  # else no table has its columns
+    if sweep_rows:  # a cell was measured: else no table has the rules' columns
         warnings += _rule_column_problems(config, cells, sweeps)
     tables.write_tables(outdir, cells, sweeps, spikes)
     seconds["tables"] = time.perf_counter() - t0

@@ -152,7 +152,7 @@ def _parse(text: str, where: str) -> pd.DataFrame:
     body = text.lstrip("\r\n")
     try:
         # the separators sheets use; left open, the sniffer may pick a letter of a name
-        dialect: type[csv.Dialect] | csv.Dialect = csv.Sniffer().sniff(body[:4096], ",;\t|")
+        dialect: type[csv.Dialect] | csv.Dialect = csv.Sniffer().sniff(body[:4096], ",;\t| ")
         header = next(csv.reader(StringIO(body), dialect))
     except (csv.Error, ValueError):  # no dialect found, or one csv.reader refuses (3.13)
         dialect = csv.excel
@@ -181,7 +181,7 @@ def _rows(body: str, dialect, names: list[str], where: str) -> list[list[str]]:
         raise SheetError(f"{where}: not a readable CSV table ({exc})") from None
     out = []
     for number, row in enumerate(rows[1:], start=2):
-        if not row:  # a blank line
+        if not any(v.strip() for v in row):  # a blank line, or one of spaces
             continue
         extra = [v for v in row[width:] if v.strip()]
         if extra:

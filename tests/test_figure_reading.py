@@ -261,3 +261,9 @@ def test_overlapping_draws_in_two_threads_leave_the_collector_as_they_found_it()
     _Drawing.gc_paused, _Drawing.gc_depth = True, 1
     _in_forked_child()
     assert gc.isenabled() and _Drawing.gc_depth == 0 and not _Drawing.gc_paused
+
+
+def test_values_just_below_a_thousand_are_not_in_exponent_notation():
+    from pipeline.report.figures import _num
+
+    assert _num(999.7) == "1000" and _num(999.4) == "999"

@@ -117,3 +117,10 @@ def test_one_file_spelled_two_ways_is_a_duplicate(tmp_path, first, second):
     text = f"file,condition\n{first},ctrl\n{second},drug\n"
     with pytest.raises(SheetError, match=r"name the same file \(rows 2 and 3\)"):
         read_sheet(_write(tmp_path, text))
+
+
+def test_a_line_of_spaces_is_blank_and_a_space_separated_sheet_reads(tmp_path):
+    sheet = read_sheet(_write(tmp_path, "file,condition\ncell01.nwb,ctrl\n   \n"))
+    assert len(sheet.rows) == 1
+    sheet = read_sheet(_write(tmp_path, "file condition\ncell01.nwb ctrl\ncell02.nwb drug\n"))
+    assert sheet.lookup("cell02", "/d/cell02.nwb")[1] == {"condition": "drug"}

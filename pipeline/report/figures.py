@@ -895,7 +895,10 @@ def _draw_baselines(ax, views: list[_SweepView]) -> None:
 def _num(x: float, digits: int = 3) -> str:
     """``x`` to ``digits`` significant digits, whole numbers written out (``1300``, not the
     ``1.3e+03`` of ``g``)."""
-    return f"{x:.0f}" if abs(x) >= 10**digits else f"{x:.{digits}g}"
+    text = f"{x:.{digits}g}"
+    if "e+" in text and abs(x) < 1e6:  # 999.7 rounds to 1e+03; up to a million: written out
+        return f"{x:.0f}"
+    return text
 
 
 def _fmt(value: float, scale: float, unit: str, digits: int = 3) -> str:
