@@ -81,7 +81,8 @@ def discover_inputs(inputs: Sequence[str | Path], exclude: Path | None = None) -
     """Files to analyse: the files given, and supported files found recursively in folders.
 
     The metadata sheet (``metadata.csv``) and the tables this program writes (in ``exclude``,
-    the output folder, or in an earlier run's output folder) are left out. A path that does not exist is returned as is, so that it becomes an error row.
+    the output folder, or in an earlier run's output folder) are left out. A path that does not
+    exist is returned as is, so that it becomes an error row.
 
     Raises
     ------

@@ -153,34 +153,32 @@ def _parse(text: str, where: str) -> pd.DataFrame:
     try:
         # the separators sheets use; left open, the sniffer may pick a letter of a name
         dialect: type[csv.Dialect] | csv.Dialect = csv.Sniffer().sniff(body[:4096], ",;\t| ")
-        header = next(csv.reader(StringIO(body), dialect))
-    except (csv.Error, ValueError):  # no dialect found, or one csv.reader refuses (3.13)
+    except csv.Error:  # no dialect found
         dialect = csv.excel
-        header = next(csv.reader(StringIO(body), dialect))
-    names = [h.strip() for h in header]
+    try:
+        table = list(csv.reader(StringIO(body), dialect))
+    except (csv.Error, ValueError):  # a dialect csv.reader refuses (3.13), or a broken quote
+        try:
+            table = list(csv.reader(StringIO(body), csv.excel))
+        except csv.Error as exc:
+            raise SheetError(f"{where}: not a readable CSV table ({exc})") from None
+    names = [h.strip() for h in table[0]]
     twice = sorted({n for n in names if n and names.count(n) > 1})
     if twice:
         raise SheetError(f"{where}: column {twice[0]!r} appears twice in the header")
-    rows = _rows(body, dialect, names, where)
+    rows = _rows(table[1:], names, where)
     keep = [k for k, n in enumerate(names) if n]  # trailing separators in the header: no column
     return pd.DataFrame([[r[k] for k in keep] for r in rows], columns=[names[k] for k in keep])
 
 
-def _rows(body: str, dialect, names: list[str], where: str) -> list[list[str]]:
-    """The data rows, each as wide as the header: short rows padded with empty cells, and
-    empty cells past the header's end (a spreadsheet's trailing separators) dropped. A value
-    past the header's end, or under a column with no name, would be joined to the wrong
-    column or lost, so it stops the run."""
-    import csv
-    from io import StringIO
-
+def _rows(table: list[list[str]], names: list[str], where: str) -> list[list[str]]:
+    """The data rows (line 2 on), each as wide as the header: short rows padded with empty
+    cells, and empty cells past the header's end (a spreadsheet's trailing separators) dropped.
+    A value past the header's end, or under a column with no name, would be joined to the
+    wrong column or lost, so it stops the run."""
     width = len(names)
-    try:
-        rows = list(csv.reader(StringIO(body), dialect))
-    except csv.Error as exc:
-        raise SheetError(f"{where}: not a readable CSV table ({exc})") from None
     out = []
-    for number, row in enumerate(rows[1:], start=2):
+    for number, row in enumerate(table, start=2):
         if not any(v.strip() for v in row):  # a blank line, or one of spaces
             continue
         extra = [v for v in row[width:] if v.strip()]

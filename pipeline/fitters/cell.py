@@ -478,7 +478,8 @@ def summarize_cell(
     cm, cm_ci = _cm(tau, tau_ci, rin_frozen, rin_ci, excess_half / (1.0 + excess))
     sag, at_target = _sag(hyper, i, ss, peak, re, s)
     used = sorted({hyper[k].sweep for k in pick} | {hyper[-1].sweep} | tau_used)
-    peel = _peel([hyper[k] for k in pick], s) if s.two_exp else {}
+    picked = [hyper[k] for k in pick]  # the sweeps behind Rin
+    peel = _peel(picked, s) if s.two_exp else {}
     return CellFit(
         **common,
         used=tuple(used),
@@ -486,7 +487,7 @@ def summarize_cell(
         rin_ohm=rin,
         rin_ci_ohm=rin_ci,
         rin_frozen_ohm=rin_frozen,
-        ss_charge_left=_charge_left([hyper[k] for k in pick], tau),
+        ss_charge_left=_charge_left(picked, tau),
         rin_peak_ohm=rin_peak,
         rin_apparent_ohm=apparent.value,
         rin_method=method,
