@@ -194,14 +194,16 @@ def run_batch(
             run |= {"force": force}
             return _assemble(files, results, run, config, outdir, the_sheet, figures)
         except PatchbatchError as exc:  # e.g. an unreachable scheduler: in the log file too
-            log.error("%s", exc)
+            _log_stop(handler, str(exc))
             raise
         except OSError as exc:  # a full disk, a folder gone: say where, keep what is cached
             where = exc.filename or outdir
-            raise OutputFolderError(
+            stop = OutputFolderError(
                 f"{where}: could not write ({exc.strerror or exc}); what was analysed is kept "
                 "in the cache, so the same command resumes"
-            ) from None
+            )
+            _log_stop(handler, str(stop))
+            raise stop from None
     finally:
         logging.getLogger("patchbatch").removeHandler(handler)
         handler.close()
@@ -856,7 +858,21 @@ def _sha_or_none(path: Path) -> str | None:
         return None
 
 
-def _log_to_file(outdir: Path) -> logging.Handler:
+def _log_stop(handler: logging.FileHandler, message: str) -> None:
+    """The error that stops a run, into its log file only: the caller raises it, and the
+    command line prints it once (through the logger, the console handler would print it too,
+    even with -q). A log file that cannot take it (a full disk) stays as it is, silently."""
+    record = log.makeRecord(log.name, logging.ERROR, __file__, 0, "%s", (message,), None)
+    with contextlib.suppress(Exception):
+        handler.acquire()
+        try:
+            handler.stream.write(handler.format(record) + "\n")
+            handler.stream.flush()
+        finally:
+            handler.release()
+
+
+def _log_to_file(outdir: Path) -> logging.FileHandler:
     """The run's log file: every message, whatever the console shows."""
     logger = logging.getLogger("patchbatch")
     logger.setLevel(logging.INFO)

@@ -1160,6 +1160,11 @@ def test_failed_write_exits_2_naming_the_file(goods, tmp_path, monkeypatch):
     assert isinstance(outcome, Outcome)
     assert outcome.code == 2
     assert re.search(r"index\.html.*No space left on device", outcome.stderr)
+    # said once on the console (it was printed twice, by the logger and by the command), and
+    # in the run's log file, which had no word of why the run stopped
+    assert outcome.stderr.count("No space left on device") == 1, outcome.stderr
+    log_text = (tmp_path / "out" / "patchbatch.log").read_text()
+    assert re.search(r"ERROR .*index\.html.*No space left on device", log_text), log_text
 
 
 def test_same_command_after_a_failed_write_completes_the_run(goods, tmp_path, monkeypatch):
@@ -1323,6 +1328,7 @@ def test_unreachable_scheduler_exits_2_naming_it(goods, tmp_path):
         )
     assert outcome.code == 2
     assert "tcp://127.0.0.1:9" in outcome.stderr and "could not write" not in outcome.stderr
+    assert outcome.stderr.count("cannot reach") == 1, outcome.stderr  # once, not twice
 
 
 def test_nix_segment_with_current_only_is_listed_as_skipped(goods, tmp_path):
