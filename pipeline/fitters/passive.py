@@ -122,7 +122,8 @@ def fit_sweeps(
     # traces are measured once; only the charging fit is redone in the second pass
     measured = [measure_sweep(sw, ep, settings) for sw, ep in pairs]
     fits = [complete_sweep(m, settings if k in pilots else skip) for k, m in enumerate(measured)]
-    second = _second_pass_settings([fits[k] for k in pilots], settings) or settings
+    second, fast_found = _second_pass_settings([fits[k] for k in pilots], settings)
+    second = second or settings
     for k in hyper:
         m = measured[k]
         if k in pilots and (second is settings or _same_fit(m, settings, second)):
@@ -133,7 +134,7 @@ def fit_sweeps(
             and _same_fit(m, settings, _peeled(second))
         ):
             continue  # it peeled nothing: its start stays, the same fit again
-        fits[k] = _refit(fits[k], m, second)
+        fits[k] = _refit(fits[k], m, second, fast_found)
     return fits
 
 
@@ -142,10 +143,16 @@ def _same_fit(m: SweepFit | SweepMeasure, a: PassiveSettings, b: PassiveSettings
     return isinstance(m, SweepFit) or m.same_charging(a, b)
 
 
-def _refit(first: SweepFit, m: SweepFit | SweepMeasure, settings: PassiveSettings) -> SweepFit:
-    """Second-pass fit of a sweep, keeping the fast time constant the first pass peeled."""
+def _refit(
+    first: SweepFit, m: SweepFit | SweepMeasure, settings: PassiveSettings, fast_found: bool
+) -> SweepFit:
+    """Second-pass fit of a sweep. It keeps the fast time constant its first pass peeled when
+    the cell found a fast component; a peel the cell outvoted is not reported (``tau_fast_ms``
+    empty, as on the sweeps that peeled nothing)."""
     again = complete_sweep(m, settings)
-    return replace(again, tau_fast_s=first.tau_fast_s) if math.isnan(again.tau_fast_s) else again
+    if fast_found and math.isnan(again.tau_fast_s):
+        return replace(again, tau_fast_s=first.tau_fast_s)
+    return again
 
 
 # A fit start (s after the onset) that moves no fit (every bin lies after the settling) but
@@ -160,7 +167,9 @@ def _peeled(settings: PassiveSettings) -> PassiveSettings:
     return settings
 
 
-def _second_pass_settings(fits: Sequence[SweepFit], settings: PassiveSettings):
+def _second_pass_settings(
+    fits: Sequence[SweepFit], settings: PassiveSettings
+) -> tuple[PassiveSettings | None, bool]:
     """Settings for refitting the charging curves with what the cell's largest hyperpolarizing
     steps (best signal-to-noise) showed: the dendritic equalisation time, below which no fit
     starts, and whether the cell sags (then every hyperpolarizing sweep gets the exp+sag model).
@@ -170,13 +179,14 @@ def _second_pass_settings(fits: Sequence[SweepFit], settings: PassiveSettings):
     late fit whose tau is drawn high overshoots the early bins, backwards, by more than 3 SD of
     a bin; a simulated 5 ms cell then lost every sweep to the R² rule, 1 cell in 40). The
     decision, "none" too, is handed to every sweep (a start of at least ``_DECIDED``): the
-    small steps are too noisy to peel on their own."""
+    small steps are too noisy to peel on their own. Also returned: whether the cell has a
+    fast component."""
     hyper = sorted(
         (f for f in fits if f.step_a < 0 and f.charging.ok and math.isfinite(f.peak_dv)),
         key=lambda f: f.peak_dv,
     )[:3]
     if not hyper:
-        return None
+        return None, False
     eq = [
         settings.equalization_factor * f.tau_fast_s
         for f in hyper
@@ -188,5 +198,5 @@ def _second_pass_settings(fits: Sequence[SweepFit], settings: PassiveSettings):
     if model == "auto":
         model = "exp+sag" if hyper[0].charging.model == "exp+sag" else "exp"
     if start == settings.fit_start_min_s and model == settings.charging_model:
-        return None
-    return replace(settings, fit_start_min_s=start, charging_model=model)
+        return None, found
+    return replace(settings, fit_start_min_s=start, charging_model=model), found
