@@ -125,12 +125,34 @@ def _wanted(path: Path, exclude: Path | None) -> bool:
     return not (here or (folder / cache.CACHE_DIR).is_dir())
 
 
-def find_sheet(inputs: Sequence[str | Path]) -> Path | None:
-    """A ``metadata.csv`` in the first input folder that has one."""
+def find_sheets(inputs: Sequence[str | Path]) -> list[Path]:
+    """The ``metadata.csv`` of every input folder that has one, in input order."""
+    found: dict[Path, Path] = {}
     for item in map(Path, inputs):
         if item.is_dir() and (item / SHEET_NAME).is_file():
-            return item / SHEET_NAME
-    return None
+            found.setdefault((item / SHEET_NAME).resolve(), item / SHEET_NAME)
+    return list(found.values())
+
+
+def _read_sheets(sheet: str | Path | None, inputs: Sequence[str | Path]) -> list[_Scoped]:
+    """The sheets to join: ``--sheet`` for every file; else the input folders' own. One found
+    sheet describes every file (it may name files of other inputs by their folders); with
+    several, each describes the files under its folder, so that two days' folders, each with
+    its own ``cell01.nwb`` row, are joined to their own sheets."""
+    if sheet is not None:
+        return [_Scoped(read_sheet(sheet), None)]
+    found = find_sheets(inputs)
+    if len(found) == 1:
+        return [_Scoped(read_sheet(found[0]), None)]
+    return [_Scoped(read_sheet(path), path.parent.resolve()) for path in found]
+
+
+@dataclass(frozen=True)
+class _Scoped:
+    """A metadata sheet and the folder whose files it describes (None: every file)."""
+
+    sheet: Sheet
+    folder: Path | None
 
 
 def run_batch(
@@ -156,7 +178,8 @@ def run_batch(
     out : path
         Output folder (created).
     sheet : path, optional
-        Metadata sheet; by default ``metadata.csv`` in an input folder, if any.
+        Metadata sheet for every file; by default each input folder's ``metadata.csv``, for
+        the files under that folder (one found sheet is used for every file).
     workers : int, optional
         Local processes; default from the config (0 = all cores).
     scheduler : str, optional
@@ -179,8 +202,7 @@ def run_batch(
     figures = config.report.figures if figures is None else figures
     inputs_given = [str(Path(p).resolve()) for p in inputs]
     # Usage errors (sheet, output folder) stop the run before anything is written.
-    sheet_path = Path(sheet) if sheet is not None else find_sheet(inputs)
-    the_sheet = read_sheet(sheet_path) if sheet_path is not None else None
+    sheets = _read_sheets(sheet, inputs)
     files = discover_inputs(inputs, exclude=outdir)
     _prepare_outdir(outdir, inputs_given, config, force)
     handler = _log_to_file(outdir)
@@ -192,7 +214,7 @@ def run_batch(
             )
             run = {"inputs_given": inputs_given, "started": started, "hashes": hashes, **stats}
             run |= {"force": force}
-            return _assemble(files, results, run, config, outdir, the_sheet, figures)
+            return _assemble(files, results, run, config, outdir, sheets, figures)
         except PatchbatchError as exc:  # e.g. an unreachable scheduler: in the log file too
             _log_stop(handler, str(exc))
             raise
@@ -614,7 +636,7 @@ def _report_one(result: dict[str, Any], bar) -> None:
         bar.update(1)
 
 
-def _assemble(files, results, run, config, outdir, sheet, figures):
+def _assemble(files, results, run, config, outdir, sheets, figures):
     from pipeline.report import page, tables
 
     cell_rows, sweep_rows, spike_rows, errors, fig_map = [], [], [], [], {}
@@ -650,7 +672,7 @@ def _assemble(files, results, run, config, outdir, sheet, figures):
                         "traceback": cell["traceback"],
                     }
                 )
-    sheet_columns, warnings = _join_sheet(cell_rows, sheet)
+    sheet_columns, warnings = _join_sheets(cell_rows, sheets)
     warnings += figure_problems
     t0 = time.perf_counter()
     cells = tables.cells_frame(cell_rows, sheet_columns)
@@ -661,7 +683,7 @@ def _assemble(files, results, run, config, outdir, sheet, figures):
     tables.write_tables(outdir, cells, sweeps, spikes)
     seconds["tables"] = time.perf_counter() - t0
     n_pass = int(cells["qc_pass"].sum()) if "qc_pass" in cells else 0
-    info = _run_info(files, results, run, config, errors, warnings, sheet, seconds, n_pass)
+    info = _run_info(files, results, run, config, errors, warnings, sheets, seconds, n_pass)
     t0 = time.perf_counter()
     page.write_page(
         outdir,
@@ -779,8 +801,48 @@ def _error_row(result: dict[str, Any]) -> dict[str, Any]:
     }
 
 
+def _join_sheets(
+    cell_rows: list[dict[str, Any]], sheets: Sequence[_Scoped]
+) -> tuple[tuple[str, ...], list[str]]:
+    """Join each cell row to its sheet (:func:`_join_sheet`); returns the columns joined, in
+    the order the sheets give them (a cell whose sheet lacks one has it empty), and the
+    warnings. A cell under no sheet's folder is said."""
+    if not sheets:
+        return (), []
+    results = {column for row in cell_rows for column in row}
+    groups: dict[int, list[dict[str, Any]]] = {}
+    warnings: list[str] = []
+    for row in cell_rows:
+        k = _sheet_of(str(row["source_file"]), sheets)
+        if k is None:
+            warnings.append(
+                f"no metadata sheet for cell {row['cell_id']} ({row['source_file']}): it is "
+                "under none of the input folders with a metadata.csv"
+            )
+        groups.setdefault(-1 if k is None else k, []).append(row)
+    joined: dict[str, None] = {}
+    for k, scoped in enumerate(sheets):
+        columns, said = _join_sheet(groups.get(k, []), scoped.sheet, results)
+        joined |= dict.fromkeys(columns)
+        warnings += said
+    for row in cell_rows:
+        for column in joined:
+            row.setdefault(column, "")
+    return tuple(joined), list(dict.fromkeys(warnings))
+
+
+def _sheet_of(source_file: str, sheets: Sequence[_Scoped]) -> int | None:
+    """Index of the sheet describing a file: the one for every file, else the sheet of the
+    innermost folder holding it (None when no sheet's folder holds it)."""
+    if sheets[0].folder is None:
+        return 0
+    path = Path(source_file).resolve()
+    inside = [k for k, s in enumerate(sheets) if s.folder and path.is_relative_to(s.folder)]
+    return max(inside, key=lambda k: len(sheets[k].folder.parts), default=None)
+
+
 def _join_sheet(
-    cell_rows: list[dict[str, Any]], sheet: Sheet | None
+    cell_rows: list[dict[str, Any]], sheet: Sheet, results: set[str]
 ) -> tuple[tuple[str, ...], list[str]]:
     """Add the sheet's columns to each cell row; report cells and rows that found no partner.
 
@@ -789,9 +851,6 @@ def _join_sheet(
     like a result column (``source_file``, ``rin_mohm``...) is not joined: the result stays.
     Returns the columns joined and the warnings.
     """
-    if sheet is None:
-        return (), []
-    results = {column for row in cell_rows for column in row}
     clashes = [c for c in sheet.columns if c in results]
     joined = tuple(c for c in sheet.columns if c not in results)
     hits = [sheet.lookup(str(row["cell_id"]), str(row["source_file"])) for row in cell_rows]
@@ -826,7 +885,7 @@ def _join_sheet(
     return joined, list(dict.fromkeys(warnings))
 
 
-def _run_info(files, results, run, config, errors, warnings, sheet, secs, n_pass):
+def _run_info(files, results, run, config, errors, warnings, sheets, secs, n_pass):
     return {
         "version": __version__,
         "started": run["started"].isoformat(),
@@ -834,7 +893,7 @@ def _run_info(files, results, run, config, errors, warnings, sheet, secs, n_pass
         "inputs": [
             {"file": str(p), "sha256": h} for p, h in zip(files, run["hashes"], strict=True)
         ],
-        "sheet": sheet.path if sheet else None,
+        "sheets": [s.sheet.path for s in sheets],
         "config": config.to_dict(),
         "config_digest": config.digest(),
         "counts": {

@@ -743,6 +743,37 @@ def test_sheet_rows_with_folders_join_the_file_in_those_folders(day, tmp_path):
     assert str(folder / "rig1" / "cell01.nwb") in shared[0]
 
 
+def test_each_input_folder_is_joined_to_its_own_sheet(day, tmp_path):
+    # two days, each with a cell01.nwb and its own metadata.csv: only the first folder's sheet
+    # was read, so the second day's cell took the first day's row (or none) with no word
+    days = {"day1": ("c00", "standard"), "day2": ("c01", "enriched")}
+    for name, (source, condition) in days.items():
+        (tmp_path / name).mkdir()
+        shutil.copyfile(day / f"{source}.nwb", tmp_path / name / "cell01.nwb")
+        (tmp_path / name / "metadata.csv").write_text(
+            f"file,condition,{name}_slice\ncell01.nwb,{condition},{name[-1]}\n"
+        )
+    loose = tmp_path / "loose" / "c02.nwb"  # a file given by itself: under no sheet's folder
+    loose.parent.mkdir()
+    shutil.copyfile(day / "c02.nwb", loose)
+    inputs = [tmp_path / "day1", tmp_path / "day2", loose]
+    result = run_batch(inputs, out=tmp_path / "out", workers=1, figures=False, progress=False)
+    cells = _cells(tmp_path / "out").set_index("cell_id")
+    assert list(cells.loc[["day1-cell01", "day2-cell01"], "condition"]) == [
+        "standard",
+        "enriched",
+    ]
+    # a column only one sheet has is empty for the other sheet's cells
+    assert cells.loc["day1-cell01", "day1_slice"] == 1 and pd.isna(
+        cells.loc["day2-cell01", "day1_slice"]
+    )
+    assert pd.isna(cells.loc["c02", "condition"])
+    assert result.info["sheets"] == [str(tmp_path / d / "metadata.csv") for d in days]
+    said = [w for w in result.info["warnings"] if "c02" in w]
+    assert len(said) == 1 and "no metadata sheet" in said[0], result.info["warnings"]
+    assert len(result.info["warnings"]) == 1, result.info["warnings"]
+
+
 @pytest.mark.parametrize(
     "paths, expected",
     [
