@@ -10,7 +10,14 @@ import pytest
 
 from pipeline.analysis import analyse_recording
 from pipeline.config import load_config
-from pipeline.simulate import CellModel, Nuisance, StepProtocol, simulate_cell, true_properties
+from pipeline.simulate import (
+    CellModel,
+    Nuisance,
+    SpikingChannels,
+    StepProtocol,
+    simulate_cell,
+    true_properties,
+)
 
 PROTOCOL = StepProtocol(
     rate_hz=20_000.0, sweep_s=1.0, onset_s=0.15, step_s=0.5,
@@ -37,3 +44,22 @@ def test_noise_itself_still_rejects_the_sweeps():
     rec = simulate_cell(CELL, PROTOCOL, rig, seed=1, cell_id="noisy", source_file="x.nwb")
     sweeps = analyse_recording(rec, load_config(None), None)["sweeps"]
     assert all("baseline noise" in s["excluded_because"] for s in sweeps)
+
+
+def test_spikes_do_not_leak_into_the_hum():
+    # The hum is fitted before the step and in the steady-state window; spikes there leaked
+    # into the fitted sinusoids, and removing them put ~1 mV of false hum into the baseline:
+    # the sweeps that fired most failed the noisy-baseline rule (the sample day's cell03 lost
+    # its 250 and 300 pA steps, and its f-I slope with them).
+    protocol = StepProtocol(
+        rate_hz=20_000.0, sweep_s=1.0, onset_s=0.15, step_s=0.5,
+        amplitudes_a=tuple(a * 1e-12 for a in (-60, -20, 300, 400, 500)),
+    )  # fmt: skip
+    cell = CellModel(soma_area_m2=1e-8, rm_ohm_m2=2.0, spiking=SpikingChannels())
+    rig = Nuisance(noise_rms_v=0.1e-3, hum_rms_v=0.15e-3, hum_hz=50.0)
+    rec = simulate_cell(cell, protocol, rig, seed=2, cell_id="firing", source_file="x.nwb")
+    sweeps = analyse_recording(rec, load_config(None), None)["sweeps"]
+    firing = [s for s in sweeps if s["spike_count"] >= 5]
+    assert len(firing) >= 2, [s["spike_count"] for s in sweeps]  # the case under test
+    assert all(s["baseline_rms_mv"] < 0.15 for s in sweeps), [s["baseline_rms_mv"] for s in sweeps]
+    assert all(s["used"] for s in sweeps), [s["excluded_because"] for s in sweeps]

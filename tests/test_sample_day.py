@@ -70,3 +70,8 @@ def test_batch_on_the_sample_day_rejects_the_depolarized_cell(tmp_path):
     assert not cells.loc["cell05", "qc_pass"]
     assert "resting potential" in cells.loc["cell05", "qc_reasons"]
     assert cells.loc["cell03", "sag_ratio"] > 0.3  # the strong-Ih cell sags clearly
+    # the sample rig's noise (0.15-0.3 mV RMS) is below the noisy-baseline rule (0.5 mV): no
+    # sweep is lost to it, firing sweeps included (spikes once leaked into the hum fit)
+    sweeps = pd.read_csv(out / "sweeps.csv")
+    noisy = sweeps[sweeps["excluded_because"].astype(str).str.contains("baseline noise")]
+    assert noisy.empty, noisy[["cell_id", "sweep", "excluded_because"]]

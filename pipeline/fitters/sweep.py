@@ -246,9 +246,23 @@ def remove_hum_where_flat(
 
     The hum is fitted before the step (samples ``0 .. onset_index``) and in the steady-state
     window ``ss`` (samples): the charging curve would leak into the sinusoids, and so would
-    the after-step tail, which still relaxes (and rebounds). See :func:`remove_hum`.
+    the after-step tail, which still relaxes (and rebounds). A steady-state window that is not
+    flat (spikes on a depolarizing step) is left out too: spikes leaked into the fitted hum,
+    whose removal then put a spurious sinusoid of ~1 mV into the baseline, and the sweeps that
+    fired most failed the noisy-baseline rule. See :func:`remove_hum`.
     """
-    return remove_hum(v, rate, [(0, onset_index), ss], harmonics)
+    before = (0, onset_index)
+    return remove_hum(
+        v, rate, [before, ss] if _as_flat(v, rate, ss, before) else [before], harmonics
+    )
+
+
+def _as_flat(v: np.ndarray, rate: float, region: tuple[int, int], flat: tuple[int, int]) -> bool:
+    """Whether ``region`` spans at most 3 times the range of the flat ``flat`` (samples as the
+    hum fit takes them: a spike's upper half, ~0.5 ms, holds some). False with NaN in either."""
+    stride = max(1, int(rate // 2500))
+    ranges = [np.ptp(v[a:b:stride]) if b > a else 0.0 for a, b in (region, flat)]
+    return bool(ranges[0] <= 3.0 * ranges[1])
 
 
 def _design(basis: np.ndarray, rate: float, regions, rows: list[np.ndarray]):
