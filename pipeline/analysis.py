@@ -107,6 +107,7 @@ def _analyse(
     recording: Recording, config: Config, figure_dir: str | None, timings: dict[str, float]
 ) -> dict[str, Any]:
     from pipeline import qc
+    from pipeline.fitters.cell import bridge_estimate
     from pipeline.fitters.passive import fit_sweeps, summarize_cell
     from pipeline.fitters.spikes import fit_spiking
     from pipeline.steps import find_steps
@@ -115,7 +116,8 @@ def _analyse(
     epochs = find_steps(recording, config.steps)
     by_number = {s.number: s for s in recording.sweeps}
     fits = fit_sweeps([(by_number[e.sweep], e) for e in epochs if e.usable], config.passive)
-    spikes_all = fit_spiking(recording, epochs, config.spikes)
+    bridge = bridge_estimate(fits, config.passive)  # block is judged on the membrane's voltage
+    spikes_all = fit_spiking(recording, epochs, config.spikes, bridge_ohm=bridge)
     sweep_rows = _sweep_rows(recording, epochs, fits, spikes_all)
     _add(timings, "fit", time.perf_counter() - t0)
 
@@ -129,7 +131,9 @@ def _analyse(
     cell_fit = summarize_cell(recording.cell_id, fits, config.passive, exclude=excluded)
     # The fitters already skip unusable steps; re-fit spiking only when QC left sweeps out.
     spikes = (
-        fit_spiking(recording, epochs, config.spikes, exclude=excluded) if by_qc else spikes_all
+        fit_spiking(recording, epochs, config.spikes, exclude=excluded, bridge_ohm=bridge)
+        if by_qc
+        else spikes_all
     )
     for row in sweep_rows:
         reason = excluded.get(row["sweep"], "") or _nothing_measured(row)

@@ -168,6 +168,29 @@ def _vrest(
     return float(intercept), float(slope * (t[-1] - t[0])), float(slope)
 
 
+def bridge_estimate(fits: Sequence[SweepFit], settings: PassiveSettings) -> float:
+    """The bridge error from the edge jumps alone, before any fit of the cell (ohm).
+
+    Parameters
+    ----------
+    fits : sequence of SweepFit
+        The cell's sweep fits (:func:`pipeline.fitters.passive.fit_sweeps`).
+    settings : PassiveSettings
+        The passive settings; with ``bridge_correction`` off the answer is 0.
+
+    Returns
+    -------
+    float
+        Slope of the edge jumps against the step current, ohm; 0 when not measurable. It is
+        what the spiking stage needs to compare recorded voltages of different steps (the
+        cell's ``bridge_error_mohm`` may refine it with the soma-cylinder shape).
+    """
+    if not settings.bridge_correction:
+        return 0.0
+    value = _bridge(list(fits), settings, [])[0].value
+    return value if math.isfinite(value) else 0.0
+
+
 def _bridge(fits: list[SweepFit], s: PassiveSettings, notes: list[str]) -> tuple[_Slope, str]:
     """Bridge error (ohm): slope of the edge jumps against the current step through them.
 

@@ -648,13 +648,21 @@ def _silent_tail(
 
 
 def _with_block(
-    r: SweepSpiking, sweep: Sweep, epoch: StepEpoch, threshold_v: float, s: SpikeSettings
+    r: SweepSpiking,
+    sweep: Sweep,
+    epoch: StepEpoch,
+    threshold_v: float,
+    s: SpikeSettings,
+    bridge_v: float = 0.0,
 ) -> SweepSpiking:
     """``r`` with depolarization block assessed against ``threshold_v`` (V).
 
     Block: no spike for at least ``block_min_s`` (and twice the sweep's longest ISI) before the
     step offset while the membrane sits above the threshold; the sweep's rate is then NaN (it
-    says nothing about the f-I relation).
+    says nothing about the f-I relation). ``bridge_v`` (V) is what the bridge error adds to
+    this sweep's recorded voltage beyond what it added to the threshold's (the step currents'
+    difference times the bridge error): without it, a large step's bridge voltage (18 mV at
+    1.2 nA over 15 MOhm) put a subthreshold membrane above threshold.
     """
     if not r.analysed or r.step_a <= 0:
         return r
@@ -662,6 +670,7 @@ def _with_block(
     if not math.isfinite(threshold_v):
         threshold_v = next((sp.threshold_v for sp in step if math.isfinite(sp.threshold_v)), NAN)
     t_end, v_tail = _silent_tail(sweep.voltage, sweep.rate, epoch, step, s)
+    v_tail -= bridge_v
     # silent for block_min_s and for twice the longest ISI: a slow, adapting train is not block
     silence = max(s.block_min_s, 2 * max(r.isis_s, default=0.0))
     if not (epoch.offset - t_end >= silence and v_tail >= threshold_v):
@@ -669,7 +678,8 @@ def _with_block(
     since = f"after {(step[-1].time_s - epoch.onset) * 1e3:.0f} ms" if step else "at all"
     reason = (
         f"depolarization block: no spikes {since} while the membrane stays at "
-        f"{v_tail * 1e3:.1f} mV, above the {threshold_v * 1e3:.1f} mV threshold"
+        f"{v_tail * 1e3:.1f} mV{' (bridge-corrected)' if bridge_v else ''}, above the "
+        f"{threshold_v * 1e3:.1f} mV threshold"
     )
     return replace(r, rate_hz=NAN, block=True, reason="; ".join(filter(None, (r.reason, reason))))
 
@@ -783,6 +793,7 @@ def fit_spiking(
     epochs: Sequence[StepEpoch],
     settings: SpikeSettings | None = None,
     exclude: Mapping[int, str] | None = None,
+    bridge_ohm: float = 0.0,
 ) -> SpikeFit:
     """Spiking properties of one cell from its step sweeps.
 
@@ -796,6 +807,10 @@ def fit_spiking(
         Detection criteria; defaults when omitted.
     exclude : mapping of int to str, optional
         Sweep number -> reason; those sweeps get NaN rows and are left out of the cell values.
+    bridge_ohm : float
+        The cell's bridge error, ohm (:func:`pipeline.fitters.cell.bridge_estimate`), for
+        judging depolarization block at steps larger than rheobase; the spike voltages
+        themselves are reported as recorded.
 
     Returns
     -------
@@ -820,7 +835,10 @@ def fit_spiking(
     ref = next((sp.threshold_v for sp in rheo.spikes if sp.in_step), NAN) if rheo else NAN
     for k, ep in used:
         above = rheo is not None and rows[k].step_a > rheo.step_a + settings.step_tolerance_a
-        rows[k] = _with_block(rows[k], by_number[ep.sweep], ep, ref if above else NAN, settings)
+        extra = (rows[k].step_a - rheo.step_a) * bridge_ohm if above and rheo else 0.0
+        rows[k] = _with_block(
+            rows[k], by_number[ep.sweep], ep, ref if above else NAN, settings, extra
+        )
     return _summarise(recording.cell_id, tuple(rows), exclude, settings)
 
 
