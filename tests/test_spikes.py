@@ -119,6 +119,25 @@ def test_piecewise_spike_exact_threshold_width_and_ahp():
     assert s.in_step
 
 
+def test_ahp_cut_by_the_step_end_is_unknown():
+    # the last spike of a train, 1.2 ms before the offset: its fall is still going when the
+    # step ends and the membrane drops with it. The trough search stopped at the offset and
+    # reported a "trough" above threshold (an AHP of -36 mV here) with no note.
+    v = flat()
+    t0 = OFFSET - 1.2e-3
+    add_piecewise_spike(v, t0)
+    v[int(round(OFFSET * RATE)) :] -= 0.010  # the step's end: 100 pA off through 100 MOhm
+    spikes = detect_spikes(sweep(v), epoch())
+    assert len(spikes) == 1 and spikes[0].in_step
+    s = spikes[0]
+    assert math.isnan(s.ahp_v) and math.isnan(s.ahp_time_s)
+    assert "step ended before" in s.note
+    # its rise is measured as usual (formulas of the piecewise spike)
+    truth = piecewise_truth(t0)
+    for key in ("threshold_v", "peak_v"):
+        assert getattr(s, key) == pytest.approx(truth[key], rel=1e-6, abs=1e-9), key
+
+
 def test_threshold_follows_the_setting():
     v = flat()
     add_piecewise_spike(v, 0.2)

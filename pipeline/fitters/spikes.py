@@ -119,7 +119,8 @@ class Spike:
     note : str
         Empty for a normal spike. Set when dV/dt was still above threshold at the end of the edge
         guard (a step larger than C * threshold): the threshold is then the dV/dt minimum before
-        the upstroke, or unknown (NaN threshold-based values) when dV/dt only rises.
+        the upstroke, or unknown (NaN threshold-based values) when dV/dt only rises. Also set
+        when the step ended before the AHP's trough (``ahp_v`` and ``ahp_time_s`` NaN).
     """
 
     time_s: float
@@ -133,7 +134,7 @@ class Spike:
     max_rise_v_per_s: float
     max_fall_v_per_s: float
     in_step: bool
-    note: str = ""  # why threshold-based values are NaN
+    note: str = ""  # why threshold-based or AHP values are NaN
 
 
 @dataclass(frozen=True)
@@ -510,9 +511,18 @@ def _locate(
     return found
 
 
-def _shape(v: np.ndarray, f: _Found, end: int, in_step: bool, dt: float, t0: float) -> Spike:
-    """Measure one located spike; ``end`` bounds the after-hyperpolarization trough search."""
+def _shape(
+    v: np.ndarray, f: _Found, end: int, in_step: bool, dt: float, t0: float, cut: bool = False
+) -> Spike:
+    """Measure one located spike; ``end`` bounds the after-hyperpolarization trough search.
+
+    ``cut``: ``end`` is the step's offset, before the AHP window's end. A trough found at that
+    edge is where the step ended, not where the AHP turned (the membrane was still falling, or
+    the fall is the step's own): the AHP is then unknown, with a note, rather than a depth of
+    -26 mV for the last spike of a train.
+    """
     trough = f.down + int(np.argmin(v[f.down : max(end, f.down + 1)]))
+    ahp_unknown = cut and trough >= end - 2
     amp = float(v[f.peak] - f.v_thr)
     half = f.v_thr + amp / 2
     up = f.peak - int(np.flatnonzero(v[f.start - 1 : f.peak + 1][::-1] < half)[0])
@@ -525,13 +535,18 @@ def _shape(v: np.ndarray, f: _Found, end: int, in_step: bool, dt: float, t0: flo
         peak_time_s=float(t0 + f.peak * dt),
         amplitude_v=amp * unknown,
         width_s=width * unknown,
-        ahp_v=float(f.v_thr - v[trough]) * unknown,
-        ahp_time_s=float((trough - f.x) * dt),
+        ahp_v=NAN if ahp_unknown else float(f.v_thr - v[trough]) * unknown,
+        ahp_time_s=NAN if ahp_unknown else float((trough - f.x) * dt),
         max_rise_v_per_s=float(_gradient(v, f.start - 1, f.peak + 1, dt).max()),
         max_fall_v_per_s=float(_gradient(v, f.peak, trough + 1, dt).min()),
         in_step=in_step,
-        note=_knee_note(f.hidden) if f.knee else "",
+        note="; ".join(
+            filter(None, (_knee_note(f.hidden) if f.knee else "", _CUT_AHP if ahp_unknown else ""))
+        ),
     )
+
+
+_CUT_AHP = "AHP not measured: the step ended before its trough"
 
 
 def _detect(
@@ -557,9 +572,10 @@ def _detect(
     for k, f in enumerate(found):
         in_step = bool(onset <= f.x < offset)
         end = min(f.down + ahp_n, offset if in_step else v.size)
-        if k + 1 < len(found):
-            end = min(end, found[k + 1].start)  # the trough lies before the next spike
-        spikes.append(_shape(v, f, end, in_step, dt, t0))
+        cut = in_step and end == offset < f.down + ahp_n
+        if k + 1 < len(found) and found[k + 1].start < end:
+            end, cut = found[k + 1].start, False  # the trough lies before the next spike
+        spikes.append(_shape(v, f, end, in_step, dt, t0, cut))
     return spikes, noise
 
 
