@@ -213,7 +213,7 @@ def run_batch(
                 files, config, outdir, figures, workers, scheduler, progress
             )
             run = {"inputs_given": inputs_given, "started": started, "hashes": hashes, **stats}
-            run |= {"force": force}
+            run |= {"force": force, "executor": _executor(config, workers, scheduler)}
             return _assemble(files, results, run, config, outdir, sheets, figures)
         except PatchbatchError as exc:  # e.g. an unreachable scheduler: in the log file too
             _log_stop(handler, str(exc))
@@ -894,6 +894,7 @@ def _run_info(files, results, run, config, errors, warnings, sheets, secs, n_pas
             {"file": str(p), "sha256": h} for p, h in zip(files, run["hashes"], strict=True)
         ],
         "sheets": [s.sheet.path for s in sheets],
+        "executor": run["executor"],
         "config": config.to_dict(),
         "config_digest": config.digest(),
         "counts": {
@@ -908,6 +909,15 @@ def _run_info(files, results, run, config, errors, warnings, sheets, secs, n_pas
         "errors": errors,
         "warnings": warnings,
     }
+
+
+def _executor(config: Config, workers: int | None, scheduler: str | None) -> dict[str, Any]:
+    """What ran the analysis, for run.json: the config's ``workers`` (0 = all cores) is not
+    what ``-j`` asked for. A cluster's own workers are its business (None)."""
+    if scheduler and scheduler != "local":
+        return {"scheduler": scheduler, "workers": None}
+    n = workers or config.run.workers or os.cpu_count() or 1
+    return {"scheduler": scheduler, "workers": n}
 
 
 def _sha_or_none(path: Path) -> str | None:

@@ -52,6 +52,8 @@ def test_run_writes_every_output_and_joins_the_sheet(day, tmp_path):
     assert info["counts"]["cells"] == 3 and len(info["inputs"]) == 3
     assert all(len(i["sha256"]) == 64 for i in info["inputs"])
     assert info["warnings"] == []
+    # what ran it, not the config's 0 (= all cores) whatever -j said
+    assert info["executor"] == {"scheduler": None, "workers": 1}
 
 
 def test_pool_and_dask_give_identical_tables(day, tmp_path):
