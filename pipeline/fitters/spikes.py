@@ -12,6 +12,7 @@ SI units inside (V, A, s, Hz); ``*_row(s)`` methods give report units (mV, pA, m
 
 from __future__ import annotations
 
+import bisect
 import functools
 import math
 from collections.abc import Mapping, Sequence
@@ -142,7 +143,8 @@ class SweepSpiking:
     """Firing of one sweep. NaN where a value could not be measured; ``reason`` says why.
 
     ``spike_count`` counts in-step spikes only (NaN when the sweep could not be analysed);
-    ``rate_hz`` is that count over the step duration (NaN in depolarization block);
+    ``rate_hz`` is that count over the step duration (NaN in depolarization block, and when
+    most of the step's upstrokes have shrunk below ``min_amplitude_v``: ``shrunk``);
     ``adaptation_index`` is the mean over consecutive in-step ISI pairs of
     ``(isi[n+1] - isi[n]) / (isi[n+1] + isi[n])`` (0 = regular, > 0 = slowing down).
     """
@@ -159,6 +161,7 @@ class SweepSpiking:
     isis_s: tuple[float, ...] = ()  # in-step inter-spike intervals
     adaptation_index: float = NAN
     block: bool = False  # depolarization block: silent above threshold at the step end
+    shrunk: bool = False  # most upstrokes too small to count: the count is not a firing rate
     reason: str = ""  # why values are NaN, '; '-separated
 
 
@@ -551,11 +554,12 @@ _CUT_AHP = "AHP not measured: the step ended before its trough"
 
 def _detect(
     v: np.ndarray, rate: float, onset: int, offset: int, settings: SpikeSettings, t0: float
-) -> tuple[list[Spike], float]:
+) -> tuple[list[Spike], float, int]:
     """Find spikes in ``v`` (cut to the analysis span; ``onset``/``offset`` relative to it).
 
-    Returns the spikes (times from ``t0``, s) and the baseline dV/dt noise (robust SD, V/s;
-    NaN without a baseline).
+    Returns the spikes (times from ``t0``, s), the baseline dV/dt noise (robust SD, V/s; NaN
+    without a baseline) and the count of in-step upstrokes too small to be spikes
+    (:func:`_small_upstrokes`).
     """
     dt = 1.0 / rate
     w = _window_samples(settings, rate)
@@ -576,7 +580,38 @@ def _detect(
         if k + 1 < len(found) and found[k + 1].start < end:
             end, cut = found[k + 1].start, False  # the trough lies before the next spike
         spikes.append(_shape(v, f, end, in_step, dt, t0, cut))
-    return spikes, noise
+    return spikes, noise, _small_upstrokes(v, cand, found, (onset, offset), rate, settings)
+
+
+def _small_upstrokes(
+    v: np.ndarray,
+    cand: np.ndarray,
+    found: list[_Found],
+    step: tuple[int, int],
+    rate: float,
+    s: SpikeSettings,
+) -> int:
+    """In-step upstrokes of half ``min_amplitude_v`` up to it, peaking above ``min_peak_v``,
+    one per refractory period and away from the spikes counted: spikes shrunk too small to
+    count, as when strong depolarization inactivates the sodium current. A simulated cell's
+    regular train of 20-30 mV events had 27 of its 143 counted (those whose amplitude noise
+    pushed past 20 mV): a rate of 54 Hz instead of ~290."""
+    c = cand[(cand >= step[0]) & (cand < step[1])]
+    if c.size == 0:
+        return 0
+    ahead = max_ahead(v, c, max(2, int(round(s.max_rise_s * rate))))
+    rise = ahead - v[c]
+    c = c[(rise >= s.min_amplitude_v / 2) & (rise < s.min_amplitude_v) & (ahead >= s.min_peak_v)]
+    refr = int(round(s.refractory_s * rate))
+    spans = sorted((f.start - refr, f.down + refr) for f in found)
+    starts = [a for a, _ in spans]
+    count, last = 0, None
+    for x in c:
+        k = bisect.bisect_right(starts, x) - 1
+        if (k >= 0 and x <= spans[k][1]) or (last is not None and x - last <= refr):
+            continue
+        count, last = count + 1, x
+    return count
 
 
 def _knee_note(hidden: bool) -> str:
@@ -588,8 +623,9 @@ def _knee_note(hidden: bool) -> str:
 
 def _detect_in_span(
     sweep: Sweep, epoch: StepEpoch, settings: SpikeSettings
-) -> tuple[list[Spike], float]:
-    """Spikes (times from the sweep start) and baseline dV/dt noise of a checked sweep."""
+) -> tuple[list[Spike], float, int]:
+    """Spikes (times from the sweep start), baseline dV/dt noise and small upstrokes (see
+    :func:`_detect`) of a checked sweep."""
     start, stop = _analysis_span(sweep.n_samples, sweep.rate, epoch, settings)
     return _detect(
         sweep.voltage[start:stop],
@@ -680,7 +716,7 @@ def _with_block(
     difference times the bridge error): without it, a large step's bridge voltage (18 mV at
     1.2 nA over 15 MOhm) put a subthreshold membrane above threshold.
     """
-    if not r.analysed or r.step_a <= 0:
+    if not r.analysed or r.step_a <= 0 or r.shrunk:  # shrunk: its reason says what it is
         return r
     step = [sp for sp in r.spikes if sp.in_step]
     if not math.isfinite(threshold_v):
@@ -706,7 +742,7 @@ def _measure(sweep: Sweep, epoch: StepEpoch, settings: SpikeSettings) -> SweepSp
     problem = _precheck(sweep, epoch, settings)
     if problem:
         return SweepSpiking(**base, reason=problem)
-    spikes, noise = _detect_in_span(sweep, epoch, settings)
+    spikes, noise, small = _detect_in_span(sweep, epoch, settings)
     if noise > settings.max_dvdt_noise_v_per_s:
         return SweepSpiking(
             **base,
@@ -722,13 +758,21 @@ def _measure(sweep: Sweep, epoch: StepEpoch, settings: SpikeSettings) -> SweepSp
         reasons.append(
             f"adaptation index needs {settings.adaptation_min_spikes} spikes, got {len(step)}"
         )
+    shrunk = small >= max(5, len(step))
+    if shrunk:
+        reasons.append(
+            f"{small} upstrokes of {settings.min_amplitude_v * 500:g}-"
+            f"{settings.min_amplitude_v * 1e3:g} mV were too small to count as spikes (their "
+            "amplitude collapses, as near depolarization block): the count is not a rate"
+        )
     return SweepSpiking(
         **base,
         analysed=True,
         spikes=tuple(spikes),
         spike_count=len(step),
         rebound_spike_count=len(spikes) - len(step),
-        rate_hz=len(step) / epoch.duration,
+        rate_hz=NAN if shrunk else len(step) / epoch.duration,
+        shrunk=shrunk,
         latency_s=step[0].time_s - epoch.onset if step else NAN,
         isis_s=isis,
         adaptation_index=(
@@ -786,8 +830,8 @@ def _fi_slope(depol: list[SweepSpiking], rheobase: float, settings: SpikeSetting
         if r.step_a < rheobase - tol:
             continue
         below = [u.rate_hz for u in used if u.step_a < r.step_a - tol]  # repeats don't compete
-        if r.block or (below and r.rate_hz < max(below)):
-            break  # block or a rate below a smaller step's: the linear part is over
+        if r.block or r.shrunk or (below and r.rate_hz < max(below)):
+            break  # block, collapsing spikes or a rate below a smaller step's: it is over
         used.append(r)
     amps = _distinct([r.step_a for r in used], settings.step_tolerance_a)
     if len(used) < settings.fi_min_sweeps or amps.size < 2:
