@@ -222,6 +222,27 @@ def test_fi_panel_keeps_its_fit_line_and_markers_inside_and_marks_block():
     assert block and block[0].get_xdata()[0] == pytest.approx(steps[15] * 1e12)
 
 
+def test_fi_panel_marks_the_steps_whose_spikes_shrank_too_small_to_count():
+    # such a step has no rate (its count is not one): the f-I points simply stopped before it
+    from types import SimpleNamespace
+
+    from pipeline.report.figures import MISSING_COLOUR, _draw_fi
+
+    rec, epochs, fit, verdict = base.fake_cell()
+    views = _views(rec, epochs, fit, verdict)
+    steps = {v.number: v.step_a for v in views}
+    fi = [SimpleNamespace(step_a=steps[n], rate_hz=r) for n, r in ((11, 0.0), (12, 10.0))]
+    rows = [SimpleNamespace(step_a=steps[n], shrunk=n >= 13) for n in (11, 12, 13, 14)]
+    spikes = SimpleNamespace(fi=fi, sweeps=rows)
+    fig, ax = _axes()
+    _draw_fi(ax, views, spikes)
+    marks = [ln for ln in ax.lines if ln.get_color() == MISSING_COLOUR]
+    assert marks and marks[0].get_xdata()[0] == pytest.approx(steps[13] * 1e12)
+    assert ax.get_xlim()[1] >= steps[14] * 1e12
+    labels = [t.get_text() for t in ax.findobj(lambda a: hasattr(a, "get_text"))]
+    assert "spikes too small to count" in labels
+
+
 def test_overlapping_draws_in_two_threads_leave_the_collector_as_they_found_it():
     # a flag, not a count: the second thread's draw recorded "was off", the first one's end
     # turned the collector on mid-draw, and a child forked then kept it off for good

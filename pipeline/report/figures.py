@@ -1155,6 +1155,11 @@ def _draw_fi(ax, views: list[_SweepView], spikes: Any) -> None:
         ax.axvline(block * 1e12, color=MISSING_COLOUR, lw=1.0, ls=":")
         entries.append(("depolarization block", "line", {"color": MISSING_COLOUR, "ls": ":"}))
         ax.update_datalim([(block * 1e12, 0.0)], updatey=False)
+    shrunk = [r.step_a for r in getattr(spikes, "sweeps", ()) if getattr(r, "shrunk", False)]
+    if shrunk:  # steps whose spikes shrank below the amplitude rule: no rate, but a mark
+        ax.axvline(min(shrunk) * 1e12, color=MISSING_COLOUR, lw=1.0, ls="--")
+        entries.append(("spikes too small to count", "line", {"color": MISSING_COLOUR, "ls": "--"}))
+        ax.update_datalim([(max(shrunk) * 1e12, 0.0)], updatey=False)
     top = max(top * 1.08, 5.0)
     ax.set_ylim(-0.04 * top, top)  # a little below 0 Hz: silent steps' markers are whole
     if entries:
