@@ -215,17 +215,28 @@ def _derived(sweep_rows: list[dict[str, Any]]) -> dict[str, Any]:
     return {"n_hyperpolarizing_used": len(hyper), "rin_change_pct": _rin_change_pct(hyper)}
 
 
+_SAME_STEP_PA = 1.0  # steps this close are one step given again (the spiking stage's tolerance)
+
+
 def _rin_change_pct(hyper: list[dict[str, Any]]) -> float:
     """Change of per-sweep ΔV/I between the first and last repeats of the same step, %.
 
     Only steps given more than once say anything about stability (a single family of different
     steps confounds time with amplitude, Ih and rectification), so this is NaN without repeats.
+    Repeats are steps within ``_SAME_STEP_PA`` of each other: a measured current varies a
+    little from sweep to sweep (-50.07 and -49.90 pA for one nominal -50 pA step).
     """
-    by_step: dict[float, list[float]] = {}
+    groups: list[tuple[float, list[float]]] = []  # (first step, Rin in recording order)
     for row in hyper:  # rows are in recording order
-        if _finite(row.get("rin_mohm")):
-            by_step.setdefault(round(row["step_pa"], 1), []).append(row["rin_mohm"])
-    pairs = [(v[0], v[-1]) for v in by_step.values() if len(v) > 1]
+        if not _finite(row.get("rin_mohm")):
+            continue
+        step = row["step_pa"]
+        near = [g for g in groups if abs(g[0] - step) <= _SAME_STEP_PA]
+        if near:
+            min(near, key=lambda g: abs(g[0] - step))[1].append(row["rin_mohm"])
+        else:
+            groups.append((step, [row["rin_mohm"]]))
+    pairs = [(v[0], v[-1]) for _, v in groups if len(v) > 1]
     if not pairs:
         return math.nan
     first = sum(p[0] for p in pairs) / len(pairs)

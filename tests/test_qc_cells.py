@@ -126,6 +126,22 @@ def test_input_resistance_that_changes_fails():
     assert "input resistance changed" in cell["qc_reasons"]
 
 
+def test_repeats_are_the_same_step_within_a_picoampere():
+    # measured currents of one nominal step differ by a fraction of a pA; rounded to 0.1 pA,
+    # -50.07 and -49.90 pA were two steps and the first repeat was left out of the comparison
+    from pipeline.analysis import _rin_change_pct
+
+    rows = [
+        {"step_pa": -50.07, "rin_mohm": 200.0},
+        {"step_pa": -100.02, "rin_mohm": 190.0},
+        {"step_pa": -49.90, "rin_mohm": 160.0},
+        {"step_pa": -99.96, "rin_mohm": 171.0},
+    ]
+    # pairs (200, 160) and (190, 171): first mean 195, last mean 165.5 (the -100 pA pair
+    # alone, as before, gave -10%)
+    assert _rin_change_pct(rows) == pytest.approx(100 * (165.5 - 195) / 195)
+
+
 def test_too_few_hyperpolarizing_sweeps_fails():
     two = dataclasses.replace(SHORT, amplitudes_a=(-40 * PA, -20 * PA, 60 * PA))
     cell, _ = _run(_cell(protocol=two))
