@@ -145,7 +145,7 @@ def _analyse(
         "electrode": recording.electrode,
         **cell_fit.row(),
         **spikes.cell_row(),
-        **_derived(sweep_rows),
+        **_derived(sweep_rows, config.spikes.step_tolerance_a * 1e12),
     }
     cell_row["n_sweeps"] = len(recording.sweeps)
     cell_row["n_sweeps_used"] = sum(1 for r in sweep_rows if r["used"])
@@ -209,29 +209,28 @@ def _nothing_measured(row: dict[str, Any]) -> str:
     return f"nothing could be measured: {why or 'no reason given'}"
 
 
-def _derived(sweep_rows: list[dict[str, Any]]) -> dict[str, Any]:
+def _derived(sweep_rows: list[dict[str, Any]], same_step_pa: float) -> dict[str, Any]:
     """Cell columns that QC rules read and that come from counting sweeps."""
     hyper = [r for r in sweep_rows if r["used"] and _finite(r.get("step_pa")) and r["step_pa"] < 0]
-    return {"n_hyperpolarizing_used": len(hyper), "rin_change_pct": _rin_change_pct(hyper)}
+    change = _rin_change_pct(hyper, same_step_pa)
+    return {"n_hyperpolarizing_used": len(hyper), "rin_change_pct": change}
 
 
-_SAME_STEP_PA = 1.0  # steps this close are one step given again (the spiking stage's tolerance)
-
-
-def _rin_change_pct(hyper: list[dict[str, Any]]) -> float:
+def _rin_change_pct(hyper: list[dict[str, Any]], same_step_pa: float = 1.0) -> float:
     """Change of per-sweep ΔV/I between the first and last repeats of the same step, %.
 
     Only steps given more than once say anything about stability (a single family of different
     steps confounds time with amplitude, Ih and rectification), so this is NaN without repeats.
-    Repeats are steps within ``_SAME_STEP_PA`` of each other: a measured current varies a
-    little from sweep to sweep (-50.07 and -49.90 pA for one nominal -50 pA step).
+    Repeats are steps within ``same_step_pa`` of each other (the config's
+    ``spikes.step_tolerance_a``, in pA): a measured current varies a little from sweep to
+    sweep (-50.07 and -49.90 pA for one nominal -50 pA step).
     """
     groups: list[tuple[float, list[float]]] = []  # (first step, Rin in recording order)
     for row in hyper:  # rows are in recording order
         if not _finite(row.get("rin_mohm")):
             continue
         step = row["step_pa"]
-        near = [g for g in groups if abs(g[0] - step) <= _SAME_STEP_PA]
+        near = [g for g in groups if abs(g[0] - step) <= same_step_pa]
         if near:
             min(near, key=lambda g: abs(g[0] - step))[1].append(row["rin_mohm"])
         else:

@@ -456,7 +456,7 @@ def _execute(todo, config, figure_dir, workers, scheduler, hashes) -> Iterator[t
     if scheduler:
         yield from _execute_dask(todo, config, figure_dir, scheduler, workers, hashes)
         return
-    n = workers if workers else (config.run.workers or os.cpu_count() or 1)
+    n = _worker_count(config, workers)
     n = max(1, min(n, len(todo)))
     if n == 1:
         for job in todo:
@@ -566,7 +566,7 @@ def _execute_dask(
 
     cluster = None
     if scheduler == "local":
-        n = workers or config.run.workers or os.cpu_count() or 1
+        n = _worker_count(config, workers)
         cluster = LocalCluster(
             n_workers=n,
             threads_per_worker=1,
@@ -916,8 +916,12 @@ def _executor(config: Config, workers: int | None, scheduler: str | None) -> dic
     what ``-j`` asked for. A cluster's own workers are its business (None)."""
     if scheduler and scheduler != "local":
         return {"scheduler": scheduler, "workers": None}
-    n = workers or config.run.workers or os.cpu_count() or 1
-    return {"scheduler": scheduler, "workers": n}
+    return {"scheduler": scheduler, "workers": _worker_count(config, workers)}
+
+
+def _worker_count(config: Config, workers: int | None) -> int:
+    """Local processes: ``-j``, else the config's ``workers`` (0 = all cores)."""
+    return workers or config.run.workers or os.cpu_count() or 1
 
 
 def _sha_or_none(path: Path) -> str | None:
@@ -930,15 +934,8 @@ def _sha_or_none(path: Path) -> str | None:
 def _log_stop(handler: logging.FileHandler, message: str) -> None:
     """The error that stops a run, into its log file only: the caller raises it, and the
     command line prints it once (through the logger, the console handler would print it too,
-    even with -q). A log file that cannot take it (a full disk) stays as it is, silently."""
-    record = log.makeRecord(log.name, logging.ERROR, __file__, 0, "%s", (message,), None)
-    with contextlib.suppress(Exception):
-        handler.acquire()
-        try:
-            handler.stream.write(handler.format(record) + "\n")
-            handler.stream.flush()
-        finally:
-            handler.release()
+    even with -q)."""
+    handler.handle(log.makeRecord(log.name, logging.ERROR, __file__, 0, "%s", (message,), None))
 
 
 def _log_to_file(outdir: Path) -> logging.FileHandler:

@@ -222,7 +222,7 @@ def remove_hum(
         ``v`` minus the fitted hum (NaN samples stay NaN).
     """
     basis = _hum_basis(v.size, rate, harmonics)
-    stride = max(1, int(rate // 2500))  # 2.5 kHz is ample for 240 Hz and keeps the fit cheap
+    stride = _hum_stride(rate)
     rows = [np.arange(a, b, stride) for a, b in regions]
     if all(np.isfinite(v[r]).all() for r in rows):  # the usual case: the cell's sweeps share it
         fit = _hum_design(v.size, rate, harmonics, tuple(regions))
@@ -257,10 +257,16 @@ def remove_hum_where_flat(
     )
 
 
+def _hum_stride(rate: float) -> int:
+    """Samples of a trace per row of the hum fit: 2.5 kHz is ample for 240 Hz and keeps the
+    fit cheap."""
+    return max(1, int(rate // 2500))
+
+
 def _as_flat(v: np.ndarray, rate: float, region: tuple[int, int], flat: tuple[int, int]) -> bool:
     """Whether ``region`` spans at most 3 times the range of the flat ``flat`` (samples as the
     hum fit takes them: a spike's upper half, ~0.5 ms, holds some). False with NaN in either."""
-    stride = max(1, int(rate // 2500))
+    stride = _hum_stride(rate)
     ranges = [np.ptp(v[a:b:stride]) if b > a else 0.0 for a, b in (region, flat)]
     return bool(ranges[0] <= 3.0 * ranges[1])
 
@@ -288,7 +294,7 @@ def _design(basis: np.ndarray, rate: float, regions, rows: list[np.ndarray]):
 @functools.lru_cache(maxsize=8)
 def _hum_design(n: int, rate: float, harmonics: int, regions: tuple):
     """:func:`_design` of finite sweeps of ``n`` samples, cached: a cell's sweeps share it."""
-    stride = max(1, int(rate // 2500))
+    stride = _hum_stride(rate)
     rows = [np.arange(a, b, stride) for a, b in regions]
     return _design(_hum_basis(n, rate, harmonics), rate, regions, rows)
 
