@@ -3,14 +3,17 @@ of sweep that is not a single step classified with its reason. All inputs are se
 
 from __future__ import annotations
 
+from unittest import mock
+
 import numpy as np
 import pytest
 from hypothesis import given, settings
 from hypothesis import strategies as st
 from scipy import signal
 
+from pipeline import steps
 from pipeline.recording import Recording, Sweep
-from pipeline.steps import StepSettings, find_step, find_steps
+from pipeline.steps import StepEpoch, StepSettings, find_step, find_steps
 
 RATE = 20_000.0
 N = 30_000
@@ -241,3 +244,50 @@ def test_noisy_filtered_steps_within_one_sample(amplitude_pa, tau_samples, seed)
     epoch = find_step(_sweep(current), SETTINGS)
     assert epoch.usable
     assert abs(epoch.onset_index - ON) <= 1 and abs(epoch.offset_index - OFF) <= 1
+
+
+def _general(sweep: Sweep) -> StepEpoch:
+    """The epoch the general (noise-robust) detector finds, with the exact-command shortcut off."""
+    with mock.patch.object(steps, "_exact_pulse", return_value=None):
+        return find_step(sweep, SETTINGS)
+
+
+@settings(derandomize=True, max_examples=150, deadline=None)
+@given(
+    on=st.integers(0, 29_000),
+    length=st.integers(1, 29_000),
+    amplitude_pa=st.sampled_from([0.5, 1.0, 1.01, 3.0, 80.0, 1000.0]).flatmap(
+        lambda a: st.sampled_from([a, -a])
+    ),
+    holding_pa=st.floats(-200.0, 200.0),
+    rate=st.sampled_from([10_000.0, 20_000.0, 50_000.0]),
+    second=st.booleans(),
+)
+def test_exact_command_shortcut_agrees_with_the_general_detector(
+    on, length, amplitude_pa, holding_pa, rate, second
+) -> None:
+    # A command stored as exact levels takes a shortcut (steps._exact_pulse); whatever the
+    # pulse's size and place (too small, too near an end, a second pulse), the epoch is the
+    # general detector's. Holding and amplitude agree to rounding: the shortcut reads the
+    # levels, the general detector averages the plateaus.
+    current = np.full(30_000, holding_pa * 1e-12)
+    current[on : on + length] += amplitude_pa * 1e-12
+    if second:
+        current[-3_000:-2_000] += amplitude_pa * 1e-12
+    sweep = Sweep(np.zeros(current.size), current, rate, 0)
+    fast, general = find_step(sweep, SETTINGS), _general(sweep)
+    same = ("usable", "kind", "reason", "onset_index", "offset_index", "source", "sweep")
+    assert [getattr(fast, f) for f in same] == [getattr(general, f) for f in same]
+    for field in ("holding", "amplitude", "onset", "offset", "noise_a"):
+        a, b = getattr(fast, field), getattr(general, field)
+        assert (np.isnan(a) and np.isnan(b)) or a == pytest.approx(b, rel=1e-9, abs=1e-21)
+
+
+def test_exact_command_shortcut_is_taken_and_falls_back() -> None:
+    # The benchmark's day stores exact commands: a single pulse is read by the shortcut, a
+    # noisy or filtered current or a train is not.
+    assert steps._exact_pulse(_sweep(_command(-50e-12)), _command(-50e-12), SETTINGS, 10)
+    noisy = _command(-50e-12) + np.random.default_rng(3).normal(0.0, 1e-12, N)
+    assert steps._exact_pulse(_sweep(noisy), noisy, SETTINGS, 10) is None
+    train = _command(-50e-12) + _command(-50e-12, on=26_000, off=27_000)
+    assert steps._exact_pulse(_sweep(train), train, SETTINGS, 10) is None
