@@ -6,10 +6,12 @@ rule (0.5 mV, common practice), which measured the raw trace, hum and all.
 
 from __future__ import annotations
 
+import numpy as np
 import pytest
 
 from pipeline.analysis import analyse_recording
 from pipeline.config import load_config
+from pipeline.fitters.sweep import remove_hum
 from pipeline.simulate import (
     CellModel,
     Nuisance,
@@ -63,3 +65,41 @@ def test_spikes_do_not_leak_into_the_hum():
     assert len(firing) >= 2, [s["spike_count"] for s in sweeps]  # the case under test
     assert all(s["baseline_rms_mv"] < 0.15 for s in sweeps), [s["baseline_rms_mv"] for s in sweeps]
     assert all(s["used"] for s in sweeps), [s["excluded_because"] for s in sweeps]
+
+
+@pytest.mark.parametrize("rate", [20_000.0, 25_000.0, 9_765.625])
+def test_hum_removal_matches_a_fit_over_the_whole_sweep(rate):
+    # The hum is computed over one 100 ms period (50 and 60 Hz and their harmonics all repeat
+    # every 100 ms) and repeated; at a rate that is no multiple of 10 Hz (9765.625 Hz) the
+    # basis spans the sweep. Either way the result is numpy's least-squares fit of the same
+    # model over the whole sweep: sines and cosines of 50, 60, 100 and 120 Hz, and an offset
+    # and slope per flat region, fitted on every stride-th sample of the regions.
+    n = int(1.3 * rate)
+    t = np.arange(n) / rate
+    rng = np.random.default_rng(4)
+    hum = sum(
+        a * np.sin(2 * np.pi * f * t + p)
+        for f, a, p in zip(
+            (50, 60, 100, 120), rng.uniform(1e-4, 5e-4, 4), rng.uniform(0, 6, 4), strict=True
+        )
+    )
+    v = -0.07 + 2e-4 * t + hum + rng.normal(0.0, 1e-4, n)
+    regions = [(0, int(0.2 * rate)), (int(0.9 * rate), int(1.2 * rate))]
+    got = remove_hum(v, rate, regions, harmonics=2)
+
+    stride = max(1, int(rate // 2500))
+    rows = [np.arange(a, b, stride) for a, b in regions]
+    idx = np.concatenate(rows)
+    sines = np.column_stack(
+        [g(2 * np.pi * f * k * t) for f in (50, 60) for k in (1, 2) for g in (np.sin, np.cos)]
+    )
+    local = np.zeros((idx.size, 4))
+    pos = 0
+    for j, ((a, b), r) in enumerate(zip(regions, rows, strict=True)):
+        local[pos : pos + r.size, 2 * j] = 1.0
+        local[pos : pos + r.size, 2 * j + 1] = (r - (a + b) / 2) / rate
+        pos += r.size
+    coef = np.linalg.lstsq(np.hstack([sines[idx], local]), v[idx], rcond=None)[0]
+    want = v - sines @ coef[:8]
+    assert np.max(np.abs(got - want)) < 1e-12  # V
+    assert np.std(want - (-0.07 + 2e-4 * t)) < 1.3e-4  # the hum is gone, the noise is left

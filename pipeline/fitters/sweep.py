@@ -186,9 +186,19 @@ def count_clipped(v: np.ndarray, min_run: int) -> int:
 
 @functools.lru_cache(maxsize=8)
 def _hum_basis(n: int, rate: float, harmonics: int) -> np.ndarray:
-    """Sine/cosine columns at 50 and 60 Hz and harmonics, shape (n, 4*harmonics); cached per
-    sweep shape so a cell's sweeps share it."""
-    t = np.arange(n) / rate
+    """Sine/cosine columns at 50 and 60 Hz and harmonics over one period of the hum, shape
+    (rows, 4*harmonics); row ``i`` of a sweep is row ``i % rows``. Cached per sweep shape so a
+    cell's sweeps share it.
+
+    50 and 60 Hz and all their harmonics repeat every 100 ms, so at rates that are a multiple
+    of 10 Hz one period of rows (2000 at 20 kHz) gives every sample's columns exactly (better
+    than the sines of a long sweep's large arguments) and the hum of a sweep is that period
+    repeated: a fifteenth of the work of the whole basis on a 1.5 s sweep. At any other rate
+    the basis spans the sweep.
+    """
+    period = rate / 10.0
+    rows = int(period) if period.is_integer() and 0 < period < n else n
+    t = np.arange(rows) / rate
     cols = []
     for base in (50.0, 60.0):
         for k in range(1, harmonics + 1):
@@ -235,7 +245,7 @@ def remove_hum(
         coef = np.linalg.solve(gram, design.T @ v[idx])
     except np.linalg.LinAlgError:
         return v
-    hum = basis @ coef[: basis.shape[1]]
+    hum = np.resize(basis @ coef[: basis.shape[1]], v.size)  # the period, repeated
     return np.subtract(v, hum, out=hum)  # in place: one full-length temporary fewer
 
 
@@ -283,7 +293,7 @@ def _design(basis: np.ndarray, rate: float, regions, rows: list[np.ndarray]):
         local[pos : pos + r.size, 2 * j] = 1.0
         local[pos : pos + r.size, 2 * j + 1] = (r - (a + b) / 2) / rate
         pos += r.size
-    design = np.hstack([basis[idx], local])
+    design = np.hstack([basis[idx % basis.shape[0]], local])
     # normal equations: columns are O(1) and few, and this avoids LAPACK's thread start-up cost
     gram = design.T @ design
     for a in (idx, design, gram):
