@@ -624,3 +624,17 @@ def test_dendrite_dominated_cell_with_noise(seed):
     # 14 edges of <= 100 pA at 0.15 mV RMS: the pooled extrapolation's SD is ~1.5 Mohm
     assert cf.bridge_error_ohm == pytest.approx(15e6, abs=4e6)
     assert cf.rin_ohm == pytest.approx(rin, rel=0.02)
+
+
+def test_a_fit_is_not_refitted_on_its_own_window():
+    # A least-squares fit on the same bins is its own refit: _refit hands it back rather than
+    # fitting again (a third of the sweeps' refits were of that kind).
+    from pipeline.fitters import sweep as fitter
+
+    t = np.arange(200) * 1e-4
+    y = -0.07 - 5e-3 * (1 - np.exp(-t / 0.01))
+    first = fitter.fit_exponential(t[10:150], y[10:150], 0.005)
+    assert first.tau == pytest.approx(0.01, rel=1e-9)
+    assert fitter._refit(first, t, y, 10, 149) is first
+    wider = fitter._refit(first, t, y, 10, 199)
+    assert wider is not first and wider.t1 == pytest.approx(t[199])

@@ -643,8 +643,10 @@ def fit_sag_model(
 
 
 def _refit(fit: ExpFit, t: np.ndarray, y: np.ndarray, i0: int, i1: int) -> ExpFit:
-    """Refit on bins ``i0..i1``, keeping the previous fit if the new one fails."""
-    if i1 - i0 < 3:
+    """Refit on bins ``i0..i1``, keeping the previous fit if the new one fails, or if it was
+    fitted on those very bins (a least-squares fit is its own refit; a third of the sweeps'
+    refits were of that kind)."""
+    if i1 - i0 < 3 or (fit.ok and fit.t0 == float(t[i0]) and fit.t1 == float(t[i1])):
         return fit
     refit = fit_exponential(t[i0 : i1 + 1], y[i0 : i1 + 1], fit.tau)
     return refit if refit.ok else fit
