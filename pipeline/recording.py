@@ -14,8 +14,18 @@ import numpy as np
 
 
 def _frozen_array(values: np.ndarray | None) -> np.ndarray | None:
+    """A read-only float64 copy of ``values``; a read-only float64 array that owns its memory is
+    kept as it is (nothing can write to it: a reader hands its arrays over so, saving a copy of
+    every sample)."""
     if values is None:
         return None
+    if (
+        isinstance(values, np.ndarray)
+        and values.dtype == np.float64
+        and not values.flags.writeable
+        and values.flags.owndata
+    ):
+        return values
     arr = np.array(values, dtype=np.float64, copy=True)
     arr.setflags(write=False)
     return arr

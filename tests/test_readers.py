@@ -847,3 +847,25 @@ def test_random_bytes_in_any_neo_format_give_a_recording_error(tmp_path, ext):
     path.write_bytes(np.random.default_rng(11).bytes(4096))
     with pytest.raises(RecordingError, match=rf"noise\.{ext}: "):
         _open(path)
+
+
+def test_sweep_arrays_are_read_only_and_never_shared_with_a_writer(tmp_path):
+    # A Sweep copies what anyone could still write to (a writable array, or a read-only view
+    # of one) and keeps a read-only float64 array that owns its memory as it is: the NWB reader
+    # hands its samples over so, without a copy of every sample.
+    mine = np.linspace(-0.07, -0.06, 100)
+    sweep = Sweep(voltage=mine, current=None, rate=1e4, number=0)
+    mine[0] = 1.0
+    assert sweep.voltage[0] == -0.07 and not sweep.voltage.flags.writeable
+    view = mine[:]
+    view.setflags(write=False)
+    assert Sweep(voltage=view, current=None, rate=1e4, number=0).voltage is not view
+    owned = np.linspace(-0.07, -0.06, 100).copy()
+    owned.setflags(write=False)
+    assert Sweep(voltage=owned, current=None, rate=1e4, number=0).voltage is owned
+
+    path = tmp_path / "handed.nwb"
+    write_nwb([_recording("e0", 2)], path, identifier="handed")
+    for sw in open_recordings(path)[0].sweeps:
+        for arr in (sw.voltage, sw.current):
+            assert arr.flags.owndata and not arr.flags.writeable

@@ -62,7 +62,7 @@ class SeriesData:
     name: str
     kind: str  # neurodata type: CurrentClampSeries, IZeroClampSeries, CurrentClampStimulusSeries
     electrode: str
-    values: np.ndarray | None  # None once its sweeps are built (they hold copies)
+    values: np.ndarray | None  # read-only; None once its sweeps are built (they hold it)
     rate: float
     start_time: float
     sweep_number: int | None
@@ -156,12 +156,13 @@ def _series_data(
         raise ShapeError(path, f"{what}: data of shape {raw.shape}, expected one channel")
     conversion = 1.0 if conversion is None else float(conversion)
     offset = 0.0 if offset is None else float(offset)
-    values = raw.reshape(-1)
+    values = raw if raw.ndim == 1 else raw.reshape(-1)
     if conversion != 1.0:  # x * 1.0 is x: the pass is skipped, not the arithmetic changed
         values *= conversion
     values += offset  # always: -0.0 + 0.0 is +0.0
     if factor != 1.0:
         values *= factor
+    values.setflags(write=False)  # handed over to the Sweep as it is, not copied
     if timestamps is not None:
         times = _float_samples(timestamps, start, stop)
         rate = rate_from_times(path, times, what)
@@ -823,8 +824,9 @@ def build_recordings(
 ) -> list[Recording]:
     """Group (response, stimulus) pairs by electrode into checked Recordings.
 
-    A series' samples are let go once its last sweep is built (each Sweep holds a copy), so the
-    next sweep's copy reuses their memory: touching fresh pages costs more than the copy.
+    A series' read-only samples become its sweep's own (:class:`~pipeline.recording.Sweep`
+    keeps a read-only array that owns its memory rather than copying it); the series lets go of
+    them once its last sweep is built.
     """
     name = str(path)
     uses = Counter(id(x) for pair in pairs for x in pair if x is not None)
