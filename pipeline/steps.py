@@ -163,6 +163,9 @@ def find_step(sweep: Sweep, settings: StepSettings, index: int = 0) -> StepEpoch
     if sweep.current is None:
         return _from_schedule(sweep, settings, index)
     current = np.asarray(sweep.current, dtype=np.float64)
+    exact = _exact_pulse(sweep, current, settings)  # before the NaN check: it costs as much
+    if exact is not None:
+        return exact
     finite = np.isfinite(current)
     if finite.all() and current.size:
         return _from_current(sweep, current, settings)
@@ -305,9 +308,6 @@ def _from_current(sweep: Sweep, current: np.ndarray, settings: StepSettings) -> 
     k = max(3, round(settings.edge_window_s * rate))
     if n < 8 * k:
         return _unusable(sweep, "too short", f"the sweep has only {n} samples")
-    exact = _exact_pulse(sweep, current, settings, k)
-    if exact is not None:
-        return exact
     noise_win = _window_noise(current, max(32, 4 * k))
     quiet = np.partition(noise_win, noise_win.size // 10)[noise_win.size // 10]
     loud = noise_win > max(4.0 * quiet, 0.5 * settings.min_amplitude_a)
@@ -356,23 +356,26 @@ def _from_current(sweep: Sweep, current: np.ndarray, settings: StepSettings) -> 
     return _classify(sweep, settings, current, runs, levels, threshold, sigma)
 
 
-def _exact_pulse(
-    sweep: Sweep, current: np.ndarray, settings: StepSettings, k: int
-) -> StepEpoch | None:
+def _exact_pulse(sweep: Sweep, current: np.ndarray, settings: StepSettings) -> StepEpoch | None:
     """The epoch of a command stored as exact levels: one pulse from holding and back, with
-    ``3 k`` samples or more before, during and after it; None for anything else.
+    three edge windows or more before, during and after it; None for anything else.
 
     A stimulus series usually stores the command itself, whose samples change at the two edges
     only. Read from where they change, its epoch is the one the general detector finds (edges
     on the first sample of each level, no noise), for a tenth of the work; any other current
     (noise, filtered edges, ramps, trains, steps too small or too near the ends) is left to
-    the general detector.
+    the general detector. Two finite levels are all its samples hold: there is no NaN to bridge.
     """
-    changes = np.flatnonzero(current[1:] != current[:-1])
+    k = max(3, round(settings.edge_window_s * sweep.rate))  # the general detector's window
+    if current.size < 8 * k:
+        return None
+    changes = np.flatnonzero(current[1:] != current[:-1])  # a NaN differs from everything
     if changes.size != 2:
         return None
     on, off = int(changes[0]) + 1, int(changes[1]) + 1
     holding, level = float(current[0]), float(current[on])
+    if not (math.isfinite(holding) and math.isfinite(level)):
+        return None
     # within a millionth of the smallest step, the general detector's sums decide
     if current[off] != holding or abs(level - holding) <= settings.min_amplitude_a * 1.000001:
         return None
