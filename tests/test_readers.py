@@ -26,6 +26,7 @@ from pynwb.icephys import (
     VoltageClampStimulusSeries,
 )
 
+from pipeline import recording as recording_module
 from pipeline.errors import (
     BadSamplesError,
     CorruptFileError,
@@ -35,8 +36,8 @@ from pipeline.errors import (
     UnitError,
     UnsupportedFormatError,
 )
+from pipeline.readers import make_sweep, open_recordings, supported_extensions
 from pipeline.readers import nwb as nwb_reader
-from pipeline.readers import open_recordings, supported_extensions
 from pipeline.recording import Recording, Sweep
 from pipeline.writers import write_csv, write_nix, write_nwb
 
@@ -849,7 +850,7 @@ def test_random_bytes_in_any_neo_format_give_a_recording_error(tmp_path, ext):
         _open(path)
 
 
-def test_sweep_arrays_are_read_only_and_never_shared_with_a_writer(tmp_path):
+def test_sweep_arrays_are_read_only_and_never_shared_with_a_writer(tmp_path, monkeypatch):
     # A Sweep copies what anyone could still write to (a writable array, or a read-only view
     # of one) and keeps a read-only float64 array that owns its memory as it is: the NWB reader
     # hands its samples over so, without a copy of every sample.
@@ -864,8 +865,21 @@ def test_sweep_arrays_are_read_only_and_never_shared_with_a_writer(tmp_path):
     owned.setflags(write=False)
     assert Sweep(voltage=owned, current=None, rate=1e4, number=0).voltage is owned
 
+    built = make_sweep("x.nwb", "sweep 0", owned, owned, 1e4, 0)
+    assert built.voltage is owned and built.current is owned
+
     path = tmp_path / "handed.nwb"
     write_nwb([_recording("e0", 2)], path, identifier="handed")
-    for sw in open_recordings(path)[0].sweeps:
-        for arr in (sw.voltage, sw.current):
-            assert arr.flags.owndata and not arr.flags.writeable
+    copies = []
+    real = recording_module._frozen_array
+
+    def counted(values):
+        out = real(values)
+        if out is not values:
+            copies.append(values)
+        return out
+
+    monkeypatch.setattr(recording_module, "_frozen_array", counted)
+    sweeps = open_recordings(path)[0].sweeps
+    assert len(sweeps) == 2 and copies == []  # the reader's samples, handed over
+    assert all(not arr.flags.writeable for sw in sweeps for arr in (sw.voltage, sw.current))

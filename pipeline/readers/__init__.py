@@ -9,6 +9,7 @@ and a cell's sweep numbers, so every reader rejects bad input with the same erro
 from __future__ import annotations
 
 import importlib
+import math
 import os
 import re
 from collections.abc import Callable, Sequence
@@ -257,16 +258,16 @@ def make_sweep(
         NaN/Inf in the current, or no finite voltage sample at all.
     """
     rate = check_rate(path, rate, what)
-    v = np.asarray(voltage, dtype=np.float64).reshape(-1)
+    v = _flat(voltage)
     if v.size < MIN_SAMPLES:
         raise ShapeError(path, f"{what}: fewer than {MIN_SAMPLES} samples ({v.size})")
-    if not np.any(np.isfinite(v)):
+    if not (math.isfinite(v[0]) or np.any(np.isfinite(v))):  # the first sample mostly answers
         raise BadSamplesError(path, f"{what}: voltage has no finite sample (all NaN or Inf)")
     if not np.isfinite(start_time):
         raise ShapeError(path, f"{what}: start time {start_time} s is not finite")
     i = None
     if current is not None:
-        i = np.asarray(current, dtype=np.float64).reshape(-1)
+        i = _flat(current)
         if current_rate is not None:
             current_rate = check_rate(path, current_rate, f"{what} (current)")
             if not np.isclose(current_rate, rate, rtol=1e-9, atol=0.0):
@@ -287,6 +288,13 @@ def make_sweep(
         protocol=protocol,
         settings=settings or {},
     )
+
+
+def _flat(values: np.ndarray) -> np.ndarray:
+    """``values`` as a 1-D float64 array; a 1-D float64 array as it is (not a view of it, which
+    the Sweep would copy: a reader's read-only array is handed over whole)."""
+    arr = np.asarray(values, dtype=np.float64)
+    return arr if arr.ndim == 1 else arr.reshape(-1)
 
 
 def make_recording(
