@@ -18,7 +18,7 @@ import re
 import sys
 import time
 from collections.abc import Iterable, Iterator, Sequence
-from concurrent.futures import ProcessPoolExecutor, ThreadPoolExecutor, as_completed
+from concurrent.futures import ThreadPoolExecutor, as_completed
 from dataclasses import dataclass, field
 from datetime import UTC, datetime
 from pathlib import Path
@@ -499,7 +499,8 @@ def _execute_pool(todo, config, figure_dir, n, hashes) -> Iterator[tuple[int, di
     whole pool; the files that were then unfinished are re-run one per fresh process, so only
     the file that kills its worker is lost. Files not yet submitted when the pool broke (it
     waits for each one's hash on spawn and forkserver) go to a new pool: none of them did it."""
-    import multiprocessing
+    import multiprocessing  # here, with the pool: a one-worker run never loads them (~20 ms)
+    from concurrent.futures import ProcessPoolExecutor
     from concurrent.futures.process import BrokenProcessPool
 
     context = multiprocessing.get_context()  # the pools' start method, and the preload's

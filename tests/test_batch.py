@@ -2,6 +2,7 @@
 
 from __future__ import annotations
 
+import concurrent.futures
 import json
 import shutil
 
@@ -409,8 +410,6 @@ def test_a_pool_hashes_before_each_submit_and_survives_a_worker_dying_meanwhile(
     from concurrent.futures.process import BrokenProcessPool
     from pathlib import Path
 
-    from pipeline import batch
-
     events, pools = [], []
     first_in_second_pool = threading.Event()
     real_hash = cache.file_sha256
@@ -449,7 +448,7 @@ def test_a_pool_hashes_before_each_submit_and_survives_a_worker_dying_meanwhile(
     spawn = multiprocessing.get_context("spawn")
     monkeypatch.setattr(multiprocessing, "get_context", lambda *args: spawn)
     monkeypatch.setattr(cache, "file_sha256", hash_and_note)
-    monkeypatch.setattr(batch, "ProcessPoolExecutor", Pool)
+    monkeypatch.setattr(concurrent.futures, "ProcessPoolExecutor", Pool)
     result = run_batch([day], out=tmp_path / "out", workers=2, figures=False, progress=False)
     assert result.exit_status == 0
     assert list(result.cells["status"]) == ["ok", "ok", "ok"]
@@ -533,7 +532,7 @@ def test_no_other_thread_runs_when_a_fork_pool_forks(day, tmp_path, monkeypatch)
 
     if multiprocessing.get_start_method() != "fork":
         pytest.skip("the pool does not fork here")
-    real_hash, real_pool = cache.file_sha256, batch.ProcessPoolExecutor
+    real_hash, real_pool = cache.file_sha256, concurrent.futures.ProcessPoolExecutor
     threads_at_fork = []
 
     def slow_hash(path):  # still hashing when the pool starts, unless it is waited for
@@ -546,7 +545,7 @@ def test_no_other_thread_runs_when_a_fork_pool_forks(day, tmp_path, monkeypatch)
 
     monkeypatch.setattr(cache, "file_sha256", slow_hash)
     monkeypatch.setattr(batch, "_preload", lambda *args: None)  # no imports to hash beside
-    monkeypatch.setattr(batch, "ProcessPoolExecutor", pool)
+    monkeypatch.setattr(concurrent.futures, "ProcessPoolExecutor", pool)
     # threads started before (an earlier test's Dask client leaves its IO loop) are not ours
     before = set(threading.enumerate())
     # with the progress bar shown, which is the default on a terminal
