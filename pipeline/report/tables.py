@@ -67,10 +67,10 @@ def _tidy(frame: pd.DataFrame) -> pd.DataFrame:
             continue
         if frame.empty or frame[col].dtype.kind in "biufcmM":
             continue
-        values = frame[col].dropna()
-        if values.map(lambda v: isinstance(v, bool)).all() and len(values) == len(frame):
+        values = frame[col].dropna().tolist()  # plain objects: a loop, not two Series.map
+        if all(isinstance(v, bool) for v in values) and len(values) == len(frame):
             frame[col] = frame[col].astype(bool)
-        elif values.map(lambda v: isinstance(v, int | float) and not isinstance(v, bool)).all():
+        elif all(isinstance(v, int | float) and not isinstance(v, bool) for v in values):
             frame[col] = pd.to_numeric(frame[col])
         else:
             # text, or mixed content (a sheet column with numbers and words): keep it as text
@@ -87,8 +87,12 @@ def _missing(value: Any) -> bool:
     return value is None or (isinstance(value, float) and math.isnan(value))
 
 
+_PLAIN = frozenset((float, int, str, bool, type(None)))  # what _flatten leaves as it is
+
+
 def _frame(rows: Iterable[Mapping[str, Any]], lead: Sequence[str]) -> pd.DataFrame:
-    rows = [{k: _flatten(v) for k, v in row.items()} for row in rows]
+    plain = _PLAIN
+    rows = [{k: v if type(v) in plain else _flatten(v) for k, v in row.items()} for row in rows]
     columns = _column_order(rows, lead)
     frame = (
         pd.DataFrame.from_records(rows, columns=columns) if rows else pd.DataFrame(columns=columns)
