@@ -36,6 +36,7 @@ NAN = math.nan
 # single-pole edges (tau up to ~1 sample) within one sample even with noise.
 _CROSSING_SHIFT = 0.4
 _SIGMA_PER_MAD2 = 1.0 / (0.6745 * math.sqrt(6.0))  # second difference of white noise: var 6s^2
+_EPS = float(np.finfo(np.float64).eps)
 
 
 @dataclass(frozen=True)
@@ -303,12 +304,23 @@ def _crossing(current: np.ndarray, lo: int, hi: int, before: float, after: float
     return int(math.floor(t_cross[best] - _CROSSING_SHIFT)) + 1
 
 
+def _edge_window(sweep: Sweep, settings: StepSettings) -> tuple[int, int]:
+    """Samples averaged each side of an edge (``k``), and the fewest samples a sweep needs:
+    eight edge windows, and one window of the noise estimate (its second differences)."""
+    k = max(3, round(settings.edge_window_s * sweep.rate))
+    return k, max(8 * k, _noise_width(k) + 2)
+
+
+def _noise_width(k: int) -> int:
+    return max(32, 4 * k)
+
+
 def _from_current(sweep: Sweep, current: np.ndarray, settings: StepSettings) -> StepEpoch:
     rate, n = sweep.rate, current.size
-    k = max(3, round(settings.edge_window_s * rate))
-    if n < 8 * k:
+    k, least = _edge_window(sweep, settings)
+    if n < least:
         return _unusable(sweep, "too short", f"the sweep has only {n} samples")
-    noise_win = _window_noise(current, max(32, 4 * k))
+    noise_win = _window_noise(current, _noise_width(k))
     quiet = np.partition(noise_win, noise_win.size // 10)[noise_win.size // 10]
     loud = noise_win > max(4.0 * quiet, 0.5 * settings.min_amplitude_a)
     sigma = _median(noise_win[~loud]) if (~loud).any() else float(quiet)
@@ -366,18 +378,20 @@ def _exact_pulse(sweep: Sweep, current: np.ndarray, settings: StepSettings) -> S
     (noise, filtered edges, ramps, trains, steps too small or too near the ends) is left to
     the general detector. Two finite levels are all its samples hold: there is no NaN to bridge.
     """
-    k = max(3, round(settings.edge_window_s * sweep.rate))  # the general detector's window
-    if current.size < 8 * k:
+    k, least = _edge_window(sweep, settings)  # the general detector's
+    if current.size < least:
         return None
     changes = np.flatnonzero(current[1:] != current[:-1])  # a NaN differs from everything
     if changes.size != 2:
         return None
     on, off = int(changes[0]) + 1, int(changes[1]) + 1
-    holding, level = float(current[0]), float(current[on])
+    holding, level = float(current[0]) + 0.0, float(current[on])  # + 0.0: no -0.0 holding
     if not (math.isfinite(holding) and math.isfinite(level)):
         return None
-    # within a millionth of the smallest step, the general detector's sums decide
-    if current[off] != holding or abs(level - holding) <= settings.min_amplitude_a * 1.000001:
+    # near the smallest step the general detector's running sums decide: their rounding grows
+    # with the samples summed and the holding current
+    near = settings.min_amplitude_a * 1e-6 + 64 * current.size * _EPS * abs(holding)
+    if current[off] != current[0] or abs(level - holding) <= settings.min_amplitude_a + near:
         return None
     if min(on, off - on, current.size - off) < 3 * k:
         return None

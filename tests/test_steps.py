@@ -296,3 +296,28 @@ def test_exact_command_shortcut_is_taken_and_falls_back() -> None:
     assert steps._exact_pulse(_sweep(train), train, SETTINGS) is None
     hole = _command(np.nan)
     assert steps._exact_pulse(_sweep(hole), hole, SETTINGS) is None
+
+
+@pytest.mark.parametrize(
+    ("n", "rate", "holding", "step", "on", "off"),
+    [
+        (30_000, 20_000.0, -0.0, -50e-12, 10_000, 20_000),  # a current held at -0.0
+        (30, 5_000.0, 0.0, -50e-12, 10, 20),  # shorter than one noise window
+        (33, 7_000.0, 0.0, -50e-12, 11, 22),
+        (30_000, 20_000.0, 1e-6, 1.0000011e-12, 10_000, 20_000),  # 1 uA holding, tiny step
+    ],
+)
+def test_exact_command_shortcut_edge_cases(n, rate, holding, step, on, off) -> None:
+    # Found by a review: the shortcut gave -0.0 pA holding, an epoch for sweeps the general
+    # detector crashed on (IndexError on its empty noise windows), and a step that the general
+    # detector's rounding at a 1 uA holding did not see. Both now agree; short sweeps are
+    # "too short" either way.
+    current = np.full(n, holding)
+    current[on:off] = holding + step
+    sweep = Sweep(np.zeros(n), current, rate, 0)
+    fast, general = find_step(sweep, SETTINGS), _general(sweep)
+    assert (fast.kind, fast.reason, fast.usable) == (general.kind, general.reason, general.usable)
+    assert (fast.onset_index, fast.offset_index) == (general.onset_index, general.offset_index)
+    assert not np.signbit(fast.holding) or np.isnan(fast.holding)
+    if n < 40:
+        assert fast.kind == "too short"
