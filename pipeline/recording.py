@@ -8,24 +8,21 @@ is rescaled.
 from __future__ import annotations
 
 from collections.abc import Mapping
-from dataclasses import dataclass, field
+from dataclasses import InitVar, dataclass, field
 
 import numpy as np
 
 
-def _frozen_array(values: np.ndarray | None) -> np.ndarray | None:
-    """A read-only float64 copy of ``values``; a read-only float64 array that owns its memory is
-    kept as it is (nothing can write to it: a reader hands its arrays over so, saving a copy of
-    every sample)."""
+def _frozen_array(values: np.ndarray | None, take: bool = False) -> np.ndarray | None:
+    """A read-only float64 copy of ``values``; with ``take``, a float64 array that owns its
+    memory is kept as it is and made read-only (its giver hands it over: nothing else writes
+    to it)."""
     if values is None:
         return None
-    if (
-        isinstance(values, np.ndarray)
-        and values.dtype == np.float64
-        and not values.flags.writeable
-        and values.flags.owndata
-    ):
-        return values
+    if take and isinstance(values, np.ndarray) and values.dtype == np.float64:
+        if values.flags.owndata:
+            values.setflags(write=False)
+            return values
     arr = np.array(values, dtype=np.float64, copy=True)
     arr.setflags(write=False)
     return arr
@@ -53,6 +50,10 @@ class Sweep:
     settings : Mapping[str, float | str]
         Amplifier settings kept as metadata, SI units in the key suffix where numeric, e.g.
         ``bias_current_a``, ``bridge_balance_ohm``, ``capacitance_compensation_f``.
+    take_arrays : bool
+        Keep float64 arrays that own their memory as they are (made read-only) instead of
+        copying them: for a reader handing over arrays that nothing else holds. By default the
+        sweep keeps read-only copies, whatever the caller does with its arrays afterwards.
     """
 
     voltage: np.ndarray
@@ -62,10 +63,11 @@ class Sweep:
     start_time: float = 0.0
     protocol: str = ""
     settings: Mapping[str, float | str] = field(default_factory=dict)
+    take_arrays: InitVar[bool] = False
 
-    def __post_init__(self) -> None:
-        object.__setattr__(self, "voltage", _frozen_array(self.voltage))
-        object.__setattr__(self, "current", _frozen_array(self.current))
+    def __post_init__(self, take_arrays: bool) -> None:
+        object.__setattr__(self, "voltage", _frozen_array(self.voltage, take_arrays))
+        object.__setattr__(self, "current", _frozen_array(self.current, take_arrays))
         object.__setattr__(self, "rate", float(self.rate))
         object.__setattr__(self, "number", int(self.number))
         object.__setattr__(self, "start_time", float(self.start_time))

@@ -851,30 +851,35 @@ def test_random_bytes_in_any_neo_format_give_a_recording_error(tmp_path, ext):
 
 
 def test_sweep_arrays_are_read_only_and_never_shared_with_a_writer(tmp_path, monkeypatch):
-    # A Sweep copies what anyone could still write to (a writable array, or a read-only view
-    # of one) and keeps a read-only float64 array that owns its memory as it is: the NWB reader
-    # hands its samples over so, without a copy of every sample.
-    mine = np.linspace(-0.07, -0.06, 100)
+    # A Sweep keeps read-only copies of what it is given, whatever the caller does with its
+    # arrays afterwards (a view taken before they were frozen still writes to them). A reader
+    # that hands over arrays nothing else holds says so (take_arrays) and they are kept as they
+    # are, made read-only: the NWB reader's samples are not copied.
+    mine = np.linspace(-0.07, -0.06, 100).copy()
+    early_view = mine[10:20]
+    mine.setflags(write=False)
     sweep = Sweep(voltage=mine, current=None, rate=1e4, number=0)
-    mine[0] = 1.0
-    assert sweep.voltage[0] == -0.07 and not sweep.voltage.flags.writeable
-    view = mine[:]
-    view.setflags(write=False)
-    assert Sweep(voltage=view, current=None, rate=1e4, number=0).voltage is not view
+    early_view[0] = 1.0
+    assert sweep.voltage[10] != 1.0 and not sweep.voltage.flags.writeable
+    given = np.linspace(-0.07, -0.06, 100).copy()
+    taken = Sweep(voltage=given, current=None, rate=1e4, number=0, take_arrays=True)
+    assert taken.voltage is given and not given.flags.writeable
+    view = np.linspace(-0.07, -0.06, 100).copy()[:50]  # not its own memory: copied even so
+    assert (
+        Sweep(voltage=view, current=None, rate=1e4, number=0, take_arrays=True).voltage is not view
+    )
     owned = np.linspace(-0.07, -0.06, 100).copy()
-    owned.setflags(write=False)
-    assert Sweep(voltage=owned, current=None, rate=1e4, number=0).voltage is owned
-
-    built = make_sweep("x.nwb", "sweep 0", owned, owned, 1e4, 0)
+    built = make_sweep("x.nwb", "sweep 0", owned, owned, 1e4, 0, take_arrays=True)
     assert built.voltage is owned and built.current is owned
+    assert make_sweep("x.nwb", "sweep 0", owned, None, 1e4, 0).voltage is not owned
 
     path = tmp_path / "handed.nwb"
     write_nwb([_recording("e0", 2)], path, identifier="handed")
     copies = []
     real = recording_module._frozen_array
 
-    def counted(values):
-        out = real(values)
+    def counted(values, take=False):
+        out = real(values, take)
         if out is not values:
             copies.append(values)
         return out

@@ -220,6 +220,7 @@ def make_sweep(
     start_time: float = 0.0,
     protocol: str = "",
     settings: dict[str, float | str] | None = None,
+    take_arrays: bool = False,
 ) -> Sweep:
     """Check one sweep's arrays (already in SI) and build the Sweep.
 
@@ -245,6 +246,9 @@ def make_sweep(
         Stimulus name.
     settings : dict, optional
         Amplifier settings, SI in the key suffix.
+    take_arrays : bool
+        Hand float64 arrays that own their memory over to the Sweep instead of having it copy
+        them (see :class:`~pipeline.recording.Sweep`): for arrays the caller made and drops.
 
     Returns
     -------
@@ -287,12 +291,13 @@ def make_sweep(
         start_time=float(start_time),
         protocol=protocol,
         settings=settings or {},
+        take_arrays=take_arrays,
     )
 
 
 def _flat(values: np.ndarray) -> np.ndarray:
     """``values`` as a 1-D float64 array; a 1-D float64 array as it is (not a view of it, which
-    the Sweep would copy: a reader's read-only array is handed over whole)."""
+    a Sweep taking arrays over would copy)."""
     arr = np.asarray(values, dtype=np.float64)
     return arr if arr.ndim == 1 else arr.reshape(-1)
 

@@ -62,7 +62,7 @@ class SeriesData:
     name: str
     kind: str  # neurodata type: CurrentClampSeries, IZeroClampSeries, CurrentClampStimulusSeries
     electrode: str
-    values: np.ndarray | None  # read-only; None once its sweeps are built (they hold it)
+    values: np.ndarray | None  # None once its sweeps are built (they take it over)
     rate: float
     start_time: float
     sweep_number: int | None
@@ -162,7 +162,6 @@ def _series_data(
     values += offset  # always: -0.0 + 0.0 is +0.0
     if factor != 1.0:
         values *= factor
-    values.setflags(write=False)  # handed over to the Sweep as it is, not copied
     if timestamps is not None:
         times = _float_samples(timestamps, start, stop)
         rate = rate_from_times(path, times, what)
@@ -824,9 +823,8 @@ def build_recordings(
 ) -> list[Recording]:
     """Group (response, stimulus) pairs by electrode into checked Recordings.
 
-    A series' read-only samples become its sweep's own (:class:`~pipeline.recording.Sweep`
-    keeps a read-only array that owns its memory rather than copying it); the series lets go of
-    them once its last sweep is built.
+    A series' samples, made here, are handed over to its sweep (``take_arrays``: no copy); the
+    series lets go of them once its last sweep is built.
     """
     name = str(path)
     uses = Counter(id(x) for pair in pairs for x in pair if x is not None)
@@ -869,4 +867,5 @@ def _sweep(path: str, order: int, resp: SeriesData, stim: SeriesData | None) -> 
         start_time=resp.start_time,
         protocol=resp.protocol or (stim.protocol if stim is not None else ""),
         settings=resp.settings,
+        take_arrays=True,  # the series' samples were made for this; nothing else holds them
     )
