@@ -194,17 +194,20 @@ def _hum_basis(n: int, rate: float, harmonics: int) -> np.ndarray:
     of 10 Hz one period of rows (2000 at 20 kHz) gives every sample's columns exactly (better
     than the sines of a long sweep's large arguments) and the hum of a sweep is that period
     repeated: a fifteenth of the work of the whole basis on a 1.5 s sweep. At any other rate
-    the basis spans the sweep.
+    the basis spans the sweep. Frequencies within a tenth of the Nyquist frequency of the fit's
+    rows (or above it) are left out: there a sine is no longer told apart from its neighbours.
     """
     period = rate / 10.0
     rows = int(period) if period.is_integer() and 0 < period < n else n
     t = np.arange(rows) / rate
+    top = 0.45 * rate / _hum_stride(rate)
     cols = []
     for base in (50.0, 60.0):
         for k in range(1, harmonics + 1):
-            w = 2 * math.pi * base * k * t
-            cols += [np.sin(w), np.cos(w)]
-    basis = np.column_stack(cols)
+            if base * k < top:
+                w = 2 * math.pi * base * k * t
+                cols += [np.sin(w), np.cos(w)]
+    basis = np.column_stack(cols) if cols else np.empty((rows, 0))
     basis.setflags(write=False)
     return basis
 
@@ -232,6 +235,8 @@ def remove_hum(
         ``v`` minus the fitted hum (NaN samples stay NaN).
     """
     basis = _hum_basis(v.size, rate, harmonics)
+    if basis.shape[1] == 0:  # sampled too slowly to see any hum
+        return v
     stride = _hum_stride(rate)
     rows = [np.arange(a, b, stride) for a, b in regions]
     if all(np.isfinite(v[r]).all() for r in rows):  # the usual case: the cell's sweeps share it
