@@ -973,3 +973,21 @@ def test_an_unreachable_scheduler_is_said_in_the_log_file_too(day, tmp_path, mon
     code = cli.main(["run", str(day), "-o", str(out), "-q", "--scheduler", "tcp://127.0.0.1:9"])
     assert code == 2
     assert "cannot reach the Dask scheduler" in (out / "patchbatch.log").read_text()
+
+
+def test_the_heap_is_unfrozen_after_a_run_unless_the_caller_froze_it(day, tmp_path):
+    # A run freezes its imported modules out of the garbage collector (gc.freeze; each full
+    # collection walked scipy, pandas and matplotlib's objects); the Python API's caller gets
+    # its collector back as it was: unfrozen, or frozen as it had left it.
+    import gc
+
+    assert gc.get_freeze_count() == 0
+    run_batch([day], out=tmp_path / "one", workers=1, figures=False, progress=False)
+    assert gc.get_freeze_count() == 0
+    try:
+        gc.freeze()
+        mine = gc.get_freeze_count()
+        run_batch([day], out=tmp_path / "two", workers=1, figures=False, progress=False)
+        assert gc.get_freeze_count() >= mine > 0
+    finally:
+        gc.unfreeze()

@@ -230,6 +230,9 @@ def write_tables(
     return written
 
 
+_JSON_PLAIN = frozenset((str, int, bool, type(None)))
+
+
 def to_jsonable(value: Any) -> Any:
     """Plain JSON types only: NaN/inf -> null (JSON has no NaN), numpy -> Python, paths -> str.
 
@@ -243,6 +246,13 @@ def to_jsonable(value: Any) -> Any:
     Any
         The same structure made of dict, list, str, int, float, bool and None.
     """
+    kind = type(value)
+    if kind is float:
+        return value if math.isfinite(value) else None
+    if kind in _JSON_PLAIN:  # before any ABC check: with matplotlib and pandas loaded, the
+        return value  # first isinstance(x, Mapping) of each type scans thousands of classes
+    if kind is dict:
+        return {str(k): to_jsonable(v) for k, v in value.items()}
     if isinstance(value, Mapping):
         return {str(k): to_jsonable(v) for k, v in value.items()}
     if isinstance(value, list | tuple | set | frozenset | np.ndarray):
