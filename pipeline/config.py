@@ -247,6 +247,8 @@ def _contradictions(config: Config) -> list[str]:
         )
     if st.schedule_duration_s is not None and st.schedule_duration_s <= 0:
         out.append("[steps] schedule_duration_s must be > 0")
+    if not st.min_amplitude_a > 0:  # the edge threshold: at 0 the sums' rounding makes edges
+        out.append("[steps] min_amplitude_a must be > 0 (e.g. 1e-12 A)")
     return out
 
 

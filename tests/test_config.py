@@ -76,6 +76,8 @@ def test_user_config_overrides_only_what_it_sets(tmp_path):
             r"fit_start_fraction < fit_end_fraction",
         ),
         ("[steps]\nschedule_onset_s = 0.1\n", r"give all four schedule keys"),
+        # at 0 the edge detector's rounding makes edges of a clean step (found by a review)
+        ("[steps]\nmin_amplitude_a = 0.0\n", r"min_amplitude_a must be > 0"),
         ("[run]\nworkers = -1\n", r"workers must be >= 0"),
         (
             "[[qc.rule]]\nname = 'vrest'\naction = 'exclude'\n",
