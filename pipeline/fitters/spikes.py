@@ -448,29 +448,17 @@ class _Found(NamedTuple):
     start: int  # sample of the threshold point (rounded up)
     knee: bool  # dV/dt was above threshold from a step edge on (no crossing)
     hidden: bool  # ... and only rose after the guard: the foot is inside the guard
-    across: bool = False  # rose before the step's offset and peaked after it
 
 
 def _candidates(
-    dvdt: np.ndarray,
-    thr: float,
-    edges: tuple[int, int],
-    guard_pre: int,
-    guard: int,
-    falling_offset: bool = False,
+    dvdt: np.ndarray, thr: float, edges: tuple[int, int], guard_pre: int, guard: int
 ) -> tuple[np.ndarray, list[int]]:
-    """Rising dV/dt crossings from onset on, outside the edge guards, plus knee candidates.
-
-    ``falling_offset``: the recorded voltage jumps down at the offset (a depolarizing step's
-    bridge error), which smoothing spreads back as a falling dV/dt only; a rising crossing just
-    before that offset is then a spike's, not the edge's, and is kept.
-    """
+    """Rising dV/dt crossings from onset on, outside the edge guards, plus knee candidates."""
     cand = _crossings(dvdt, thr)
     keep = cand >= edges[0]
     knees = []
-    for j, edge in enumerate(edges):
-        before = 0 if j == 1 and falling_offset else guard_pre
-        keep &= (cand < edge - before) | (cand > edge + guard)
+    for edge in edges:
+        keep &= (cand < edge - guard_pre) | (cand > edge + guard)
         # a step larger than C * threshold keeps dV/dt above threshold past the guard: a spike
         # rising straight out of it starts at the dV/dt minimum (knee) instead of a crossing
         if edge + guard + 1 < dvdt.size and dvdt[edge + guard + 1] >= thr:
@@ -485,14 +473,8 @@ def _locate(
     knees: list[int],
     rate: float,
     s: SpikeSettings,
-    artefact: tuple[int, int, int] | None = None,
 ) -> list[_Found]:
-    """Spikes among the candidates: a peak, enough amplitude, repolarization, refractory gap.
-
-    ``artefact``: the samples (first, edge, last) of a falling offset's smoothed edge and guard.
-    A spike that rises before the edge looks for its peak past them (their dV/dt is the edge's,
-    not the spike's turning), and for its steepest rise before them.
-    """
+    """Spikes among the candidates: a peak, enough amplitude, repolarization, refractory gap."""
     n, thr = v.size, s.dvdt_threshold_v_per_s
     rise_n = max(2, int(round(s.max_rise_s * rate)))
     fall_n = max(2, int(round(s.max_fall_s * rate)))
@@ -507,16 +489,10 @@ def _locate(
         if c < resume:
             continue
         # the peak: highest V up to where dV/dt first turns negative (not a later spike's)
-        rising = dvdt[c : min(c + rise_n, n)]
-        across = artefact is not None and c < artefact[1] and artefact[0] < c + rise_n
-        if across:  # the offset's edge is no turning of the spike
-            rising = rising.copy()
-            rising[max(0, artefact[0] - c) : artefact[2] + 1 - c] = 0.0
-        falling = np.flatnonzero(rising < 0)
+        falling = np.flatnonzero(dvdt[c : min(c + rise_n, n)] < 0)
         stop = c + int(falling[0]) + guard_peak if falling.size else c + rise_n
         p = c + int(np.argmax(v[c : min(stop, n)]))
-        across = across and p >= artefact[0]
-        m = c + int(np.argmax(dvdt[c : (max(c, min(p, artefact[0] - 1)) if across else p) + 1]))
+        m = c + int(np.argmax(dvdt[c : p + 1]))
         c = int(cand[np.searchsorted(cand, m, side="right") - 1])  # last crossing before m
         knee = hidden = c in knees
         if knee:
@@ -533,7 +509,7 @@ def _locate(
         if below.size == 0:  # no repolarization: a plateau, not a spike
             resume = p
             continue
-        found.append(_Found(x, v_thr, p, p + int(below[0]), c, knee, hidden, across))
+        found.append(_Found(x, v_thr, p, p + int(below[0]), c, knee, hidden))
         resume = max(p + int(below[0]), c + refr_n)
     return found
 
@@ -555,49 +531,31 @@ def _shape(
     up = f.peak - int(np.flatnonzero(v[f.start - 1 : f.peak + 1][::-1] < half)[0])
     width = float(_interp_cross(v, f.down, half) - _interp_cross(v, up + 1, half)) * dt
     unknown = NAN if f.hidden else 1.0  # threshold-based values of a hidden foot are NaN
-    shape = NAN if f.across else 1.0  # values read across the offset's jump are NaN
-    notes = (
-        _knee_note(f.hidden) if f.knee else "",
-        _ACROSS_OFFSET if f.across else "",
-        _CUT_AHP if ahp_unknown and not f.across else "",
-    )
     return Spike(
         time_s=float(t0 + f.x * dt),
         threshold_v=f.v_thr * unknown,
-        peak_v=float(v[f.peak]) * shape,
-        peak_time_s=float(t0 + f.peak * dt) * shape,
-        amplitude_v=amp * unknown * shape,
-        width_s=width * unknown * shape,
-        ahp_v=NAN if ahp_unknown else float(f.v_thr - v[trough]) * unknown * shape,
-        ahp_time_s=NAN if ahp_unknown else float((trough - f.x) * dt) * shape,
-        max_rise_v_per_s=float(_gradient(v, f.start - 1, f.peak + 1, dt).max()) * shape,
-        max_fall_v_per_s=float(_gradient(v, f.peak, trough + 1, dt).min()) * shape,
+        peak_v=float(v[f.peak]),
+        peak_time_s=float(t0 + f.peak * dt),
+        amplitude_v=amp * unknown,
+        width_s=width * unknown,
+        ahp_v=NAN if ahp_unknown else float(f.v_thr - v[trough]) * unknown,
+        ahp_time_s=NAN if ahp_unknown else float((trough - f.x) * dt),
+        max_rise_v_per_s=float(_gradient(v, f.start - 1, f.peak + 1, dt).max()),
+        max_fall_v_per_s=float(_gradient(v, f.peak, trough + 1, dt).min()),
         in_step=in_step,
-        note="; ".join(filter(None, notes)),
+        note="; ".join(
+            filter(None, (_knee_note(f.hidden) if f.knee else "", _CUT_AHP if ahp_unknown else ""))
+        ),
     )
 
 
 _CUT_AHP = "AHP not measured: the step ended before its trough"
-_ACROSS_OFFSET = (
-    "rose before the step's end and peaked after it: counted in the step; its peak, width, "
-    "rates and AHP, read across the offset's bridge jump, are not measured"
-)
 
 
 def _detect(
-    v: np.ndarray,
-    rate: float,
-    onset: int,
-    offset: int,
-    settings: SpikeSettings,
-    t0: float,
-    depolarizing: bool = False,
+    v: np.ndarray, rate: float, onset: int, offset: int, settings: SpikeSettings, t0: float
 ) -> tuple[list[Spike], float, int]:
     """Find spikes in ``v`` (cut to the analysis span; ``onset``/``offset`` relative to it).
-
-    ``depolarizing``: the step injects positive current, so the recorded voltage can only jump
-    down at its offset (see :func:`_candidates`): a spike rising in the last fraction of a
-    millisecond of the step is the step's, found from its own threshold crossing.
 
     Returns the spikes (times from ``t0``, s), the baseline dV/dt noise (robust SD, V/s; NaN
     without a baseline) and the count of in-step upstrokes too small to be spikes
@@ -610,10 +568,9 @@ def _detect(
     guard = int(round(settings.edge_guard_s * rate))
     noise = _robust_sd(dvdt[: max(0, onset - guard_pre)])
     cand, knees = _candidates(
-        dvdt, settings.dvdt_threshold_v_per_s, (onset, offset), guard_pre, guard, depolarizing
+        dvdt, settings.dvdt_threshold_v_per_s, (onset, offset), guard_pre, guard
     )
-    artefact = (offset - guard_pre, offset, offset + guard) if depolarizing else None
-    found = _locate(v, dvdt, cand, knees, rate, settings, artefact)
+    found = _locate(v, dvdt, cand, knees, rate, settings)
     ahp_n = max(1, int(round(settings.ahp_window_s * rate)))
     spikes = []
     for k, f in enumerate(found):
@@ -677,7 +634,6 @@ def _detect_in_span(
         epoch.offset_index - start,
         settings,
         start / sweep.rate,
-        depolarizing=epoch.amplitude > 0,
     )
 
 
