@@ -10,6 +10,7 @@ from __future__ import annotations
 
 import bisect
 import contextlib
+import contextvars
 import functools
 import gc
 import json
@@ -208,6 +209,7 @@ def run_batch(
     _prepare_outdir(outdir, inputs_given, config, force)
     handler = _log_to_file(outdir)
     frozen_before = gc.get_freeze_count()
+    freezing = _FREEZE.set(not frozen_before)
     try:
         log.info("patchbatch %s: %d input file(s) -> %s", __version__, len(files), outdir)
         try:
@@ -231,6 +233,7 @@ def run_batch(
     finally:
         logging.getLogger("patchbatch").removeHandler(handler)
         handler.close()
+        _FREEZE.reset(freezing)
         if not frozen_before:  # a caller that froze objects of its own keeps them frozen
             gc.unfreeze()
 
@@ -552,13 +555,18 @@ def _submit(submit, job: Job, hashes, *args: Any) -> Any:
     return submit(job.run, *args)
 
 
+_FREEZE: contextvars.ContextVar[bool] = contextvars.ContextVar("patchbatch_freeze", default=False)
+
+
 def _settle_heap() -> None:
     """Leave the objects alive now (mostly the modules just imported) out of later garbage
     collections (``gc.freeze``). With scipy, pandas and matplotlib loaded, each full collection
     walked them all: ~0.16 s of a pool run's main process, mostly in its serial parts. Before a
     fork it also spares the workers' copies of those pages (the gc module's documentation).
-    :func:`run_batch` unfreezes them when it ends."""
-    gc.freeze()
+    :func:`run_batch` unfreezes them when it ends; a caller that froze objects of its own
+    keeps its collector as it was (nothing is frozen then)."""
+    if _FREEZE.get():
+        gc.freeze()
 
 
 def _import_report_modules(figures: bool) -> None:

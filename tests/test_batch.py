@@ -988,6 +988,6 @@ def test_the_heap_is_unfrozen_after_a_run_unless_the_caller_froze_it(day, tmp_pa
         gc.freeze()
         mine = gc.get_freeze_count()
         run_batch([day], out=tmp_path / "two", workers=1, figures=False, progress=False)
-        assert gc.get_freeze_count() >= mine > 0
+        assert 0 < gc.get_freeze_count() <= mine  # nothing more frozen (some may have died)
     finally:
         gc.unfreeze()
