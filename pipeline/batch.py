@@ -208,8 +208,7 @@ def run_batch(
     files = discover_inputs(inputs, exclude=outdir)
     _prepare_outdir(outdir, inputs_given, config, force)
     handler = _log_to_file(outdir)
-    frozen_before = gc.get_freeze_count()
-    freezing = _FREEZE.set(not frozen_before)
+    freezing = _FREEZE.set(gc.get_freeze_count() == 0)  # a caller's own freeze is left alone
     try:
         log.info("patchbatch %s: %d input file(s) -> %s", __version__, len(files), outdir)
         try:
@@ -233,9 +232,9 @@ def run_batch(
     finally:
         logging.getLogger("patchbatch").removeHandler(handler)
         handler.close()
-        _FREEZE.reset(freezing)
-        if not frozen_before:  # a caller that froze objects of its own keeps them frozen
+        if _FREEZE.get():
             gc.unfreeze()
+        _FREEZE.reset(freezing)
 
 
 def _prepare_outdir(outdir: Path, inputs: list[str], config: Config, force: bool) -> None:

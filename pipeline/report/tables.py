@@ -251,8 +251,6 @@ def to_jsonable(value: Any) -> Any:
         return value if math.isfinite(value) else None
     if kind in _JSON_PLAIN:  # before any ABC check: with matplotlib and pandas loaded, the
         return value  # first isinstance(x, Mapping) of each type scans thousands of classes
-    if kind is dict:
-        return {str(k): to_jsonable(v) for k, v in value.items()}
     if isinstance(value, Mapping):
         return {str(k): to_jsonable(v) for k, v in value.items()}
     if isinstance(value, list | tuple | set | frozenset | np.ndarray):
