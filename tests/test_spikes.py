@@ -398,6 +398,24 @@ def test_fi_stops_at_saturation_and_excluded_sweeps_are_left_out():
     assert fit_ex.excluded == {2: "baseline drift"}
 
 
+def test_first_spike_values_left_empty_at_rheobase_say_why():
+    # the rheobase sweep's only spike has its foot in the edge guard: its threshold, and the
+    # amplitude and width measured from it, are unknown. The cell row's first-spike columns are
+    # then empty, and its spiking_reason says why (it used to say nothing).
+    rec, eps = cell([20, 40, 60], [0, 2, 4])
+    v = flat()
+    add_piecewise_spike(v, ONSET - 0.2e-3)  # crosses 20 V/s at the onset sample
+    sweeps = (rec.sweeps[0], sweep(v, number=2, amp=40e-12), rec.sweeps[2])
+    fit = fit_spiking(Recording("c1", "c1.nwb", "e0", sweeps), eps)
+    assert fit.rheobase_sweep == 2
+    row = fit.cell_row()
+    assert math.isnan(row["first_spike_threshold_mv"]) and math.isnan(row["first_spike_width_ms"])
+    assert "first spike at rheobase (sweep 2): " in row["spiking_reason"]
+    assert "threshold unknown" in row["spiking_reason"]
+    # a measured first spike adds nothing
+    assert "first spike" not in fit_spiking(rec, eps).cell_row()["spiking_reason"]
+
+
 def test_cell_without_spikes_or_depolarizing_steps():
     rec, eps = cell([20, 40, 60], [0, 0, 0])
     fit = fit_spiking(rec, eps)

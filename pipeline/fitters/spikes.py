@@ -952,6 +952,8 @@ def _summarise(
     if why:
         reasons.append(why)
     first = next(sp for sp in rheo.spikes if sp.in_step)
+    if first.note:  # the first_spike_* values it leaves empty need their reason in the cell row
+        reasons.append(f"first spike at rheobase (sweep {rheo.sweep}): {first.note}")
     return SpikeFit(
         **base,
         rheobase_a=rheo.step_a,
