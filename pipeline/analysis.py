@@ -149,7 +149,8 @@ def _analyse(
     }
     cell_row["n_sweeps"] = len(recording.sweeps)
     cell_row["n_sweeps_used"] = sum(1 for r in sweep_rows if r["used"])
-    verdict = qc.judge_cell(config.qc.for_scope("cell"), cell_row, excluded)
+    # rules on a metadata sheet's columns wait for the sheet: the batch joins it and judges them
+    verdict = qc.judge_cell(config.qc.for_scope("cell"), cell_row, excluded, defer_missing=True)
     cell_row["qc_pass"] = verdict.qc_pass
     cell_row["qc_reasons"] = "; ".join(verdict.reasons)
     cell_row["qc_flags"] = "; ".join(verdict.flags)

@@ -79,12 +79,15 @@ class BatchResult:
         return 1 if self.errors else 0
 
 
-def discover_inputs(inputs: Sequence[str | Path], exclude: Path | None = None) -> list[Path]:
+def discover_inputs(
+    inputs: Sequence[str | Path], exclude: Path | None = None, sheet: str | Path | None = None
+) -> list[Path]:
     """Files to analyse: the files given, and supported files found recursively in folders.
 
-    The metadata sheet (``metadata.csv``) and the tables this program writes (in ``exclude``,
-    the output folder, or in an earlier run's output folder) are left out. A path that does not
-    exist is returned as is, so that it becomes an error row.
+    The metadata sheets (``metadata.csv`` in any letter case, and ``sheet``, the one given with
+    ``--sheet``, even when named as an input) and the tables this program writes (in
+    ``exclude``, the output folder, or in an earlier run's output folder) are left out. A path
+    that does not exist is returned as is, so that it becomes an error row.
 
     Raises
     ------
@@ -103,6 +106,8 @@ def discover_inputs(inputs: Sequence[str | Path], exclude: Path | None = None) -
         else:
             found.append(item)
     unique = list(dict.fromkeys(p.resolve() for p in found))
+    if sheet is not None:  # a sheet is never a recording
+        unique = [p for p in unique if p != Path(sheet).resolve()]
     if not unique:
         raise InputError(
             f"{', '.join(map(str, inputs)) or 'no input given'}: no recording files found "
@@ -118,7 +123,7 @@ def _wanted(path: Path, exclude: Path | None) -> bool:
     """Not the sheet, not hidden, and not a table this program wrote: one in the output folder
     (which may be the input folder itself) or in an earlier run's output folder (one holding
     a cache) that lies in the input tree."""
-    if path.name == SHEET_NAME or any(part.startswith(".") for part in path.parts[-2:]):
+    if path.name.lower() == SHEET_NAME or any(part.startswith(".") for part in path.parts[-2:]):
         return False
     if path.name not in OUTPUT_NAMES:
         return True
@@ -128,11 +133,28 @@ def _wanted(path: Path, exclude: Path | None) -> bool:
 
 
 def find_sheets(inputs: Sequence[str | Path]) -> list[Path]:
-    """The ``metadata.csv`` of every input folder that has one, in input order."""
+    """The ``metadata.csv`` of every input folder that has one, in input order.
+
+    The name is matched in any letter case (``Metadata.csv``, as some systems save it); a
+    folder holding several such names uses ``metadata.csv`` itself, else the first in sorted
+    order, and says so.
+    """
     found: dict[Path, Path] = {}
     for item in map(Path, inputs):
-        if item.is_dir() and (item / SHEET_NAME).is_file():
-            found.setdefault((item / SHEET_NAME).resolve(), item / SHEET_NAME)
+        if not item.is_dir():
+            continue
+        names = sorted(p for p in item.iterdir() if p.name.lower() == SHEET_NAME and p.is_file())
+        if not names:
+            continue
+        chosen = next((p for p in names if p.name == SHEET_NAME), names[0])
+        if len(names) > 1:
+            log.warning(
+                "%s: several metadata sheets (%s); using %s",
+                item,
+                ", ".join(p.name for p in names),
+                chosen.name,
+            )
+        found.setdefault(chosen.resolve(), chosen)
     return list(found.values())
 
 
@@ -205,7 +227,7 @@ def run_batch(
     inputs_given = [str(Path(p).resolve()) for p in inputs]
     # Usage errors (sheet, output folder) stop the run before anything is written.
     sheets = _read_sheets(sheet, inputs)
-    files = discover_inputs(inputs, exclude=outdir)
+    files = discover_inputs(inputs, exclude=outdir, sheet=sheet)
     _prepare_outdir(outdir, inputs_given, config, force)
     handler = _log_to_file(outdir)
     freezing = _FREEZE.set(gc.get_freeze_count() == 0)  # a caller's own freeze is left alone
@@ -701,7 +723,9 @@ def _assemble(files, results, run, config, outdir, sheets, figures):
                         "traceback": cell["traceback"],
                     }
                 )
+    waiting = _waiting_rules(config, cell_rows)
     sheet_columns, warnings = _join_sheets(cell_rows, sheets)
+    _judge_waiting(waiting)
     warnings += figure_problems
     t0 = time.perf_counter()
     cells = tables.cells_frame(cell_rows, sheet_columns)
@@ -730,14 +754,18 @@ def _assemble(files, results, run, config, outdir, sheets, figures):
     tables.write_run_json(outdir, info)
     for w in warnings:
         log.warning("%s", w)
-    log.info(
-        "%d cell(s), %d pass QC, %d input error(s); wrote %s",
-        len(cells),
-        n_pass,
-        len(errors),
-        outdir,
-    )
+    log.info("%s; wrote %s", summary_line(info["counts"]), outdir)
     return BatchResult(cells, sweeps, spikes, info, errors)
+
+
+def summary_line(counts: dict[str, int]) -> str:
+    """The run's counts in words (the log's last line and the command's summary): the files,
+    the cells analysed in those that could be read, how many pass QC, the files that could not
+    be analysed."""
+    return (
+        f"{counts['files']} file(s): {counts['cells']} cell(s) analysed, "
+        f"{counts['cells_pass']} pass QC; {counts['files_failed']} file(s) could not be analysed"
+    )
 
 
 def _prune_figures(folder: Path, linked: Iterable[str]) -> None:
@@ -828,6 +856,34 @@ def _error_row(result: dict[str, Any]) -> dict[str, Any]:
         "qc_reasons": result["error"]["message"],
         "status": result["error"]["message"],
     }
+
+
+def _waiting_rules(config: Config, cell_rows: list[dict[str, Any]]) -> list[tuple[dict, tuple]]:
+    """(row, rules) for each analysed cell and the cell rules its analysis could not judge:
+    those naming a column its row lacks, as a metadata sheet's column (the analysis defers
+    them, :func:`pipeline.qc.judge_cell`)."""
+    rules = config.qc.for_scope("cell")
+    out = []
+    for row in cell_rows:
+        if row.get("status") == "ok":
+            missing = tuple(r for r in rules if r.column not in row)
+            if missing:
+                out.append((row, missing))
+    return out
+
+
+def _judge_waiting(waiting: list[tuple[dict, tuple]]) -> None:
+    """Judge the deferred rules on the rows the sheets were joined to, and add their verdict
+    to the analysis' (a column no sheet gave fails the cell, naming the rule)."""
+    from pipeline import qc
+
+    for row, rules in waiting:
+        verdict = qc.judge_cell(rules, row)
+        joined = {
+            key: "; ".join(filter(None, (row.get(key) or "", *extra)))
+            for key, extra in (("qc_reasons", verdict.reasons), ("qc_flags", verdict.flags))
+        }
+        row.update(joined, qc_pass=bool(row.get("qc_pass")) and verdict.qc_pass)
 
 
 def _join_sheets(

@@ -116,7 +116,7 @@ def main(argv: Sequence[str] | None = None) -> int:
 
 
 def _run(args: argparse.Namespace) -> int:
-    from pipeline.batch import run_batch
+    from pipeline.batch import run_batch, summary_line
     from pipeline.config import load_config
 
     if args.workers is not None and args.workers < 1:
@@ -137,13 +137,8 @@ def _run(args: argparse.Namespace) -> int:
         )
     finally:
         logging.getLogger("patchbatch").removeHandler(console)
-    counts = result.info["counts"]
     if not args.quiet:
-        print(
-            f"{counts['cells']} cell(s) from {counts['files']} file(s): "
-            f"{counts['cells_pass']} pass QC, {counts['files_failed']} file(s) could not be "
-            f"analysed. Open {args.out}/index.html"
-        )
+        print(f"{summary_line(result.info['counts'])}. Open {args.out}/index.html")
     return result.exit_status
 
 

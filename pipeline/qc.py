@@ -132,12 +132,16 @@ class CellVerdict:
         Messages of rules that only flag the cell (it still passes).
     excluded : dict
         Sweep number -> reason, for sweeps left out of the cell's fits.
+    deferred : tuple of str
+        Names of the rules not judged here because their column is not in the row yet (a
+        metadata sheet's column: the batch judges them once the sheet is joined).
     """
 
     qc_pass: bool
     reasons: tuple[str, ...] = ()
     flags: tuple[str, ...] = ()
     excluded: dict[int, str] | None = None
+    deferred: tuple[str, ...] = ()
 
 
 def rules_from_toml(table: Mapping[str, Any], where: str) -> QcSettings:
@@ -259,11 +263,17 @@ def sweep_exclusions(rules: Iterable[Rule], sweep_rows: Sequence[Mapping[str, An
 
 
 def judge_cell(
-    rules: Iterable[Rule], cell_row: Mapping[str, Any], excluded: Mapping[int, str] | None = None
+    rules: Iterable[Rule],
+    cell_row: Mapping[str, Any],
+    excluded: Mapping[int, str] | None = None,
+    *,
+    defer_missing: bool = False,
 ) -> CellVerdict:
     """Apply cell rules to one cell's row.
 
-    A cell whose ``status`` is not ``ok`` fails with its status as the reason.
+    A cell whose ``status`` is not ``ok`` fails with its status as the reason. A rule naming a
+    column the row lacks fails the cell, or with ``defer_missing`` is left for later (its name
+    in ``deferred``): the analysis judges a cell before its metadata sheet is joined.
     """
     status = str(cell_row.get("status", "ok"))
     if status != "ok":
@@ -271,11 +281,15 @@ def judge_cell(
         return CellVerdict(False, (status,), (), dict(excluded or {}))
     reasons: list[str] = []
     flags: list[str] = []
+    deferred: list[str] = []
     for rule in rules:
         if rule.column not in cell_row:
-            reasons.append(
-                f"QC rule {rule.name!r} names column {rule.column!r}, not in the cell table"
-            )
+            if defer_missing:
+                deferred.append(rule.name)
+            else:
+                reasons.append(
+                    f"QC rule {rule.name!r} names column {rule.column!r}, not in the cell table"
+                )
             continue
         if rule.fires(cell_row[rule.column]):
             (reasons if rule.action == "fail" else flags).append(
@@ -286,6 +300,7 @@ def judge_cell(
         reasons=tuple(reasons),
         flags=tuple(flags),
         excluded=dict(excluded or {}),
+        deferred=tuple(deferred),
     )
 
 

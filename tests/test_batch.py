@@ -135,6 +135,26 @@ def test_sheet_mismatches_are_reported(day, tmp_path):
     assert result.exit_status == 0
 
 
+def test_a_sheet_in_any_letter_case_or_given_by_path_is_not_a_recording(day, tmp_path):
+    # "Metadata.csv" was read as a recording (an error row, exit 1) and never joined; a sheet
+    # given with --sheet that lies in the input folder was analysed as well
+    folder = tmp_path / "day"
+    shutil.copytree(day, folder)
+    (folder / "metadata.csv").rename(folder / "Metadata.csv")
+    result = run_batch([folder], out=tmp_path / "out", workers=1, figures=False, progress=False)
+    assert result.exit_status == 0
+    assert list(result.cells["cell_id"]) == ["c00", "c01", "c02"]
+    assert list(result.cells["condition"]) == ["ctrl", "drug", "ctrl"]
+    (folder / "Metadata.csv").unlink()
+    given = folder / "sheet_2026-03-14.csv"
+    given.write_text("file,condition\nc00,ctrl\nc01,ctrl\nc02,drug\n")
+    for inputs in ([folder], [*sorted(folder.glob("*.nwb")), given]):  # a shell's glob too
+        result = run_batch(inputs, out=tmp_path / "out2", sheet=given, workers=1, figures=False,
+                           progress=False, force=True)  # fmt: skip
+        assert result.exit_status == 0 and result.info["warnings"] == []
+        assert list(result.cells["condition"]) == ["ctrl", "ctrl", "drug"]
+
+
 def test_unreadable_file_is_a_row_and_exit_1(day, tmp_path, capsys):
     folder = tmp_path / "day"
     shutil.copytree(day, folder)
@@ -279,7 +299,10 @@ def test_the_command_exits_with_its_status_and_everything_written(day, tmp_path)
     )
     assert done.returncode == 1, done.stderr
     assert done.stdout.rstrip().endswith(f"Open {out}/index.html"), done.stdout
-    assert "3 cell(s) from 4 file(s): 2 pass QC, 1 file(s) could not be analysed" in done.stdout
+    # "3 cell(s) from 4 file(s)" read as if the cells came from all four files
+    said = "4 file(s): 3 cell(s) analysed, 2 pass QC; 1 file(s) could not be analysed"
+    assert said in done.stdout
+    assert f"{said}; wrote {out}" in (out / "patchbatch.log").read_text()
     assert "broken.nwb" in (out / "patchbatch.log").read_text()
     assert len(_cells(out)) == 4
     assert len(list((out / "figures").glob("*.png"))) == 3
@@ -952,6 +975,38 @@ def test_a_sheet_column_named_like_a_result_is_not_joined(day, tmp_path):
     said = " ".join(result.info["warnings"])
     assert "'source_file' is not joined" in said and "'rin_mohm' is not joined" in said
     assert list(cells.columns[:3]) == ["cell_id", "source_file", "condition"]
+
+
+def test_qc_rules_on_sheet_columns_are_judged_after_the_join(day, tmp_path):
+    # a cell rule on a sheet column (the README and the config allow it) failed every cell with
+    # "names column 'age_days', not in the cell table": the analysis judges a cell before the
+    # sheet is joined. It is now judged after the join; a column no sheet gives still fails.
+    sheet = tmp_path / "sheet.csv"
+    sheet.write_text("file,age_days\nc00.nwb,21\nc01.nwb,30\nc02.nwb,40\n")
+    config = tmp_path / "qc.toml"
+    config.write_text(
+        '[[qc.rule]]\nname = "age"\ncolumn = "age_days"\nscope = "cell"\nmin = 25\n'
+        'action = "fail"\nmessage = "too young: {value:g} days"\n'
+        '[[qc.rule]]\nname = "old"\ncolumn = "age_days"\nscope = "cell"\nmax = 35\n'
+        'action = "flag"\n'
+    )
+    out = tmp_path / "out"
+    result = run_batch([day], config, out=out, sheet=sheet, workers=1, progress=False)
+    by_id = _cells(out).set_index("cell_id")
+    assert (
+        not by_id.loc["c00", "qc_pass"] and by_id.loc["c00", "qc_reasons"] == "too young: 21 days"
+    )
+    assert by_id.loc["c01", "qc_pass"], by_id.loc["c01", "qc_reasons"]
+    # the depolarized cell keeps its own reason; the flag joins it
+    assert not by_id.loc["c02", "qc_pass"]
+    assert "resting potential" in by_id.loc["c02", "qc_reasons"]
+    assert "age_days = 40" in by_id.loc["c02", "qc_flags"]
+    assert result.cells.set_index("cell_id").loc["c01", "qc_pass"]
+    assert (out / "figures" / "c01.png").is_file()
+    # without the sheet the column is missing: the rule fails the cells, naming it
+    bare = run_batch([day], config, out=tmp_path / "bare", workers=1, figures=False,
+                     progress=False)  # fmt: skip
+    assert bare.cells["qc_reasons"].str.contains("names column 'age_days'").all()
 
 
 def test_sample_into_a_file_is_a_usage_error(tmp_path, capsys):

@@ -58,6 +58,18 @@ def test_rule_on_unknown_column_fails_loudly():
     assert "nope" in verdict.reasons[0]
 
 
+def test_rule_on_a_column_still_to_come_is_deferred_when_asked():
+    # the analysis judges a cell before its metadata sheet is joined: a rule on a sheet column
+    # waits (the batch judges it after the join) instead of failing every cell
+    rules = [
+        _rule(column="age_days", name="age"),
+        _rule(column="tau_ms", name="tau", min=5.0, max=None),
+    ]
+    verdict = judge_cell(rules, {"tau_ms": 3.0, "status": "ok"}, defer_missing=True)
+    assert verdict.deferred == ("age",)
+    assert not verdict.qc_pass and len(verdict.reasons) == 1 and "tau_ms" in verdict.reasons[0]
+
+
 def test_sweep_rules_respect_step_direction():
     rule = _rule(
         scope="sweep",

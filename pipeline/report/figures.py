@@ -1050,8 +1050,14 @@ def _draw_text(box, fig, recording, cell_fit, verdict, views, cell_id: str, spik
     col.add(_property_lines(cell_fit, views, spikes), 8.5, gap=1.0, family="monospace")
     passed = verdict is not None and verdict.qc_pass and status == "ok"
     word = "QC PASS" if passed else ("QC FAIL" if verdict is not None else "QC: no verdict")
-    col.add([word], 13, gap=0.4, weight="bold", color=PASS_COLOUR if passed else FAIL_COLOUR)
+    colour = PASS_COLOUR if passed else FAIL_COLOUR
+    pending = list(verdict.deferred) if verdict is not None and status == "ok" else []
+    if passed and pending:  # rules on the sheet's columns may still fail it: not a pass yet
+        word, colour = "QC: see cells.csv", "0.3"
+    col.add([word], 13, gap=0.4, weight="bold", color=colour)
     sections = []
+    if pending:
+        sections.append(("rules on sheet columns (verdict in cells.csv):", pending))
     if verdict is not None and (verdict.reasons or not passed):
         sections.append(
             ("failed because:", list(verdict.reasons) or ["(the QC verdict gives no reason)"])
