@@ -217,7 +217,7 @@ def _derived(sweep_rows: list[dict[str, Any]], same_step_pa: float) -> dict[str,
     return {"n_hyperpolarizing_used": len(hyper), "rin_change_pct": change}
 
 
-def _rin_change_pct(hyper: list[dict[str, Any]], same_step_pa: float = 1.0) -> float:
+def _rin_change_pct(hyper: list[dict[str, Any]], same_step_pa: float) -> float:
     """Change of per-sweep ΔV/I between the first and last repeats of the same step, %.
 
     Only steps given more than once say anything about stability (a single family of different

@@ -107,7 +107,8 @@ def discover_inputs(
             found.append(item)
     unique = list(dict.fromkeys(p.resolve() for p in found))
     if sheet is not None:  # a sheet is never a recording
-        unique = [p for p in unique if p != Path(sheet).resolve()]
+        given = Path(sheet).resolve()
+        unique = [p for p in unique if p != given]
     if not unique:
         raise InputError(
             f"{', '.join(map(str, inputs)) or 'no input given'}: no recording files found "
@@ -723,9 +724,8 @@ def _assemble(files, results, run, config, outdir, sheets, figures):
                         "traceback": cell["traceback"],
                     }
                 )
-    waiting = _waiting_rules(config, cell_rows)
     sheet_columns, warnings = _join_sheets(cell_rows, sheets)
-    _judge_waiting(waiting)
+    _judge_joined(config, cell_rows)
     warnings += figure_problems
     t0 = time.perf_counter()
     cells = tables.cells_frame(cell_rows, sheet_columns)
@@ -858,32 +858,25 @@ def _error_row(result: dict[str, Any]) -> dict[str, Any]:
     }
 
 
-def _waiting_rules(config: Config, cell_rows: list[dict[str, Any]]) -> list[tuple[dict, tuple]]:
-    """(row, rules) for each analysed cell and the cell rules its analysis could not judge:
-    those naming a column its row lacks, as a metadata sheet's column (the analysis defers
-    them, :func:`pipeline.qc.judge_cell`)."""
-    rules = config.qc.for_scope("cell")
-    out = []
-    for row in cell_rows:
-        if row.get("status") == "ok":
-            missing = tuple(r for r in rules if r.column not in row)
-            if missing:
-                out.append((row, missing))
-    return out
+def _judge_joined(config: Config, cell_rows: list[dict[str, Any]]) -> None:
+    """The cell rules' verdict on each analysed cell's row, once its sheet is joined.
 
-
-def _judge_waiting(waiting: list[tuple[dict, tuple]]) -> None:
-    """Judge the deferred rules on the rows the sheets were joined to, and add their verdict
-    to the analysis' (a column no sheet gave fails the cell, naming the rule)."""
+    The analysis judged the cell without the sheet (for its figure), deferring rules on columns
+    its row lacks; here every rule is judged on the whole row, so a rule on a sheet column
+    counts, and one on a column no sheet gave fails the cell, naming the rule. A value the
+    cache stored as null is judged as the NaN it was (:meth:`pipeline.qc.Rule.fires`).
+    """
     from pipeline import qc
 
-    for row, rules in waiting:
-        verdict = qc.judge_cell(rules, row)
-        joined = {
-            key: "; ".join(filter(None, (row.get(key) or "", *extra)))
-            for key, extra in (("qc_reasons", verdict.reasons), ("qc_flags", verdict.flags))
-        }
-        row.update(joined, qc_pass=bool(row.get("qc_pass")) and verdict.qc_pass)
+    rules = config.qc.for_scope("cell")
+    for row in cell_rows:
+        if row.get("status") == "ok":
+            verdict = qc.judge_cell(rules, row)
+            row.update(
+                qc_pass=verdict.qc_pass,
+                qc_reasons="; ".join(verdict.reasons),
+                qc_flags="; ".join(verdict.flags),
+            )
 
 
 def _join_sheets(

@@ -139,7 +139,8 @@ def test_repeats_are_the_same_step_within_a_picoampere():
     ]
     # pairs (200, 160) and (190, 171): first mean 195, last mean 165.5 (the -100 pA pair
     # alone, as before, gave -10%)
-    assert _rin_change_pct(rows) == pytest.approx(100 * (165.5 - 195) / 195)
+    same_step_pa = load_config(None).spikes.step_tolerance_a * 1e12  # the config's default
+    assert _rin_change_pct(rows, same_step_pa) == pytest.approx(100 * (165.5 - 195) / 195)
 
 
 def test_too_few_hyperpolarizing_sweeps_fails():

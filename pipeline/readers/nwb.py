@@ -30,6 +30,7 @@ import numpy as np
 
 from pipeline.errors import CorruptFileError, NoCurrentClampError, RecordingError, ShapeError
 from pipeline.readers import (
+    _flat,
     cell_ids,
     check_volts_or_amps,
     describe,
@@ -156,7 +157,7 @@ def _series_data(
         raise ShapeError(path, f"{what}: data of shape {raw.shape}, expected one channel")
     conversion = 1.0 if conversion is None else float(conversion)
     offset = 0.0 if offset is None else float(offset)
-    values = raw if raw.ndim == 1 else raw.reshape(-1)
+    values = _flat(raw)  # float64 already: the array itself when 1-D
     if conversion != 1.0:  # x * 1.0 is x: the pass is skipped, not the arithmetic changed
         values *= conversion
     values += offset  # always: -0.0 + 0.0 is +0.0

@@ -91,8 +91,7 @@ _PLAIN = frozenset((float, int, str, bool, type(None)))  # what _flatten leaves 
 
 
 def _frame(rows: Iterable[Mapping[str, Any]], lead: Sequence[str]) -> pd.DataFrame:
-    plain = _PLAIN
-    rows = [{k: v if type(v) in plain else _flatten(v) for k, v in row.items()} for row in rows]
+    rows = [{k: v if type(v) in _PLAIN else _flatten(v) for k, v in row.items()} for row in rows]
     columns = _column_order(rows, lead)
     frame = (
         pd.DataFrame.from_records(rows, columns=columns) if rows else pd.DataFrame(columns=columns)
