@@ -43,6 +43,20 @@ def test_clean_cell_passes_every_rule():
     assert all(r["used"] for r in sweeps.values())
 
 
+def test_current_stored_with_the_wrong_sign_is_named_as_the_likely_cause():
+    # Positive current depolarizes (the convention every reader converts to); a file whose
+    # current channel has the opposite sign gives a negative Rin, which no membrane has.
+    clean = _cell()
+    flipped = dataclasses.replace(
+        clean, sweeps=tuple(dataclasses.replace(s, current=-s.current) for s in clean.sweeps)
+    )
+    cell, _ = _run(flipped)
+    assert not cell["qc_pass"]
+    assert cell["rin_mohm"] < 0
+    assert "current's sign reversed?" in cell["notes"]
+    assert "sign" not in (_run(clean)[0]["notes"] or "")
+
+
 def test_noisy_baseline_sweeps_are_left_out_and_the_cell_fails_for_lack_of_sweeps():
     cell, sweeps = _run(_cell(nuisance=dataclasses.replace(RIG, noise_rms_v=0.9e-3)))
     assert all("baseline noise" in r["excluded_because"] for r in sweeps.values())

@@ -19,6 +19,7 @@ import quantities as pq
 from pynwb import NWBHDF5IO, NWBFile
 from pynwb.icephys import CurrentClampSeries, CurrentClampStimulusSeries
 
+from pipeline.errors import UnitError
 from pipeline.readers import nwb as nwb_reader
 from pipeline.readers import open_recordings, parse_unit
 
@@ -52,6 +53,12 @@ def test_parse_unit(text, expected):
 
 def _ramp(n: int = N) -> np.ndarray:
     return np.linspace(-80.0, -60.0, n)
+
+
+def _plausible(v_factor: float, i_factor: float) -> tuple[np.ndarray, np.ndarray]:
+    """-80..-60 mV and -200..200 pA, written in units of ``v_factor`` V and ``i_factor`` A
+    (the readers refuse magnitudes no recording has in its stated unit)."""
+    return _ramp() * (1e-3 / v_factor), np.linspace(-200.0, 200.0, N) * (1e-12 / i_factor)
 
 
 def _nwb(path, v_data, v_kwargs, i_data, i_kwargs):
@@ -119,8 +126,7 @@ def test_nwb_unit_with_prefix_is_honoured(tmp_path, engine):
     [("mV", 1e-3, "pA", 1e-12), ("uV", 1e-6, "nA", 1e-9), ("V", 1.0, "A", 1.0)],
 )
 def test_neo_units_to_si(tmp_path, v_unit, v_factor, i_unit, i_factor):
-    v = _ramp()
-    i = np.linspace(-2.0, 2.0, N)
+    v, i = _plausible(v_factor, i_factor)
     seg = neo.Segment()
     seg.analogsignals += [
         neo.AnalogSignal(v, units=v_unit, sampling_rate=RATE * pq.Hz, name="Vm"),
@@ -147,8 +153,7 @@ def test_neo_units_to_si(tmp_path, v_unit, v_factor, i_unit, i_factor):
 )
 def test_text_units_to_si(tmp_path, t_col, t_factor, v_col, v_factor, i_col, i_factor):
     t = np.arange(N) * (1.0 / RATE) / t_factor  # sample times in the column's unit
-    v = _ramp()
-    i = np.linspace(-2.0, 2.0, N)
+    v, i = _plausible(v_factor, i_factor)
     lines = [f"sweep,{t_col},{v_col},{i_col}"]
     lines += [f"0,{float(t[j])!r},{float(v[j])!r},{float(i[j])!r}" for j in range(N)]
     path = tmp_path / "units.csv"
@@ -157,3 +162,39 @@ def test_text_units_to_si(tmp_path, t_col, t_factor, v_col, v_factor, i_col, i_f
     assert s.rate == pytest.approx(RATE, rel=1e-12)
     np.testing.assert_allclose(s.voltage, v * v_factor, rtol=1e-15)
     np.testing.assert_allclose(s.current, i * i_factor, rtol=1e-15)
+
+
+# Magnitudes that cannot be in the stated unit. Membrane potentials stay within about
+# +-0.2 V and current-clamp steps within tens of nA (common practice, no source).
+
+
+def _text_cell(path, v_col, v, i_col, i):
+    t = np.arange(v.size) / RATE
+    lines = [f"sweep,time_s,{v_col},{i_col}"]
+    lines += [f"0,{t[j]:.9g},{v[j]:.9g},{i[j]:.9g}" for j in range(v.size)]
+    path.write_text("\n".join(lines) + "\n")
+    return path
+
+
+def test_millivolts_under_a_volts_label_are_refused(tmp_path):
+    path = _text_cell(tmp_path / "mv.csv", "voltage_v", _ramp(), "current_pa", np.zeros(N))
+    with pytest.raises(UnitError, match=r"mv\.csv: .*typically [6-8]\d V.*millivolts\?"):
+        open_recordings(path)
+
+
+@pytest.mark.parametrize("engine", ["h5py", "pynwb"])
+def test_picoamperes_under_an_amperes_label_are_refused(tmp_path, engine):
+    # NWB: the stimulus stored in pA numbers while its unit says amperes
+    i_pa = np.where(np.arange(N) >= 10, -100.0, 0.0)
+    path = _nwb(tmp_path / "pa.nwb", _ramp() * 1e-3, {}, i_pa, {})
+    with pytest.raises(UnitError, match=r"pa\.nwb: .*current up to 100 A.*pA or nA\?"):
+        nwb_reader.read(path, engine=engine)
+
+
+def test_glitches_do_not_make_volts_implausible(tmp_path):
+    # Three saturated samples at 10 V in a trace at -70 mV: the median decides, not the maximum.
+    v = np.full(200, -0.07)
+    v[[50, 51, 52]] = 10.0
+    path = _text_cell(tmp_path / "glitch.csv", "voltage_v", v, "current_a", np.zeros(200))
+    (s,) = open_recordings(path)[0].sweeps
+    assert s.voltage.max() == 10.0

@@ -497,6 +497,11 @@ def summarize_cell(
         )
         excess, excess_half = 0.0, 0.0
     rin_ci = _interval(rin, rin_se, apparent.dof, s.confidence)
+    if (rin_ci[1] if math.isfinite(rin_ci[1]) else rin) < 0:  # no passive membrane does that
+        notes.append(
+            "the voltage moves against the injected current (Rin < 0): is the current's sign "
+            "reversed? patchbatch takes positive current as depolarizing"
+        )
     rin_frozen = rin * (1.0 + excess)
     cm, cm_ci = _cm(tau, tau_ci, rin_frozen, rin_ci, excess_half / (1.0 + excess))
     sag, at_target = _sag(hyper, i, ss, peak, re, s)

@@ -33,6 +33,12 @@ __all__ = ["open_recordings", "supported_extensions", "MIN_SAMPLES"]
 MIN_SAMPLES = 10
 """Fewest samples a sweep may have; shorter ones cannot hold a baseline and a step."""
 
+# Magnitudes no whole-cell current-clamp recording reaches in SI: they mean the samples are in
+# another unit than the file states (common practice, no source: membrane potentials stay
+# within about +-0.2 V, and current-clamp steps within tens of nA).
+MAX_TYPICAL_VOLTAGE_V = 1.0  # the median |V| of a cell: -70 "V" is -70 mV stored as volts
+MAX_CURRENT_A = 1e-6  # 1 uA: 100 "A" is 100 pA stored as amperes
+
 # Our own readers; they win over neo's readers for the same extensions.
 _OWN_READERS: dict[str, str] = {
     ".nwb": "pipeline.readers.nwb",
@@ -310,18 +316,20 @@ def make_recording(
     metadata: dict[str, str] | None = None,
     skipped: Sequence[str] = (),
 ) -> Recording:
-    """Build a Recording, refusing duplicate sweep numbers (ShapeError naming the file).
+    """Build a Recording, refusing duplicate sweep numbers (ShapeError naming the file) and
+    magnitudes no recording in SI has (UnitError: the samples are in another unit than the
+    file says, e.g. millivolts under a volts label).
 
     Sweeps are put in the order of their numbers, whatever order the file stores them in: the
     recording order every stage reads (a file written backwards gives the same cell).
     """
     sweeps = sorted(sweeps, key=lambda s: s.number)
     numbers = [s.number for s in sweeps]
+    who = electrode or cell_id
     dupes = sorted({n for n in numbers if numbers.count(n) > 1})
     if dupes:
-        raise ShapeError(
-            path, f"{electrode or cell_id}: duplicate sweep numbers {dupes} in one cell"
-        )
+        raise ShapeError(path, f"{who}: duplicate sweep numbers {dupes} in one cell")
+    _check_magnitudes(path, who, sweeps)
     return Recording(
         cell_id=cell_id,
         source_file=str(path),
@@ -330,6 +338,37 @@ def make_recording(
         metadata=metadata or {},
         skipped=tuple(skipped),
     )
+
+
+def _check_magnitudes(path: str, who: str, sweeps: Sequence[Sweep]) -> None:
+    """UnitError when a cell's voltages or currents are too large to be in volts or amperes.
+
+    The voltage test is on the median magnitude (glitches and saturated samples do not
+    count), of every 64th sample; the current test on the largest magnitude of every 8th
+    sample (any step is longer than 8 samples). Both are a few microseconds per sweep.
+    """
+    if not sweeps:
+        return
+    v = np.concatenate([s.voltage[::64] for s in sweeps])
+    typical = float(np.nanmedian(np.abs(v))) if np.isfinite(v).any() else 0.0
+    if typical > MAX_TYPICAL_VOLTAGE_V:
+        raise UnitError(
+            path,
+            f"{who}: membrane potential of typically {typical:.3g} V in magnitude; a membrane "
+            "potential stays within about 0.2 V, so the voltage samples are most likely in "
+            "another unit (millivolts?) than the file states",
+        )
+    largest = max(
+        (float(np.abs(s.current[::8]).max()) for s in sweeps if s.current is not None),
+        default=0.0,
+    )
+    if largest > MAX_CURRENT_A:
+        raise UnitError(
+            path,
+            f"{who}: injected current up to {largest:.3g} A in magnitude; current-clamp steps "
+            "stay within tens of nA, so the current samples are most likely in another unit "
+            "(pA or nA?) than the file states",
+        )
 
 
 def cell_ids(path: Path, electrodes: Sequence[str]) -> list[str]:
