@@ -86,6 +86,30 @@ def test_nan_run_leaves_the_sweep_out():
     assert cell["qc_pass"], cell["qc_reasons"]
 
 
+def _rounded(recording, step_v=1e-3):
+    """``recording`` with every voltage rounded to ``step_v`` (a text file written at 1 mV)."""
+    sweeps = [
+        dataclasses.replace(s, voltage=np.round(s.voltage / step_v) * step_v)
+        for s in recording.sweeps
+    ]
+    return dataclasses.replace(recording, sweeps=tuple(sweeps))
+
+
+def test_voltage_rounded_to_1_mv_is_not_read_as_clipped():
+    # Noise of 0.1 mV under 1 mV steps: every level, the extremes too, repeats for many samples.
+    cell, sweeps = _run(_rounded(_cell()))
+    assert all(r["clipped_samples"] == 0 for r in sweeps.values())
+    assert cell["qc_pass"], cell["qc_reasons"]
+    assert cell["rin_mohm"] == pytest.approx(_run(_cell())[0]["rin_mohm"], rel=0.03)
+
+
+def test_a_rail_is_still_clipping_in_a_rounded_trace():
+    rail = Nuisance(**{**RIG.__dict__, "clip_v": (-0.085, 0.05)})
+    _, sweeps = _run(_rounded(_cell(nuisance=rail)))
+    assert "clipped" in sweeps[0]["excluded_because"]
+    assert sweeps[3]["used"]
+
+
 def test_clipped_sweep_is_left_out():
     rail = Nuisance(**{**RIG.__dict__, "clip_v": (-0.085, 0.05)})
     cell, sweeps = _run(_cell(nuisance=rail))
@@ -234,3 +258,17 @@ def test_spikes_that_do_not_overshoot_fail_and_cells_without_spikes_pass():
     assert cell["first_spike_peak_mv"] > 0 and "no overshoot" not in cell["qc_reasons"]
     cell, _ = _run(_cell())
     assert cell["qc_pass"]
+
+
+def test_vrest_missing_for_lack_of_baselines_says_so_not_that_no_sweep_is_at_zero_current():
+    def holes(t, v):
+        v[(t > 0.02) & (t < 0.03)] = np.nan  # in the baseline window of every sweep
+        return v
+
+    recording = _cell()
+    for k in range(len(recording.sweeps)):
+        recording = _edit(recording, k, holes)
+    cell, _ = _run(recording)
+    assert "no zero-current sweep with a usable baseline for Vrest (sweep 0: " in cell["notes"]
+    assert "NaN or infinite samples" in cell["notes"]
+    assert "no sweep at zero holding" not in cell["notes"]

@@ -142,20 +142,27 @@ def _weighted_mean(values: np.ndarray, se: np.ndarray, level: float):
 
 
 def _vrest(
-    fits: list[SweepFit], s: PassiveSettings, notes: list[str]
+    fits: list[SweepFit], s: PassiveSettings, notes: list[str], left_out: Mapping[int, str]
 ) -> tuple[float, float, float]:
     """Resting potential at the start of the recording (V), its drift over the recording (V) and
     the drift rate (V/s), from a line through the baselines of the zero-current sweeps against
-    time (the median baseline when fewer than 3 sweeps or no start times)."""
-    rest = [
+    time (the median baseline when fewer than 3 sweeps or no start times). ``fits`` holds every
+    sweep; those in ``left_out`` (sweep number -> reason) are not used."""
+    zero = [
         f
         for f in fits
-        if math.isfinite(f.baseline_v)
-        and math.isfinite(f.bias_a)
-        and abs(f.holding_a + f.bias_a) <= s.zero_current_a
+        if math.isfinite(f.bias_a) and abs(f.holding_a + f.bias_a) <= s.zero_current_a
     ]
+    rest = [f for f in zero if f.sweep not in left_out and math.isfinite(f.baseline_v)]
     if not rest:
-        notes.append("no sweep at zero holding and bias current for Vrest")
+        if zero:  # the sweeps are there; their baselines are not usable (NaN runs, clipping)
+            f = zero[0]
+            why = left_out.get(f.sweep) or f.reason or "baseline not measured"
+            notes.append(
+                f"no zero-current sweep with a usable baseline for Vrest (sweep {f.sweep}: {why})"
+            )
+        else:
+            notes.append("no sweep at zero holding and bias current for Vrest")
         return NAN, NAN, 0.0
     v = np.array([f.baseline_v for f in rest])
     t = np.array([f.start_time_s + np.mean(f.baseline_window) for f in rest])
@@ -448,7 +455,7 @@ def summarize_cell(
     excluded = dict(exclude or {})
     fits = [f for f in sweep_fits if f.sweep not in excluded]
     notes: list[str] = []
-    vrest, drift, rate = _vrest(fits, s, notes)
+    vrest, drift, rate = _vrest(list(sweep_fits), s, notes, excluded)
     common = dict(cell_id=cell_id, sweeps=tuple(sweep_fits), vrest_v=vrest, vrest_drift_v=drift)
     hyper = [
         f for f in fits if f.step_a < 0 and math.isfinite(f.ss_dv) and math.isfinite(f.peak_dv)

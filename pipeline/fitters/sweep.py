@@ -155,7 +155,10 @@ def clipped_runs(v: np.ndarray, min_run: int) -> list[tuple[int, int]]:
 
     An amplifier or digitizer at its rail returns the same value repeatedly, entered and left
     with a real step; noise never does. Runs touching the sweep's ends, or entered or left by
-    less than 1 nV (a noiseless simulated plateau reached asymptotically), are not counted.
+    less than 1 nV (a noiseless simulated plateau reached asymptotically), are not counted;
+    nor are runs no longer than the trace's longest run at any other value: a trace rounded
+    more coarsely than its noise (a text file written at 1 mV) repeats every level it visits,
+    the extremes included, and a rail holds the trace longer than any level it sits at freely.
     """
     top, bottom = v.max(), v.min()
     if not (math.isfinite(top) and math.isfinite(bottom)):  # NaN or inf: the finite extremes
@@ -176,7 +179,20 @@ def clipped_runs(v: np.ndarray, min_run: int) -> list[tuple[int, int]]:
                 continue
             if abs(v[a - 1] - extreme) > 1e-9 and abs(v[b] - extreme) > 1e-9:
                 runs.append((int(a), int(b)))
+    if runs:  # rare: only now is the trace's own longest run worth a pass
+        free = _longest_run_between(v, bottom, top)
+        runs = [(a, b) for a, b in runs if b - a > free]
     return runs
+
+
+def _longest_run_between(v: np.ndarray, bottom: float, top: float) -> int:
+    """Longest run of equal consecutive samples strictly between ``bottom`` and ``top``."""
+    inside = (v > bottom) & (v < top)
+    change = np.flatnonzero(np.diff(v) != 0)  # a run ends at each change (NaN != NaN ends one)
+    stops = np.append(change + 1, v.size)
+    starts = np.insert(change + 1, 0, 0)
+    lengths = (stops - starts)[inside[starts]]
+    return int(lengths.max()) if lengths.size else 0
 
 
 def count_clipped(v: np.ndarray, min_run: int) -> int:
