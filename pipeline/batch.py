@@ -80,14 +80,20 @@ class BatchResult:
 
 
 def discover_inputs(
-    inputs: Sequence[str | Path], exclude: Path | None = None, sheet: str | Path | None = None
+    inputs: Sequence[str | Path],
+    exclude: Path | None = None,
+    sheet: str | Path | None = None,
+    left_out: list[str] | None = None,
 ) -> list[Path]:
     """Files to analyse: the files given, and supported files found recursively in folders.
 
     The metadata sheets (``metadata.csv`` in any letter case, and ``sheet``, the one given with
     ``--sheet``, even when named as an input) and the tables this program writes (in
-    ``exclude``, the output folder, or in an earlier run's output folder) are left out. A path
-    that does not exist is returned as is, so that it becomes an error row.
+    ``exclude``, the output folder, or in an earlier run's output folder) are left out. So are
+    text files found in a folder that are plainly not recording tables (notes, other tables:
+    see :func:`pipeline.readers.text.not_a_recording`); each is said in ``left_out`` when
+    given. A file named as an input is always read. A path that does not exist is returned as
+    is, so that it becomes an error row.
 
     Raises
     ------
@@ -97,18 +103,22 @@ def discover_inputs(
     from pipeline.readers import supported_extensions
 
     exts = {e.lower() for e in supported_extensions()}
+    given = Path(sheet).resolve() if sheet is not None else None  # a sheet is never a recording
     found: list[Path] = []
     for item in map(Path, inputs):
         if item.is_dir():
             for path in sorted(item.rglob("*")):
-                if path.is_file() and path.suffix.lower() in exts and _wanted(path, exclude):
+                if (
+                    path.is_file()
+                    and path.suffix.lower() in exts
+                    and _wanted(path, exclude)
+                    and path.resolve() != given
+                    and _is_recording(path, left_out)
+                ):
                     found.append(path)
         else:
             found.append(item)
-    unique = list(dict.fromkeys(p.resolve() for p in found))
-    if sheet is not None:  # a sheet is never a recording
-        given = Path(sheet).resolve()
-        unique = [p for p in unique if p != given]
+    unique = [p for p in dict.fromkeys(p.resolve() for p in found) if p != given]
     if not unique:
         raise InputError(
             f"{', '.join(map(str, inputs)) or 'no input given'}: no recording files found "
@@ -118,6 +128,20 @@ def discover_inputs(
         if item.is_dir() and not any(p.is_relative_to(item.resolve()) for p in unique):
             log.warning("%s: no recording files found in this folder", item)
     return unique
+
+
+def _is_recording(path: Path, left_out: list[str] | None) -> bool:
+    """False for a text file that is plainly not a recording table (said in ``left_out``)."""
+    from pipeline.readers import TEXT_EXTENSIONS
+
+    if path.suffix.lower() not in TEXT_EXTENSIONS:
+        return True
+    from pipeline.readers.text import not_a_recording
+
+    why = not_a_recording(path)
+    if why is not None and left_out is not None:
+        left_out.append(f"{path.resolve()}: left out, not a recording table ({why})")
+    return why is None
 
 
 def _wanted(path: Path, exclude: Path | None) -> bool:
@@ -228,7 +252,8 @@ def run_batch(
     inputs_given = [str(Path(p).resolve()) for p in inputs]
     # Usage errors (sheet, output folder) stop the run before anything is written.
     sheets = _read_sheets(sheet, inputs)
-    files = discover_inputs(inputs, exclude=outdir, sheet=sheet)
+    left_out: list[str] = []
+    files = discover_inputs(inputs, exclude=outdir, sheet=sheet, left_out=left_out)
     _prepare_outdir(outdir, inputs_given, config, force)
     handler = _log_to_file(outdir)
     freezing = _FREEZE.set(gc.get_freeze_count() == 0)  # a caller's own freeze is left alone
@@ -240,6 +265,7 @@ def run_batch(
             )
             run = {"inputs_given": inputs_given, "started": started, "hashes": hashes, **stats}
             run |= {"force": force, "executor": _executor(config, workers, scheduler)}
+            run |= {"left_out": left_out}
             return _assemble(files, results, run, config, outdir, sheets, figures)
         except PatchbatchError as exc:  # e.g. an unreachable scheduler: in the log file too
             _log_stop(handler, str(exc))
@@ -726,7 +752,7 @@ def _assemble(files, results, run, config, outdir, sheets, figures):
                 )
     sheet_columns, warnings = _join_sheets(cell_rows, sheets)
     _judge_joined(config, cell_rows)
-    warnings += figure_problems
+    warnings = run.get("left_out", []) + warnings + figure_problems
     t0 = time.perf_counter()
     cells = tables.cells_frame(cell_rows, sheet_columns)
     sweeps = tables.sweeps_frame(sweep_rows)

@@ -644,6 +644,27 @@ def test_a_folder_of_junk_beside_good_cells_on_two_workers(goods, tmp_path):
     assert all(path.stem in page for path in bad)  # failed cells are listed on the page
 
 
+def test_notes_and_other_tables_in_a_day_folder_are_left_out_and_said(goods, tmp_path):
+    day = tmp_path / "day"
+    day.mkdir()
+    for good in goods.files:
+        (day / good.name).write_bytes(good.read_bytes())
+    (day / "notes.txt").write_text("slice 3 looked swollen\nbath at 32 C\n")
+    (day / "sheet_copy.csv").write_text("file,condition\ngood_a.nwb,ctrl\n")
+    (day / "header_typo.csv").write_text("sweep,tme_s,voltage_mv\n0,0.0,-70\n")  # kept: a cell
+    outcome = run_cli([day, "--no-figures"], tmp_path / "out")
+    assert outcome.code == 1, outcome.stderr  # the damaged recording, not the notes
+    assert sorted(outcome.cells().index) == sorted([*GOOD, "header_typo"])
+    said = outcome.info()["warnings"]
+    for name in ("notes.txt", "sheet_copy.csv"):
+        line = f"{(day / name).resolve()}: left out, not a recording table"
+        assert any(w.startswith(line) for w in said), said
+        assert line in outcome.stderr
+    # named on the command line, a file is always read (and its problem said)
+    named = run_cli([*goods.files, day / "notes.txt", "--no-figures"], tmp_path / "out2")
+    assert named.code == 1 and "notes" in named.cells().index
+
+
 def test_a_folder_named_like_a_file_is_searched_not_opened(goods, tmp_path):
     day = tmp_path / "day"
     nested = day / "x.nwb"  # a folder with a recording's suffix

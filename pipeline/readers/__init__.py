@@ -48,6 +48,7 @@ _OWN_READERS: dict[str, str] = {
     ".txt": "pipeline.readers.text",
 }
 _NEO_MODULE = "pipeline.readers.neo_formats"
+TEXT_EXTENSIONS = tuple(e for e, m in _OWN_READERS.items() if m == "pipeline.readers.text")
 
 
 # Extensions neo lists that we do not hand to neo: pickle runs code on load; the others are

@@ -82,6 +82,29 @@ def read(path: Path) -> list[Recording]:
     return [_recording(path, table, columns)]
 
 
+def not_a_recording(path: Path) -> str | None:
+    """Why a text file found in a folder is plainly not a recording table, or None.
+
+    A lab's day folder holds notes and other tables beside the recordings (``notes.txt``, an
+    old copy of a sheet). A file whose first line (after ``#`` comments) is UTF-8 text naming
+    none of ``sweep``, ``time...`` or ``voltage...`` is such a file. Anything else, an empty or
+    binary file included, is read as a recording, so that a damaged one fails with its error.
+    """
+    try:
+        with open(path, encoding="utf-8-sig", newline="") as fh:
+            first = ""
+            for _, line in zip(range(1000), fh, strict=False):  # a bounded look
+                if line.strip() and not line.startswith("#"):
+                    first = line
+                    break
+    except (OSError, UnicodeDecodeError):
+        return None
+    names = [n.strip().strip('"').lower() for n in re.split(r"[,\t;]", first)]
+    if not first or any(n == "sweep" or n.startswith(("time", "voltage")) for n in names):
+        return None
+    return "its first line names no sweep, time or voltage column"
+
+
 def _sniff(path: Path) -> str:
     try:
         with open(path, encoding="utf-8", newline="") as fh:
