@@ -12,6 +12,7 @@ from day_factory import PA, RIG, SHORT
 
 from pipeline.analysis import analyse_recording
 from pipeline.config import config_from_dict, load_config, merge_tables
+from pipeline.fitters.sweep import coarse_rounding
 from pipeline.recording import Recording
 from pipeline.simulate import CellModel, Nuisance, StepProtocol, simulate_cell
 
@@ -53,7 +54,7 @@ def test_current_stored_with_the_wrong_sign_is_named_as_the_likely_cause():
     cell, _ = _run(flipped)
     assert not cell["qc_pass"]
     assert cell["rin_mohm"] < 0
-    assert "current's sign reversed?" in cell["notes"]
+    assert "current's sign reversed (the file's current, or the [steps] schedule" in cell["notes"]
     assert "sign" not in (_run(clean)[0]["notes"] or "")
 
 
@@ -95,19 +96,35 @@ def _rounded(recording, step_v=1e-3):
     return dataclasses.replace(recording, sweeps=tuple(sweeps))
 
 
-def test_voltage_rounded_to_1_mv_is_not_read_as_clipped():
+@pytest.mark.parametrize("seed", [0, 1, 2, 3])
+def test_voltage_rounded_to_1_mv_is_not_read_as_clipped_and_the_cell_says_so(seed):
     # Noise of 0.1 mV under 1 mV steps: every level, the extremes too, repeats for many samples.
-    cell, sweeps = _run(_rounded(_cell()))
+    cell, sweeps = _run(_rounded(_cell(seed=seed)))
     assert all(r["clipped_samples"] == 0 for r in sweeps.values())
     assert cell["qc_pass"], cell["qc_reasons"]
-    assert cell["rin_mohm"] == pytest.approx(_run(_cell())[0]["rin_mohm"], rel=0.03)
+    assert "voltage rounded to 1 mV steps, coarser than its noise" in cell["notes"]
+    assert cell["rin_mohm"] == pytest.approx(_run(_cell(seed=seed))[0]["rin_mohm"], rel=0.03)
 
 
-def test_a_rail_is_still_clipping_in_a_rounded_trace():
+@pytest.mark.parametrize("step_v", [1e-4, 3e-5])  # a 0.1 mV export; a 16-bit digitizer's step
+def test_a_rail_is_still_clipping_in_a_trace_rounded_finer_than_its_noise(step_v):
     rail = Nuisance(**{**RIG.__dict__, "clip_v": (-0.085, 0.05)})
-    _, sweeps = _run(_rounded(_cell(nuisance=rail)))
-    assert "clipped" in sweeps[0]["excluded_because"]
+    cell, sweeps = _run(_rounded(_cell(nuisance=rail), step_v))
+    assert "clipped" in sweeps[0]["excluded_because"]  # -80 pA drives it past -85 mV
     assert sweeps[3]["used"]
+    assert "rounded" not in (cell["notes"] or "")
+
+
+def test_coarse_rounding_is_told_from_float_and_digitizer_traces():
+    rng = np.random.default_rng(5)
+    v = -0.07 + 1e-4 * rng.standard_normal(5000)  # 0.1 mV of noise
+    v[2000:4000] -= np.linspace(0.0, 0.0052, 2000)  # a step from sample 2000
+    assert np.isnan(coarse_rounding(v, 2000))  # floats: no grid
+    assert np.isnan(coarse_rounding(np.round(v / 3e-5) * 3e-5, 2000))  # grid finer than noise
+    assert coarse_rounding(np.round(v / 1e-3) * 1e-3, 2000) == pytest.approx(1e-3)
+    assert np.isnan(coarse_rounding(np.full(5000, -0.07), 2000))  # noiseless and flat
+    smooth = -0.07 - 0.005 * (1 - np.exp(-np.arange(5000) / 400.0))
+    assert np.isnan(coarse_rounding(smooth, 2000))  # noiseless and smooth: no grid
 
 
 def test_clipped_sweep_is_left_out():
@@ -269,6 +286,6 @@ def test_vrest_missing_for_lack_of_baselines_says_so_not_that_no_sweep_is_at_zer
     for k in range(len(recording.sweeps)):
         recording = _edit(recording, k, holes)
     cell, _ = _run(recording)
-    assert "no zero-current sweep with a usable baseline for Vrest (sweep 0: " in cell["notes"]
+    assert "no zero-current sweep left for Vrest (6 left out; sweep 0: " in cell["notes"]
     assert "NaN or infinite samples" in cell["notes"]
     assert "no sweep at zero holding" not in cell["notes"]

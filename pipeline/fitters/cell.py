@@ -159,7 +159,8 @@ def _vrest(
             f = zero[0]
             why = left_out.get(f.sweep) or f.reason or "baseline not measured"
             notes.append(
-                f"no zero-current sweep with a usable baseline for Vrest (sweep {f.sweep}: {why})"
+                f"no zero-current sweep left for Vrest ({len(zero)} left out; sweep {f.sweep}: "
+                f"{why})"
             )
         else:
             notes.append("no sweep at zero holding and bias current for Vrest")
@@ -455,6 +456,13 @@ def summarize_cell(
     excluded = dict(exclude or {})
     fits = [f for f in sweep_fits if f.sweep not in excluded]
     notes: list[str] = []
+    rounded = [f.rounding_v for f in sweep_fits if math.isfinite(f.rounding_v)]
+    if rounded:
+        notes.append(
+            f"voltage rounded to {max(rounded) * 1e3:.3g} mV steps, coarser than its noise: "
+            "flat runs at a trace's extremes are not counted as clipping (a real rail would "
+            "pass unseen), and small deflections carry rounding error; export finer steps"
+        )
     vrest, drift, rate = _vrest(list(sweep_fits), s, notes, excluded)
     common = dict(cell_id=cell_id, sweeps=tuple(sweep_fits), vrest_v=vrest, vrest_drift_v=drift)
     hyper = [
@@ -507,7 +515,8 @@ def summarize_cell(
     if (rin_ci[1] if math.isfinite(rin_ci[1]) else rin) < 0:  # no passive membrane does that
         notes.append(
             "the voltage moves against the injected current (Rin < 0): is the current's sign "
-            "reversed? patchbatch takes positive current as depolarizing"
+            "reversed (the file's current, or the [steps] schedule of a file without one)? "
+            "patchbatch takes positive current as depolarizing"
         )
     rin_frozen = rin * (1.0 + excess)
     cm, cm_ci = _cm(tau, tau_ci, rin_frozen, rin_ci, excess_half / (1.0 + excess))

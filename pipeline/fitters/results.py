@@ -165,6 +165,7 @@ class SweepFit:
     onset_s: float = NAN  # step onset, s from the sweep start
     nonfinite_samples: int = 0  # NaN or infinite samples in the whole sweep
     clipped_samples: int = 0  # samples in flat runs at the trace's extreme (amplifier rail)
+    rounding_v: float = NAN  # the step a trace rounded coarser than its noise is on, V, or NaN
     charging2: BiExpFit | None = None  # two-exponential fit, when asked for
     tau_fast_s: float = NAN  # fastest (equalising) time constant found by peeling, s
     onset_jump_curved_v: float = NAN  # onset jump extrapolated with a t^1.5 term too, V

@@ -155,10 +155,7 @@ def clipped_runs(v: np.ndarray, min_run: int) -> list[tuple[int, int]]:
 
     An amplifier or digitizer at its rail returns the same value repeatedly, entered and left
     with a real step; noise never does. Runs touching the sweep's ends, or entered or left by
-    less than 1 nV (a noiseless simulated plateau reached asymptotically), are not counted;
-    nor are runs no longer than the trace's longest run at any other value: a trace rounded
-    more coarsely than its noise (a text file written at 1 mV) repeats every level it visits,
-    the extremes included, and a rail holds the trace longer than any level it sits at freely.
+    less than 1 nV (a noiseless simulated plateau reached asymptotically), are not counted.
     """
     top, bottom = v.max(), v.min()
     if not (math.isfinite(top) and math.isfinite(bottom)):  # NaN or inf: the finite extremes
@@ -179,20 +176,31 @@ def clipped_runs(v: np.ndarray, min_run: int) -> list[tuple[int, int]]:
                 continue
             if abs(v[a - 1] - extreme) > 1e-9 and abs(v[b] - extreme) > 1e-9:
                 runs.append((int(a), int(b)))
-    if runs:  # rare: only now is the trace's own longest run worth a pass
-        free = _longest_run_between(v, bottom, top)
-        runs = [(a, b) for a, b in runs if b - a > free]
     return runs
 
 
-def _longest_run_between(v: np.ndarray, bottom: float, top: float) -> int:
-    """Longest run of equal consecutive samples strictly between ``bottom`` and ``top``."""
-    inside = (v > bottom) & (v < top)
-    change = np.flatnonzero(np.diff(v) != 0)  # a run ends at each change (NaN != NaN ends one)
-    stops = np.append(change + 1, v.size)
-    starts = np.insert(change + 1, 0, 0)
-    lengths = (stops - starts)[inside[starts]]
-    return int(lengths.max()) if lengths.size else 0
+def coarse_rounding(v: np.ndarray, onset_index: int) -> float:
+    """The step the trace is rounded to (V) when it is coarser than the noise, else NaN.
+
+    The trace is rounded when every change between neighbouring samples is a whole multiple
+    of the smallest one; coarsely so when that step exceeds the standard deviation before the
+    step (at most 4096 samples). A digitizer's step is finer than a recording's noise; a text
+    file written at 1 mV with 0.1 mV of noise is not, and there a flat run at the trace's
+    extreme is rounding as often as it is a rail. A full pass: called on clipped sweeps only.
+    """
+    finite = v[np.isfinite(v)]
+    steps = np.abs(np.diff(finite))
+    steps = steps[steps > 0]
+    if steps.size == 0:
+        return NAN
+    q = float(steps.min())
+    ratio = steps / q
+    if np.abs(ratio - np.round(ratio)).max() > 0.01:  # not on a grid: not rounded
+        return NAN
+    before = v[: min(onset_index, 4096)]
+    before = before[np.isfinite(before)]
+    noise = float(before.std()) if before.size > 1 else 0.0
+    return q if q > noise else NAN
 
 
 def count_clipped(v: np.ndarray, min_run: int) -> int:
@@ -901,6 +909,8 @@ def measure_sweep(
         within the noise...), else what :func:`complete_sweep` fits it from.
     """
     v = sweep.voltage
+    clipped = count_clipped(v, settings.clip_run_samples)
+    rounding = coarse_rounding(v, epoch.onset_index) if clipped else NAN
     head = dict(
         sweep=sweep.number,
         step_a=float(epoch.amplitude),
@@ -909,7 +919,10 @@ def measure_sweep(
         start_time_s=sweep.start_time,
         onset_s=float(epoch.onset),
         nonfinite_samples=count_nonfinite(v),
-        clipped_samples=count_clipped(v, settings.clip_run_samples),
+        # a trace rounded more coarsely than its noise sits on its extreme levels for long
+        # runs: they cannot be told from a rail, so they are not counted (the cell says so)
+        clipped_samples=0 if math.isfinite(rounding) else clipped,
+        rounding_v=rounding,
     )
     if not epoch.usable:
         return SweepFit(**head, reason=epoch.reason or f"not a single step ({epoch.kind})")
