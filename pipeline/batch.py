@@ -19,7 +19,7 @@ import os
 import re
 import sys
 import time
-from collections.abc import Iterable, Iterator, Sequence
+from collections.abc import Callable, Iterable, Iterator, Sequence
 from concurrent.futures import ThreadPoolExecutor, as_completed
 from dataclasses import dataclass, field
 from datetime import UTC, datetime
@@ -776,6 +776,8 @@ def _assemble(files, results, run, config, outdir, sheets, figures):
     seconds["page"] = time.perf_counter() - t0
     if run.get("force"):  # only what --force replaces: never files of unknown origin
         _prune_figures(outdir / "figures", fig_map.values())
+    elif figures:  # figures drawn here for cells this run no longer has (inputs gone)
+        _prune_figures(outdir / "figures", fig_map.values(), ours=lambda: cache.figures(outdir))
     info["finished"] = datetime.now(UTC).isoformat()
     tables.write_run_json(outdir, info)
     for w in warnings:
@@ -794,10 +796,14 @@ def summary_line(counts: dict[str, int]) -> str:
     )
 
 
-def _prune_figures(folder: Path, linked: Iterable[str]) -> None:
-    """Remove the PNGs in the figure folder that this ``--force`` run's page does not link (those
-    of the run it replaces). Only plain ``.png`` files there, not through a linked folder; a
-    file that cannot be removed stays."""
+def _prune_figures(
+    folder: Path, linked: Iterable[str], ours: Callable[[], set[str]] | None = None
+) -> None:
+    """Remove the PNGs in the figure folder that this run's page does not link: with
+    ``--force`` every one (those of the run it replaces), else only those ``ours`` names (the
+    figures the folder's cache entries drew, asked for only when there is one to remove).
+    Only plain ``.png`` files there, not through a linked folder; a file that cannot be
+    removed stays."""
     keep = {Path(name).name for name in linked}
     if folder.is_symlink():  # perhaps shared with another run's figures
         return
@@ -805,12 +811,12 @@ def _prune_figures(folder: Path, linked: Iterable[str]) -> None:
         entries = list(os.scandir(folder))
     except OSError:  # no figure folder
         return
-    for entry in entries:
-        if (
-            entry.name.endswith(".png")
-            and entry.name not in keep
-            and entry.is_file(follow_symlinks=False)
-        ):
+    stale = [e for e in entries if e.name.endswith(".png") and e.name not in keep]
+    if stale and ours is not None:
+        known = ours()
+        stale = [e for e in stale if e.name in known]
+    for entry in stale:
+        if entry.is_file(follow_symlinks=False):
             with contextlib.suppress(OSError):
                 os.unlink(entry.path)
 

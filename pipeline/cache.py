@@ -118,6 +118,26 @@ def _plain_figure(name: Any, digest: Any) -> bool:
     )
 
 
+def figures(outdir: str | Path) -> set[str]:
+    """The figure file names the output folder's cache entries record (figures drawn there)."""
+    names: set[str] = set()
+    try:
+        paths = [
+            e.path for e in os.scandir(Path(outdir) / CACHE_DIR) if _ENTRY_NAME.fullmatch(e.name)
+        ]
+    except OSError:
+        return names
+    for path in paths:
+        try:
+            with open(path, encoding="utf-8") as fh:
+                data = json.load(fh)
+        except (OSError, ValueError):
+            continue
+        if isinstance(data, dict) and _well_formed(data):
+            names.update(c["figure"] for c in data["cells"] if c.get("figure"))
+    return names
+
+
 def store_entry(outdir: str | Path, key: str, result: dict[str, Any]) -> None:
     """Write one result, as :func:`normalise` returns it, atomically (NaN is null there, and
     the tables read it back as NaN)."""

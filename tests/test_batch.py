@@ -932,6 +932,20 @@ def test_only_a_forced_run_prunes_figures_and_never_through_a_linked_folder(day,
     assert (shared / "other_run.png").exists()
 
 
+def test_the_figure_of_a_file_gone_from_the_day_is_removed_on_the_next_run(day, tmp_path):
+    folder = tmp_path / "day"
+    shutil.copytree(day, folder)
+    out = tmp_path / "out"
+    run_batch([folder], out=out, workers=1, progress=False)
+    (out / "figures" / "poster_panel.png").write_bytes(b"not ours")
+    (folder / "c01.nwb").unlink()  # a recording taken out of the day's folder
+    run_batch([folder], out=out, workers=1, figures=False, progress=False)
+    assert (out / "figures" / "c01.png").exists()  # a run without figures leaves them be
+    run_batch([folder], out=out, workers=1, progress=False)
+    names = sorted(p.name for p in (out / "figures").iterdir())
+    assert names == ["c00.png", "c02.png", "poster_panel.png"]  # never a file not ours
+
+
 def test_an_earlier_runs_tables_in_the_input_tree_are_not_read_as_recordings(day, tmp_path):
     # `patchbatch run . -o reports`, then `-o reports2`: reports/cells.csv, sweeps.csv and
     # spikes.csv were analysed as recordings (3 failed inputs, exit 1)
