@@ -104,6 +104,8 @@ def discover_inputs(
 
     exts = {e.lower() for e in supported_extensions()}
     given = Path(sheet).resolve() if sheet is not None else None  # a sheet is never a recording
+    named = {Path(p).resolve() for p in inputs if not Path(p).is_dir()}  # always read
+    said: list[str] = []
     found: list[Path] = []
     for item in map(Path, inputs):
         if item.is_dir():
@@ -113,16 +115,20 @@ def discover_inputs(
                     and path.suffix.lower() in exts
                     and _wanted(path, exclude)
                     and path.resolve() != given
-                    and _is_recording(path, left_out)
+                    and (path.resolve() in named or _is_recording(path, said))
                 ):
                     found.append(path)
         else:
             found.append(item)
     unique = [p for p in dict.fromkeys(p.resolve() for p in found) if p != given]
+    said = list(dict.fromkeys(said))  # a folder given twice
+    if left_out is not None:
+        left_out.extend(said)
     if not unique:
+        why = f"; {'; '.join(said)}" if said else ""
         raise InputError(
             f"{', '.join(map(str, inputs)) or 'no input given'}: no recording files found "
-            f"(looked for {', '.join(sorted(exts))})"
+            f"(looked for {', '.join(sorted(exts))}){why}"
         )
     for item in map(Path, inputs):
         if item.is_dir() and not any(p.is_relative_to(item.resolve()) for p in unique):
@@ -130,7 +136,7 @@ def discover_inputs(
     return unique
 
 
-def _is_recording(path: Path, left_out: list[str] | None) -> bool:
+def _is_recording(path: Path, left_out: list[str]) -> bool:
     """False for a text file that is plainly not a recording table (said in ``left_out``)."""
     from pipeline.readers import TEXT_EXTENSIONS
 
@@ -139,7 +145,7 @@ def _is_recording(path: Path, left_out: list[str] | None) -> bool:
     from pipeline.readers.text import not_a_recording
 
     why = not_a_recording(path)
-    if why is not None and left_out is not None:
+    if why is not None:
         left_out.append(f"{path.resolve()}: left out, not a recording table ({why})")
     return why is None
 

@@ -102,7 +102,7 @@ def test_voltage_rounded_to_1_mv_is_not_read_as_clipped_and_the_cell_says_so(see
     cell, sweeps = _run(_rounded(_cell(seed=seed)))
     assert all(r["clipped_samples"] == 0 for r in sweeps.values())
     assert cell["qc_pass"], cell["qc_reasons"]
-    assert "voltage rounded to 1 mV steps, coarser than its noise" in cell["notes"]
+    assert "voltage on a grid of 1 mV steps, coarser than its noise" in cell["notes"]
     assert cell["rin_mohm"] == pytest.approx(_run(_cell(seed=seed))[0]["rin_mohm"], rel=0.03)
 
 
@@ -115,16 +115,34 @@ def test_a_rail_is_still_clipping_in_a_trace_rounded_finer_than_its_noise(step_v
     assert "rounded" not in (cell["notes"] or "")
 
 
+def test_a_rail_in_a_quiet_digitizer_trace_is_still_clipping():
+    # A 16-bit step (30.5 uV) above 20 uV of noise: neighbours mostly differ, so the grid is
+    # not coarse, and the flat run at -85 mV is the rail it is.
+    quiet = Nuisance(noise_rms_v=20e-6, bridge_error_ohm=5e6, electrode_tau_s=40e-6)
+    rail = dataclasses.replace(quiet, clip_v=(-0.085, 0.05))
+    cell, sweeps = _run(_rounded(_cell(nuisance=rail), 30.5e-6))
+    assert "clipped" in sweeps[0]["excluded_because"]
+    assert "grid" not in (cell["notes"] or "")
+
+
+def test_hum_does_not_hide_that_a_1_mv_export_is_rounded():
+    # 1.2 mV of hum moves the trace across levels; between neighbouring samples it does not.
+    humming = dataclasses.replace(RIG, hum_rms_v=1.2e-3)
+    cell, sweeps = _run(_rounded(_cell(nuisance=humming)))
+    assert all(r["clipped_samples"] == 0 for r in sweeps.values())
+    assert cell["qc_pass"], cell["qc_reasons"]
+
+
 def test_coarse_rounding_is_told_from_float_and_digitizer_traces():
     rng = np.random.default_rng(5)
     v = -0.07 + 1e-4 * rng.standard_normal(5000)  # 0.1 mV of noise
     v[2000:4000] -= np.linspace(0.0, 0.0052, 2000)  # a step from sample 2000
-    assert np.isnan(coarse_rounding(v, 2000))  # floats: no grid
-    assert np.isnan(coarse_rounding(np.round(v / 3e-5) * 3e-5, 2000))  # grid finer than noise
-    assert coarse_rounding(np.round(v / 1e-3) * 1e-3, 2000) == pytest.approx(1e-3)
-    assert np.isnan(coarse_rounding(np.full(5000, -0.07), 2000))  # noiseless and flat
+    assert np.isnan(coarse_rounding(v))  # floats: no grid
+    assert np.isnan(coarse_rounding(np.round(v / 3e-5) * 3e-5))  # grid finer than noise
+    assert coarse_rounding(np.round(v / 1e-3) * 1e-3) == pytest.approx(1e-3)
+    assert np.isnan(coarse_rounding(np.full(5000, -0.07)))  # noiseless and flat
     smooth = -0.07 - 0.005 * (1 - np.exp(-np.arange(5000) / 400.0))
-    assert np.isnan(coarse_rounding(smooth, 2000))  # noiseless and smooth: no grid
+    assert np.isnan(coarse_rounding(smooth))  # noiseless and smooth: no grid
 
 
 def test_clipped_sweep_is_left_out():

@@ -888,3 +888,37 @@ def test_sweep_arrays_are_read_only_and_never_shared_with_a_writer(tmp_path, mon
     sweeps = open_recordings(path)[0].sweeps
     assert len(sweeps) == 2 and copies == []  # the reader's samples, handed over
     assert all(not arr.flags.writeable for sw in sweeps for arr in (sw.voltage, sw.current))
+
+
+# Text files in a day's folder that are not recordings (notes, sheets) are left out of a folder
+# search; anything that may be a recording, damaged or not, is read and says its problem.
+@pytest.mark.parametrize(
+    ("content", "left_out"),
+    [
+        (b"sweep,time_s,voltage_mv,current_pa\n0,0,-70,0\n", False),
+        (b"\xef\xbb\xbfsweep;time_ms;voltage_mv\n", False),  # a spreadsheet's UTF-8 mark
+        (b"# exported\n\nTIME_S\tVOLTAGE_MV\tSWEEP\n", False),
+        (b"sweep time_s voltage_mv\n", False),  # space-separated: read, and its error said
+        (b'" sweep"," time_s"," voltage_mv"\n', False),
+        (b"voltage_kv,time_s\n", False),  # an unknown unit: read, and its error said
+        (b"", False),  # empty: read, and its error said
+        (b"\xff\xfe" + bytes(range(256)), False),  # binary: read, and its error said
+        (b"slice 3 looked swollen\nbath at 32 \xb0C\n", True),  # a cp1252 byte further on
+        (b"Time of the first recording: 10:42\n", True),
+        (b"file,condition,time_of_day\ncell01.nwb,ctrl,10:42\n", True),  # a sheet's copy
+    ],
+)
+def test_not_a_recording_tells_notes_from_recordings(tmp_path, content, left_out):
+    from pipeline.readers.text import not_a_recording
+
+    path = tmp_path / "f.txt"
+    path.write_bytes(content)
+    assert (not_a_recording(path) is not None) == left_out
+
+
+def test_a_folder_of_notes_only_says_what_it_left_out(tmp_path):
+    from pipeline.batch import InputError, discover_inputs
+
+    (tmp_path / "notes.txt").write_text("bath at 32 C\n")
+    with pytest.raises(InputError, match=r"no recording files found .*notes\.txt: left out, not "):
+        discover_inputs([tmp_path])

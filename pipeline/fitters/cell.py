@@ -459,9 +459,10 @@ def summarize_cell(
     rounded = [f.rounding_v for f in sweep_fits if math.isfinite(f.rounding_v)]
     if rounded:
         notes.append(
-            f"voltage rounded to {max(rounded) * 1e3:.3g} mV steps, coarser than its noise: "
+            f"voltage on a grid of {max(rounded) * 1e3:.3g} mV steps, coarser than its noise "
+            "(a text export rounded too far, or a digitizer range too wide for the signal): "
             "flat runs at a trace's extremes are not counted as clipping (a real rail would "
-            "pass unseen), and small deflections carry rounding error; export finer steps"
+            "pass unseen), and small deflections carry rounding error"
         )
     vrest, drift, rate = _vrest(list(sweep_fits), s, notes, excluded)
     common = dict(cell_id=cell_id, sweeps=tuple(sweep_fits), vrest_v=vrest, vrest_drift_v=drift)

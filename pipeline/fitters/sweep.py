@@ -179,28 +179,34 @@ def clipped_runs(v: np.ndarray, min_run: int) -> list[tuple[int, int]]:
     return runs
 
 
-def coarse_rounding(v: np.ndarray, onset_index: int) -> float:
-    """The step the trace is rounded to (V) when it is coarser than the noise, else NaN.
+def coarse_rounding(v: np.ndarray) -> float:
+    """The step of the grid the trace lies on (V) when that grid is coarser than its noise,
+    else NaN.
 
-    The trace is rounded when every change between neighbouring samples is a whole multiple
-    of the smallest one; coarsely so when that step exceeds the standard deviation before the
-    step (at most 4096 samples). A digitizer's step is finer than a recording's noise; a text
-    file written at 1 mV with 0.1 mV of noise is not, and there a flat run at the trace's
-    extreme is rounding as often as it is a rail. A full pass: called on clipped sweeps only.
+    On a grid: every change between neighbouring samples is a whole multiple of the smallest.
+    Coarser than the noise: most neighbours away from the extremes are equal (over 70%; with
+    noise of SD sigma that takes a step of ~4 sigma, while at 2 sigma, ~45% equal, flat runs
+    at the extremes are already rare). A text file written at 1 mV with 0.1 mV of noise is
+    such a trace, and there a flat run at its extreme is rounding as often as a rail. Slow
+    hum does not count (it moves the trace by less than a step between samples); samples at
+    the extremes are left out (a rail's own run). A full pass: for clipped sweeps only.
     """
     finite = v[np.isfinite(v)]
-    steps = np.abs(np.diff(finite))
-    steps = steps[steps > 0]
-    if steps.size == 0:
+    if finite.size < 3:
         return NAN
-    q = float(steps.min())
-    ratio = steps / q
+    steps = np.diff(finite)
+    moved = np.abs(steps[steps != 0])
+    if moved.size == 0:
+        return NAN
+    q = float(moved.min())
+    ratio = moved / q
     if np.abs(ratio - np.round(ratio)).max() > 0.01:  # not on a grid: not rounded
         return NAN
-    before = v[: min(onset_index, 4096)]
-    before = before[np.isfinite(before)]
-    noise = float(before.std()) if before.size > 1 else 0.0
-    return q if q > noise else NAN
+    inner = (finite > finite.min()) & (finite < finite.max())
+    pairs = inner[:-1] & inner[1:]
+    if pairs.sum() < 100:
+        return NAN
+    return q if float(np.mean(steps[pairs] == 0)) > 0.7 else NAN
 
 
 def count_clipped(v: np.ndarray, min_run: int) -> int:
@@ -910,7 +916,7 @@ def measure_sweep(
     """
     v = sweep.voltage
     clipped = count_clipped(v, settings.clip_run_samples)
-    rounding = coarse_rounding(v, epoch.onset_index) if clipped else NAN
+    rounding = coarse_rounding(v) if clipped else NAN
     head = dict(
         sweep=sweep.number,
         step_a=float(epoch.amplitude),

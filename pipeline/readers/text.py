@@ -86,23 +86,31 @@ def not_a_recording(path: Path) -> str | None:
     """Why a text file found in a folder is plainly not a recording table, or None.
 
     A lab's day folder holds notes and other tables beside the recordings (``notes.txt``, an
-    old copy of a sheet). A file whose first line (after ``#`` comments) is UTF-8 text naming
-    none of ``sweep``, ``time...`` or ``voltage...`` is such a file. Anything else, an empty or
-    binary file included, is read as a recording, so that a damaged one fails with its error.
+    old copy of a sheet). A file whose first line (after ``#`` comments and blank lines) is
+    UTF-8 text naming neither a ``sweep`` nor a ``voltage`` or ``voltage_<unit>`` column
+    (separated by commas, tabs, semicolons or spaces; quotes and case ignored) is such a file.
+    Anything else, an empty or binary file included, is read as a recording, so that a damaged
+    one fails with its error. Only the first 64 KiB are looked at.
     """
     try:
-        with open(path, encoding="utf-8-sig", newline="") as fh:
-            first = ""
-            for _, line in zip(range(1000), fh, strict=False):  # a bounded look
-                if line.strip() and not line.startswith("#"):
-                    first = line
-                    break
-    except (OSError, UnicodeDecodeError):
+        with open(path, "rb") as fh:
+            data = fh.read(65536)
+    except OSError:
         return None
-    names = [n.strip().strip('"').lower() for n in re.split(r"[,\t;]", first)]
-    if not first or any(n == "sweep" or n.startswith(("time", "voltage")) for n in names):
+    if data.startswith(b"\xef\xbb\xbf"):  # a spreadsheet's UTF-8 mark
+        data = data[3:]
+    lines = (ln.strip() for ln in data.splitlines())
+    first = next((ln for ln in lines if ln and not ln.startswith(b"#")), b"")
+    if not first or b"\x00" in data:
         return None
-    return "its first line names no sweep, time or voltage column"
+    try:
+        text = first.decode("utf-8")
+    except UnicodeDecodeError:  # not text (or cut inside a character): read it
+        return None
+    names = [n.strip().strip("\"'").strip().lower() for n in re.split(r"[,\t; ]+", text)]
+    if any(n == "sweep" or re.fullmatch(r"voltage(?:_[^\W_]+)?", n) for n in names):
+        return None
+    return "its first line names no sweep or voltage column"
 
 
 def _sniff(path: Path) -> str:
