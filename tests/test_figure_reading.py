@@ -84,6 +84,23 @@ def test_flags_under_a_failed_verdict_do_not_say_the_cell_passes():
     assert "flags (not why it fails):" in text
 
 
+def test_the_cells_notes_are_on_its_figure_and_a_flat_rebound_reads_zero():
+    # the notes (a rounded trace, a reversed current, no Vrest sweep) were in cells.csv only,
+    # and a rebound of float rounding error read "6.86e-12 mV"
+    rec, epochs, fit, verdict = base.fake_cell()
+    noted = dataclasses.replace(
+        fit, notes="voltage on a grid of 1 mV steps; no charging fit on the small steps",
+        rebound_v=6.86e-15,
+    )  # fmt: skip
+    fig = Figure(figsize=(15, 8.6), dpi=50)
+    _Canvas(fig)
+    _, box, _ = _layout(fig, False)
+    _draw_text(box, fig, rec, noted, verdict, _views(rec, epochs, noted, verdict), "c", None)
+    text = "\n".join(t.get_text() for t in fig.texts)
+    assert "notes:\n• voltage on a grid of 1 mV steps\n• no charging fit on the small steps" in text
+    assert "rebound    0.00 mV" in text
+
+
 @pytest.mark.parametrize("dpi", [60, 100])
 def test_the_text_column_stays_inside_the_figure(dpi):
     # long ids, file names and exclusion reasons were cut at the figure's right edge

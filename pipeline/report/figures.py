@@ -919,6 +919,14 @@ def _drift_mv(drift_v: float) -> str:
     return f"{0.0 if abs(mv) < 0.005 else mv:+.2f} mV"
 
 
+def _rebound_mv(rebound_v: float) -> str:
+    """A rebound as the other values, but under 10 uV as ``0.00 mV``: rounding error of a flat
+    trace read ``6.86e-12 mV``."""
+    if _finite(rebound_v) and abs(rebound_v) < 5e-6:
+        return "0.00 mV"
+    return _fmt(rebound_v, 1e3, "mV")
+
+
 def _property_lines(
     cell_fit: CellFit | None, views: list[_SweepView], spikes: Any = None
 ) -> list[str]:
@@ -934,7 +942,7 @@ def _property_lines(
         f"tau        {_fmt_ci(f.tau_s, f.tau_ci_s, 1e3, 'ms')}",
         *_cm_lines(f),
         f"sag ratio  {sag}",
-        f"rebound    {_fmt(f.rebound_v, 1e3, 'mV')}",
+        f"rebound    {_rebound_mv(f.rebound_v)}",
         f"bridge err {_fmt(f.bridge_error_ohm, 1e-6, 'MΩ')}",
         # the sweeps behind Rin, tau and sag (the largest step); cells.csv's n_sweeps_used
         # also counts the spiking sweeps
@@ -1066,6 +1074,9 @@ def _draw_text(box, fig, recording, cell_fit, verdict, views, cell_id: str, spik
         # a flag alone never fails a cell; under a failed verdict it is not one of the reasons
         title = "flags (cell still passes):" if passed else "flags (not why it fails):"
         sections.append((title, list(verdict.flags)))
+    notes = [n for n in (cell_fit.notes.split("; ") if cell_fit is not None else []) if n]
+    if notes:  # what the values leave out (no Vrest sweep, a rounded trace, a reversed sign)
+        sections.append(("notes:", notes))
     excluded = _grouped_reasons(views)
     if excluded:
         sections.append(("sweeps not used:", excluded))
