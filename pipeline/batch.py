@@ -110,13 +110,10 @@ def discover_inputs(
     for item in map(Path, inputs):
         if item.is_dir():
             for path in sorted(item.rglob("*")):
-                if (
-                    path.is_file()
-                    and path.suffix.lower() in exts
-                    and _wanted(path, exclude)
-                    and path.resolve() != given
-                    and (path.resolve() in named or _is_recording(path, said))
-                ):
+                if not (path.is_file() and path.suffix.lower() in exts and _wanted(path, exclude)):
+                    continue
+                real = path.resolve()
+                if real != given and (real in named or _is_recording(path, said)):
                     found.append(path)
         else:
             found.append(item)

@@ -304,6 +304,9 @@ def test_vrest_missing_for_lack_of_baselines_says_so_not_that_no_sweep_is_at_zer
     for k in range(len(recording.sweeps)):
         recording = _edit(recording, k, holes)
     cell, _ = _run(recording)
-    assert "no zero-current sweep left for Vrest (6 left out; sweep 0: " in cell["notes"]
+    assert "no zero-current sweep left for Vrest (6 left out, sweep 0: " in cell["notes"]
     assert "NaN or infinite samples" in cell["notes"]
     assert "no sweep at zero holding" not in cell["notes"]
+    # notes are "; "-joined (the figure lists them apart): the note must not hold that itself
+    (vrest,) = [n for n in cell["notes"].split("; ") if "Vrest" in n]
+    assert vrest.endswith("NaN or infinite samples)")

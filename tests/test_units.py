@@ -192,9 +192,10 @@ def test_picoamperes_under_an_amperes_label_are_refused(tmp_path, engine):
 
 
 def test_glitches_do_not_make_volts_implausible(tmp_path):
-    # Three saturated samples at 10 V in a trace at -70 mV: the median decides, not the maximum.
-    v = np.full(200, -0.07)
-    v[[50, 51, 52]] = 10.0
-    path = _text_cell(tmp_path / "glitch.csv", "voltage_v", v, "current_a", np.zeros(200))
+    # Saturated samples at 10 V in a trace at -70 mV, where the check samples it (every 64th):
+    # the median decides, not the maximum.
+    v = np.full(2000, -0.07)
+    v[[0, 64, 128]] = 10.0
+    path = _text_cell(tmp_path / "glitch.csv", "voltage_v", v, "current_a", np.zeros(2000))
     (s,) = open_recordings(path)[0].sweeps
     assert s.voltage.max() == 10.0

@@ -142,24 +142,25 @@ def _weighted_mean(values: np.ndarray, se: np.ndarray, level: float):
 
 
 def _vrest(
-    fits: list[SweepFit], s: PassiveSettings, notes: list[str], left_out: Mapping[int, str]
+    fits: list[SweepFit], s: PassiveSettings, notes: list[str], excluded: Mapping[int, str]
 ) -> tuple[float, float, float]:
     """Resting potential at the start of the recording (V), its drift over the recording (V) and
     the drift rate (V/s), from a line through the baselines of the zero-current sweeps against
     time (the median baseline when fewer than 3 sweeps or no start times). ``fits`` holds every
-    sweep; those in ``left_out`` (sweep number -> reason) are not used."""
+    sweep; those in ``excluded`` (sweep number -> reason) are not used."""
     zero = [
         f
         for f in fits
         if math.isfinite(f.bias_a) and abs(f.holding_a + f.bias_a) <= s.zero_current_a
     ]
-    rest = [f for f in zero if f.sweep not in left_out and math.isfinite(f.baseline_v)]
+    rest = [f for f in zero if f.sweep not in excluded and math.isfinite(f.baseline_v)]
     if not rest:
         if zero:  # the sweeps are there; their baselines are not usable (NaN runs, clipping)
             f = zero[0]
-            why = left_out.get(f.sweep) or f.reason or "baseline not measured"
+            why = excluded.get(f.sweep) or f.reason or "baseline not measured"
+            why = why.replace("; ", ", ")  # notes are joined by "; "
             notes.append(
-                f"no zero-current sweep left for Vrest ({len(zero)} left out; sweep {f.sweep}: "
+                f"no zero-current sweep left for Vrest ({len(zero)} left out, sweep {f.sweep}: "
                 f"{why})"
             )
         else:

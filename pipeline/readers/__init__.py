@@ -28,7 +28,7 @@ from pipeline.errors import (
 )
 from pipeline.recording import Recording, Sweep
 
-__all__ = ["open_recordings", "supported_extensions", "MIN_SAMPLES"]
+__all__ = ["open_recordings", "supported_extensions", "MIN_SAMPLES", "TEXT_EXTENSIONS"]
 
 MIN_SAMPLES = 10
 """Fewest samples a sweep may have; shorter ones cannot hold a baseline and a step."""
@@ -361,6 +361,7 @@ def _check_magnitudes(path: str, who: str, sweeps: Sequence[Sweep]) -> None:
             "another unit (millivolts?) than the file states",
         )
     largest = max(
+        # finite: make_sweep refuses a current with NaN or Inf samples
         (max(s.current.max(), -s.current.min()) for s in sweeps if s.current is not None),
         default=0.0,
     )

@@ -920,8 +920,8 @@ def _drift_mv(drift_v: float) -> str:
 
 
 def _rebound_mv(rebound_v: float) -> str:
-    """A rebound as the other values, but under 10 uV as ``0.00 mV``: rounding error of a flat
-    trace read ``6.86e-12 mV``."""
+    """A rebound as the other values (3 significant digits), but under 5 uV, which rounds to
+    ``0.00 mV``, as that: the rounding error of a flat trace read ``6.86e-12 mV``."""
     if _finite(rebound_v) and abs(rebound_v) < 5e-6:
         return "0.00 mV"
     return _fmt(rebound_v, 1e3, "mV")
