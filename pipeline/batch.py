@@ -113,7 +113,7 @@ def discover_inputs(
                 if not (path.is_file() and path.suffix.lower() in exts and _wanted(path, exclude)):
                     continue
                 real = path.resolve()
-                if real != given and (real in named or _is_recording(path, said)):
+                if real != given and (real in named or _is_recording(real, said)):
                     found.append(path)
         else:
             found.append(item)
@@ -143,7 +143,7 @@ def _is_recording(path: Path, left_out: list[str]) -> bool:
 
     why = not_a_recording(path)
     if why is not None:
-        left_out.append(f"{path.resolve()}: left out, not a recording table ({why})")
+        left_out.append(f"{path}: left out, not a recording table ({why})")
     return why is None
 
 

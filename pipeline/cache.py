@@ -120,22 +120,13 @@ def _plain_figure(name: Any, digest: Any) -> bool:
 
 def figures(outdir: str | Path) -> set[str]:
     """The figure file names the output folder's cache entries record (figures drawn there)."""
-    names: set[str] = set()
     try:
-        paths = [
-            e.path for e in os.scandir(Path(outdir) / CACHE_DIR) if _ENTRY_NAME.fullmatch(e.name)
-        ]
-    except OSError:
-        return names
-    for path in paths:
-        try:
-            with open(path, encoding="utf-8") as fh:
-                data = json.load(fh)
-        except (OSError, ValueError):
-            continue
-        if isinstance(data, dict) and _well_formed(data):
-            names.update(c["figure"] for c in data["cells"] if c.get("figure"))
-    return names
+        with os.scandir(Path(outdir) / CACHE_DIR) as found:
+            keys = [e.name[:-5] for e in found if _ENTRY_NAME.fullmatch(e.name)]
+    except OSError:  # no cache folder
+        return set()
+    entries = (load_entry(outdir, key) for key in keys)
+    return {c["figure"] for e in entries if e is not None for c in e["cells"] if c.get("figure")}
 
 
 def store_entry(outdir: str | Path, key: str, result: dict[str, Any]) -> None:

@@ -376,7 +376,8 @@ def _exact_pulse(sweep: Sweep, current: np.ndarray, settings: StepSettings) -> S
     only. Read from where they change, its epoch is the one the general detector finds (edges
     on the first sample of each level, no noise), in a twelfth of the time (6.2 -> 0.5 ms a cell
     on the benchmark day); any other current (noise, filtered edges, ramps, trains, steps too
-    small or too near the ends) is left to the general detector. Two finite levels are all its samples hold: there is no NaN to bridge.
+    small or too near the ends) is left to the general detector. Two finite levels are all its
+    samples hold: there is no NaN to bridge.
     """
     k, least = _edge_window(sweep, settings)  # the general detector's
     if current.size < least:

@@ -35,6 +35,7 @@ from pipeline.errors import CorruptFileError, RecordingError, ShapeError, UnitEr
 from pipeline.readers import MIN_SAMPLES, describe, make_recording, make_sweep, rate_from_times
 from pipeline.recording import Recording
 
+_COLUMN = re.compile(r"(time|voltage|current)(?:_([^\W_]+))?")  # kind, and a one-word unit
 UNITS = {
     "time": {"s": 1.0, "ms": 1e-3},
     "voltage": {"v": 1.0, "mv": 1e-3, "uv": 1e-6},
@@ -108,9 +109,14 @@ def not_a_recording(path: Path) -> str | None:
     except UnicodeDecodeError:  # not text (or cut inside a character): read it
         return None
     names = [n.strip().strip("\"'").strip().lower() for n in re.split(r"[,\t; ]+", text)]
-    if any(n == "sweep" or re.fullmatch(r"voltage(?:_[^\W_]+)?", n) for n in names):
+    if any(n == "sweep" or _voltage_column(n) for n in names):
         return None
     return "its first line names no sweep or voltage column"
+
+
+def _voltage_column(name: str) -> bool:
+    m = _COLUMN.fullmatch(name)
+    return m is not None and m.group(1) == "voltage"
 
 
 def _sniff(path: Path) -> str:
@@ -139,7 +145,7 @@ def _columns(path: str, header) -> dict[str, str]:
             continue
         # a unit is one word: ``time_of_day`` or ``current_step_label`` are other columns,
         # left alone, while ``voltage_volts`` is ours with a unit we do not know
-        m = re.fullmatch(r"(time|voltage|current)(?:_([^\W_]+))?", key)
+        m = _COLUMN.fullmatch(key)
         if m is None:
             continue
         kind, unit = m.group(1), m.group(2)
