@@ -65,13 +65,34 @@ def check_scheduler(scheduler: str | None) -> None:
 
 @dataclass
 class BatchResult:
-    """What a run produced: the tables as DataFrames and the run's record."""
+    """What a run produced: the tables (:class:`pipeline.report.tables.Table`) and the run's
+    record; ``cells``, ``sweeps`` and ``spikes`` give the tables as DataFrames, made (and pandas
+    imported) on first use."""
 
-    cells: Any
-    sweeps: Any
-    spikes: Any
+    tables: dict[str, Any]
     info: dict[str, Any]
     errors: list[dict[str, Any]] = field(default_factory=list)
+    _frames: dict[str, Any] = field(default_factory=dict, repr=False, compare=False)
+
+    def _frame(self, name: str) -> Any:
+        if name not in self._frames:
+            self._frames[name] = self.tables[name].to_frame()
+        return self._frames[name]
+
+    @property
+    def cells(self) -> Any:
+        """The cells table (pandas.DataFrame)."""
+        return self._frame("cells")
+
+    @property
+    def sweeps(self) -> Any:
+        """The sweeps table (pandas.DataFrame)."""
+        return self._frame("sweeps")
+
+    @property
+    def spikes(self) -> Any:
+        """The spikes table (pandas.DataFrame)."""
+        return self._frame("spikes")
 
     @property
     def exit_status(self) -> int:
@@ -621,7 +642,7 @@ def _settle_heap() -> None:
 
 
 def _import_report_modules(figures: bool) -> None:
-    """Import what the tables and the page need (pandas, pyarrow's Parquet writer, jinja2 and,
+    """Import what the tables and the page need (pyarrow's Parquet writer, jinja2 and,
     for the summary plot, matplotlib) while the workers analyse: the main process would only
     wait then, and after the last file it is the one process working (DEVELOPERS.md, "Where
     the time goes"). A fork pool's main process has the figure module already.
@@ -718,7 +739,7 @@ def _report_one(result: dict[str, Any], bar) -> None:
 def _assemble(files, results, run, config, outdir, sheets, figures):
     from pipeline.report import page, tables
 
-    _settle_heap()  # pandas and pyarrow, imported just now when one process did everything
+    _settle_heap()  # jinja2 and the report modules, imported just now
 
     cell_rows, sweep_rows, spike_rows, errors, fig_map = [], [], [], [], {}
     figure_problems: list[str] = []
@@ -757,14 +778,14 @@ def _assemble(files, results, run, config, outdir, sheets, figures):
     _judge_joined(config, cell_rows)
     warnings = run.get("left_out", []) + warnings + figure_problems
     t0 = time.perf_counter()
-    cells = tables.cells_frame(cell_rows, sheet_columns)
-    sweeps = tables.sweeps_frame(sweep_rows)
-    spikes = tables.spikes_frame(spike_rows)
+    cells = tables.cells_table(cell_rows, sheet_columns)
+    sweeps = tables.sweeps_table(sweep_rows)
+    spikes = tables.spikes_table(spike_rows)
     if sweep_rows:  # a cell was measured: else no table has the rules' columns
         warnings += _rule_column_problems(config, cells, sweeps)
     tables.write_tables(outdir, cells, sweeps, spikes)
     seconds["tables"] = time.perf_counter() - t0
-    n_pass = int(cells["qc_pass"].sum()) if "qc_pass" in cells else 0
+    n_pass = sum(cells.data["qc_pass"])
     info = _run_info(files, results, run, config, errors, warnings, sheets, seconds, n_pass)
     t0 = time.perf_counter()
     page.write_page(
@@ -786,7 +807,7 @@ def _assemble(files, results, run, config, outdir, sheets, figures):
     for w in warnings:
         log.warning("%s", w)
     log.info("%s; wrote %s", summary_line(info["counts"]), outdir)
-    return BatchResult(cells, sweeps, spikes, info, errors)
+    return BatchResult({"cells": cells, "sweeps": sweeps, "spikes": spikes}, info, errors)
 
 
 def summary_line(counts: dict[str, int]) -> str:
@@ -831,7 +852,7 @@ def _rule_column_problems(config: Config, cells, sweeps) -> list[str]:
     out = []
     for rule in config.qc.rules:
         table = cells if rule.scope == "cell" else sweeps
-        if not rule.enabled or table.empty or rule.column in table.columns:
+        if not rule.enabled or not len(table) or rule.column in table.columns:
             continue
         close = difflib.get_close_matches(rule.column, list(table.columns), n=1)
         hint = f" (did you mean {close[0]!r}?)" if close else ""

@@ -12,12 +12,8 @@ from __future__ import annotations
 import re
 from dataclasses import dataclass, field
 from pathlib import Path
-from typing import TYPE_CHECKING
 
 from pipeline.errors import PatchbatchError
-
-if TYPE_CHECKING:
-    import pandas as pd
 
 KEY_COLUMNS = ("cell_id", "file")
 
@@ -124,28 +120,24 @@ def read_sheet(path: str | Path) -> Sheet:
             f"{where}: not UTF-8 text (byte {exc.start}: {raw[exc.start : exc.start + 1]!r}); "
             "save the sheet as UTF-8 CSV"
         ) from None
-    frame = _parse(text, where)
-    frame.columns = [str(c).strip() for c in frame.columns]
-    keys = [k for k in KEY_COLUMNS if k in frame.columns]
+    names, rows = _parse(text, where)
+    keys = [k for k in KEY_COLUMNS if k in names]
     if not keys:
         raise SheetError(
             f"{where}: needs a 'file' or 'cell_id' column to match cells; found columns: "
-            f"{', '.join(frame.columns) or 'none'}"
+            f"{', '.join(names) or 'none'}"
         )
-    frame = frame.fillna("").astype(str).map(str.strip)
-    rows = tuple(frame.to_dict("records"))
     by_key = {k: _index(rows, k, where) for k in keys}
-    columns = tuple(c for c in frame.columns if c not in KEY_COLUMNS)
+    columns = tuple(c for c in names if c not in KEY_COLUMNS)
     return Sheet(
         where, rows, columns, by_key.get("cell_id", {}), _file_index(by_key.get("file", {}))
     )
 
 
-def _parse(text: str, where: str) -> pd.DataFrame:
+def _parse(text: str, where: str) -> tuple[list[str], tuple[dict[str, str], ...]]:
+    """The header's names (those not empty) and one dict per data row, values stripped."""
     import csv
     from io import StringIO
-
-    import pandas as pd  # here, not at import: only a run with a sheet needs it this early
 
     if not text.strip():
         raise SheetError(f"{where}: not a readable CSV table (the sheet is empty)")
@@ -168,7 +160,7 @@ def _parse(text: str, where: str) -> pd.DataFrame:
         raise SheetError(f"{where}: column {twice[0]!r} appears twice in the header")
     rows = _rows(table[1:], names, where)
     keep = [k for k, n in enumerate(names) if n]  # trailing separators in the header: no column
-    return pd.DataFrame([[r[k] for k in keep] for r in rows], columns=[names[k] for k in keep])
+    return [names[k] for k in keep], tuple({names[k]: r[k].strip() for k in keep} for r in rows)
 
 
 def _rows(table: list[list[str]], names: list[str], where: str) -> list[list[str]]:

@@ -234,9 +234,10 @@ def test_page_of_a_run_without_figures_has_no_plot_and_says_why():
 
 
 @pytest.mark.parametrize("workers", [1, 2])
-def test_tables_only_run_never_imports_matplotlib(tmp_path, workers):
+def test_tables_only_run_never_imports_matplotlib_or_pandas(tmp_path, workers):
     # matplotlib costs ~0.5 s per process; a --no-figures run has no use for it (with a pool,
-    # the main process preloads only what the workers fit with)
+    # the main process preloads only what the workers fit with). pandas (~0.3 s) is not needed
+    # to read NWB files, join the sheet or write the tables and page either.
     import subprocess
     import sys
 
@@ -249,10 +250,11 @@ def test_tables_only_run_never_imports_matplotlib(tmp_path, workers):
         "from pipeline.batch import run_batch\n"
         f"run_batch([{str(day)!r}], out={str(tmp_path / 'out')!r}, workers={workers},"
         " figures=False, progress=False)\n"
-        "print('matplotlib' in sys.modules)\n"
+        "print([m for m in ('matplotlib', 'pandas') if m in sys.modules])\n"
     )
     out = subprocess.run([sys.executable, "-c", code], capture_output=True, text=True, check=True)
-    assert out.stdout.strip().splitlines()[-1] == "False"
+    assert out.stdout.strip().splitlines()[-1] == "[]"
+    assert "condition" in (tmp_path / "out" / "cells.csv").read_text().splitlines()[0]  # joined
     assert "drew no figures" in (tmp_path / "out" / "index.html").read_text(encoding="utf-8")
 
 

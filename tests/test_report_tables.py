@@ -8,6 +8,7 @@ import os
 
 import numpy as np
 import pandas as pd
+import pyarrow.parquet
 import pytest
 
 import pipeline
@@ -15,11 +16,15 @@ from pipeline.cache import file_sha256 as sha256_file
 from pipeline.report import atomic
 from pipeline.report.atomic import atomic_path, atomic_write_bytes, atomic_write_text
 from pipeline.report.tables import (
+    Table,
     cells_frame,
+    cells_table,
     frame_to_csv,
     read_table_csv,
     spikes_frame,
     sweeps_frame,
+    sweeps_table,
+    table_to_csv,
     write_run_json,
     write_tables,
 )
@@ -124,12 +129,12 @@ def test_failing_writer_keeps_old_file(tmp_path, monkeypatch):
     old_csv = (tmp_path / "cells.csv").read_bytes()
     old_parquet = (tmp_path / "cells.parquet").read_bytes()
 
-    def broken_to_parquet(self, path, *args, **kwargs):
+    def broken_write_table(table, path, *args, **kwargs):
         with open(path, "wb") as fh:
             fh.write(b"PAR1 half")  # a partial file, then the writer dies
         raise OSError("disk full")
 
-    monkeypatch.setattr(pd.DataFrame, "to_parquet", broken_to_parquet)
+    monkeypatch.setattr(pyarrow.parquet, "write_table", broken_write_table)
     changed = cells.assign(rin_mohm=1.0)
     with pytest.raises(OSError, match="disk full"):
         write_tables(tmp_path, changed, sweeps)
@@ -166,6 +171,67 @@ def test_atomic_path_keeps_suffix_and_mode(tmp_path):
         tmp.write_text("partial")
         raise ValueError("writer failed")
     assert not (tmp_path / "never.txt").exists() and _leftovers(tmp_path) == []
+
+
+def _mixed_rows(seed: int, n: int) -> list[dict]:
+    """Rows whose columns hold every kind a run makes: numbers with gaps, whole numbers, text
+    with separators and quotes, bools with gaps, tuples of reasons, numpy scalars, nothing."""
+    rng = np.random.default_rng(seed)
+    rows = []
+    for i in range(n):
+        row = {
+            "cell_id": f"c{i}",
+            "source_file": f"day/c{i}.nwb",
+            "rin_mohm": float(rng.uniform(50, 400)) * 10.0 ** int(rng.integers(-9, 9)),
+            "tau_ms": math.nan if i % 3 == 0 else np.float64(rng.uniform(5, 40)),
+            "n_sweeps": int(rng.integers(0, 20)),
+            "slice": int(i) if i % 4 else None,
+            "condition": ["ctrl", 'a "b", c', "", "é; ü"][i % 4],
+            "qc_pass": [True, False, None, "true"][i % 4],
+            "spiking": bool(i % 2) if i % 5 else None,
+            "qc_reasons": ("noise 0.9 mV", "drift") if i % 2 else (),
+            "notes": "",
+            "peak": np.int64(i),
+        }
+        if i % 3 == 1:
+            row["extra"] = float(rng.normal())
+        rows.append(row)
+    return rows
+
+
+@pytest.mark.parametrize("n", [1, 7, 40])
+def test_tables_are_written_as_pandas_writes_them(tmp_path, n):
+    # The reference is pandas itself (to_csv, and to_parquet through pyarrow) writing the same
+    # table as a DataFrame: the project's writers (csv module, Arrow buffers) must agree with it
+    # to the byte for CSV and to the value and type for Parquet.
+    table = cells_table(_mixed_rows(seed=n, n=n), ("condition", "animal"))
+    frame = table.to_frame()
+    assert table.kinds["rin_mohm"] == "float" and table.kinds["n_sweeps"] == "int"
+    assert table.kinds["condition"] == "text" and table.kinds["animal"] == "float"
+    assert table.kinds["qc_pass"] == "bool" and table.kinds["notes"] == "float"
+    shown = frame.copy()
+    for col in shown.columns:
+        if shown[col].dtype == bool:
+            shown[col] = shown[col].map({True: "true", False: "false"})
+    assert table_to_csv(table) == shown.to_csv(index=False, na_rep="", lineterminator="\n")
+    write_tables(tmp_path / "ours", table, sweeps_table([]))
+    frame.to_parquet(tmp_path / "pandas.parquet", index=False, engine="pyarrow")
+    ours = pyarrow.parquet.read_table(tmp_path / "ours" / "cells.parquet")
+    theirs = pyarrow.parquet.read_table(tmp_path / "pandas.parquet")
+    assert ours.schema.remove_metadata() == theirs.schema.remove_metadata()
+    assert ours.to_pylist() == theirs.to_pylist()  # missing values are nulls in both
+    pd.testing.assert_frame_equal(ours.to_pandas(), theirs.to_pandas())
+    assert [ours[c].null_count for c in ours.column_names] == [
+        theirs[c].null_count for c in theirs.column_names
+    ]
+    pd.testing.assert_frame_equal(pd.read_parquet(tmp_path / "ours" / "cells.parquet"), frame)
+
+
+def test_a_dataframe_is_written_as_its_table():
+    frame = cells_frame(_mixed_rows(seed=3, n=9))
+    assert frame_to_csv(frame) == table_to_csv(cells_table(_mixed_rows(seed=3, n=9)))
+    back = Table.from_frame(frame)
+    assert back.kinds == cells_table(_mixed_rows(seed=3, n=9)).kinds
 
 
 def test_frame_to_csv_dialect():

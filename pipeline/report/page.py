@@ -16,15 +16,17 @@ import math
 import os
 from collections.abc import Mapping, Sequence
 from pathlib import Path
-from typing import Any
+from typing import TYPE_CHECKING, Any
 from urllib.parse import quote
 
 import jinja2
 import numpy as np
-import pandas as pd
 
 from pipeline.report.atomic import atomic_write_bytes, atomic_write_text
-from pipeline.report.tables import to_jsonable
+from pipeline.report.tables import Table, as_table, to_jsonable
+
+if TYPE_CHECKING:
+    import pandas as pd
 
 TEMPLATES = Path(__file__).parent / "templates"
 DEFAULT_SUMMARY = ("vrest_mv", "rin_mohm", "tau_ms", "cm_pf", "sag_ratio")
@@ -55,9 +57,7 @@ def _environment() -> jinja2.Environment:
 
 
 def _missing(value: Any) -> bool:
-    if value is None or value is pd.NA:
-        return True
-    return isinstance(value, float | np.floating) and math.isnan(value)
+    return value is None or (isinstance(value, float | np.floating) and math.isnan(value))
 
 
 def _display(value: Any) -> str:
@@ -100,7 +100,7 @@ def _row_state(row: Mapping[str, Any]) -> str:
     return "pass" if bool(row.get("qc_pass", False)) else "fail"
 
 
-def _display_columns(cells: pd.DataFrame, first: Sequence[str]) -> list[str]:
+def _display_columns(cells: Table, first: Sequence[str]) -> list[str]:
     """cell id, QC, then ``first`` (group, main properties), then the rest in table order."""
     lead = ["cell_id", "qc_pass", *first]
     cols = [c for c in dict.fromkeys(lead) if c in cells.columns]
@@ -119,15 +119,12 @@ def _qc_text(record: Mapping[str, Any], state: str) -> tuple[str, str]:
     return "; ".join(seen), "" if _missing(flags) else str(flags)
 
 
-def _table(cells: pd.DataFrame, figures: Mapping[str, str], first: Sequence[str]) -> dict[str, Any]:
+def _table(cells: Table, figures: Mapping[str, str], first: Sequence[str]) -> dict[str, Any]:
     columns = _display_columns(cells, first)
-    numeric = {
-        c: pd.api.types.is_numeric_dtype(cells[c]) and not pd.api.types.is_bool_dtype(cells[c])
-        for c in columns
-    }
+    numeric = {c: cells.kinds[c] in ("int", "float") for c in columns}
     rank = {"error": "0", "fail": "1", "pass": "2"}  # sorting on QC puts problems first
     rows = []
-    for record in cells.to_dict(orient="records"):
+    for record in cells.records():
         cell_id = "" if _missing(record.get("cell_id")) else str(record.get("cell_id"))
         state = _row_state(record)
         values = []
@@ -156,23 +153,25 @@ def _table(cells: pd.DataFrame, figures: Mapping[str, str], first: Sequence[str]
     return {"header": header, "rows": rows}
 
 
-def _groups(cells: pd.DataFrame, group_column: str | None) -> tuple[str, list[str], pd.Series]:
+def _groups(cells: Table, group_column: str | None) -> tuple[str, list[str], np.ndarray]:
     if group_column and group_column in cells.columns:
-        labels = cells[group_column].map(lambda v: NO_GROUP if _missing(v) else str(v))
+        labels = [NO_GROUP if _missing(v) else str(v) for v in cells.data[group_column]]
         order = sorted(set(labels), key=lambda g: (g == NO_GROUP, g))
-        return group_column, order, labels
-    return "", ["all cells"], pd.Series("all cells", index=cells.index)
+        return group_column, order, np.array(labels, dtype=object)
+    return "", ["all cells"], np.full(len(cells), "all cells", dtype=object)
 
 
 def summary_png(
-    cells: pd.DataFrame, summary_columns: Sequence[str], group_column: str | None = "condition"
+    cells: Table | pd.DataFrame,
+    summary_columns: Sequence[str],
+    group_column: str | None = "condition",
 ) -> bytes | None:
     """Distribution plots of the main properties by group: a box over the cells that passed QC,
     each cell as a dot (failed cells hollow grey, not in the box).
 
     Parameters
     ----------
-    cells : pandas.DataFrame
+    cells : Table or pandas.DataFrame
         The cells table (report units).
     summary_columns : sequence of str
         Columns to plot; those absent from the table are skipped.
@@ -184,15 +183,16 @@ def summary_png(
     bytes or None
         PNG, or None when no summary column is in the table.
     """
+    cells = as_table(cells)
     cols = [c for c in summary_columns if c in cells.columns]
-    if not cols or cells.empty:
+    if not cols or not len(cells):
         return None
     title, order, labels = _groups(cells, group_column)
+    values = {c: cells.numbers(c) for c in cols}
     # a group whose cells have no value at all (e.g. files that could not be read) gets no column
-    has_value = cells[cols].apply(pd.to_numeric, errors="coerce").notna().any(axis=1)
+    has_value = np.any([~np.isnan(v) for v in values.values()], axis=0)
     order = [g for g in order if has_value[labels == g].any()] or order
-    states = [_row_state(r) for r in cells.to_dict(orient="records")]
-    passed = pd.Series([st == "pass" for st in states], index=cells.index)
+    passed = np.array([_row_state(r) == "pass" for r in cells.records()])
     # matplotlib only here: a tables-only run (no figures, no plots) never imports it
     import matplotlib
     from matplotlib.figure import Figure
@@ -207,7 +207,7 @@ def summary_png(
         _Canvas(fig)
         axes = fig.subplots(1, len(cols), squeeze=False)[0]
         for ax, col in zip(axes, cols, strict=True):
-            _strip_box(ax, pd.to_numeric(cells[col], errors="coerce"), labels, order, passed, rng)
+            _strip_box(ax, values[col], labels, order, passed, rng)
             ax.set_title(_LABELS.get(col, col), fontsize=9)
             ax.set_xlabel(title or "")
         fig.subplots_adjust(left=0.06, right=0.99, bottom=0.22, top=0.88, wspace=0.38)
@@ -217,7 +217,7 @@ def summary_png(
 
 
 def _cached_summary(
-    cells: pd.DataFrame,
+    cells: Table,
     summary_columns: Sequence[str],
     group_column: str | None,
     folder: str | os.PathLike[str] | None,
@@ -227,9 +227,8 @@ def _cached_summary(
         return summary_png(cells, summary_columns, group_column)
     from pipeline import __version__
 
-    key = json.dumps(
-        [__version__, list(summary_columns), group_column, cells.to_json(orient="split")]
-    )
+    table = {c: (cells.kinds[c], to_jsonable(cells.data[c])) for c in cells.columns}
+    key = json.dumps([__version__, list(summary_columns), group_column, list(cells.columns), table])
     path = Path(folder) / f"summary-{hashlib.sha256(key.encode('utf-8')).hexdigest()}.png"
     if path.is_file():
         return path.read_bytes()
@@ -245,7 +244,7 @@ def _cached_summary(
 
 
 def _strip_box(
-    ax, values: pd.Series, labels: pd.Series, order: list[str], passed: pd.Series, rng
+    ax, values: np.ndarray, labels: np.ndarray, order: list[str], passed: np.ndarray, rng
 ) -> None:
     from pipeline.report.figures import EXCLUDED_COLOUR, FAIL_COLOUR, PASS_COLOUR
 
@@ -254,7 +253,8 @@ def _strip_box(
     for pos, group in zip(positions, order, strict=True):
         in_group = labels == group
         for ok in (True, False):
-            v = values[in_group & (passed == ok)].dropna().to_numpy()
+            v = values[in_group & (passed == ok)]
+            v = v[~np.isnan(v)]
             x = pos + rng.uniform(-0.16, 0.16, v.size)
             if ok:
                 ax.scatter(x, v, s=14, color=PASS_COLOUR, alpha=0.8, zorder=3, lw=0)
@@ -267,7 +267,7 @@ def _strip_box(
         ax.boxplot(boxes, positions=box_pos, widths=0.5, showfliers=False, zorder=1,
                    medianprops={"color": "black"}, boxprops={"color": "0.35"},
                    whiskerprops={"color": "0.35"}, capprops={"color": "0.35"})  # fmt: skip
-    if values.notna().sum() == 0:
+    if np.isnan(values).all():
         ax.text(0.5, 0.5, "no values", transform=ax.transAxes, ha="center", color=FAIL_COLOUR)
     ax.set_xticks(positions)
     ax.set_xticklabels(
@@ -291,8 +291,8 @@ def _errors(run_info: Mapping[str, Any]) -> list[dict[str, str]]:
     return out
 
 
-def _counts(cells: pd.DataFrame, run_info: Mapping[str, Any]) -> dict[str, Any]:
-    states = [_row_state(r) for r in cells.to_dict(orient="records")]
+def _counts(cells: Table, run_info: Mapping[str, Any]) -> dict[str, Any]:
+    states = [_row_state(r) for r in cells.records()]
     counts: dict[str, Any] = {
         "cells": len(cells),
         "pass QC": states.count("pass"),
@@ -310,7 +310,7 @@ def _pretty_json(value: Any) -> str:
 
 
 def render_page(
-    cells: pd.DataFrame,
+    cells: Table | pd.DataFrame,
     *,
     run_info: Mapping[str, Any],
     figures: Mapping[str, str],
@@ -331,6 +331,7 @@ def render_page(
     str
         The HTML document.
     """
+    cells = as_table(cells)
     png = _cached_summary(cells, summary_columns, group_column, plot_cache) if plots else None
     if png:
         no_plot = ""
@@ -367,7 +368,7 @@ def render_page(
 
 def write_page(
     outdir: str | os.PathLike[str],
-    cells: pd.DataFrame,
+    cells: Table | pd.DataFrame,
     *,
     run_info: Mapping[str, Any],
     figures: Mapping[str, str],
@@ -382,8 +383,9 @@ def write_page(
     ----------
     outdir : str or os.PathLike
         Output folder (created if missing); figures are linked relative to it.
-    cells : pandas.DataFrame
-        The cells table from :func:`pipeline.report.tables.cells_frame` (report units).
+    cells : Table or pandas.DataFrame
+        The cells table from :func:`pipeline.report.tables.cells_table` (report units), or
+        its DataFrame.
     run_info : Mapping
         The run record (as for ``run.json``): ``version``, ``started``, ``finished``,
         ``counts``, ``errors`` (``{"file", "stage", "message", "traceback"}``), ``warnings``,
