@@ -4,6 +4,7 @@ from __future__ import annotations
 
 import base64
 import html
+import math
 import re
 from html.parser import HTMLParser
 
@@ -274,6 +275,14 @@ def test_summary_plot_is_kept_by_what_it_is_drawn_from(tmp_path, monkeypatch):
     changed.loc[0, "rin_mohm"] = 999.0
     with pytest.raises(AssertionError, match="drawn again"):
         render_page(changed, run_info={}, figures={}, plot_cache=kept)
+    # cell 2's values are NaN; inf in their place draws a different plot ("no values" goes)
+    monkeypatch.undo()
+    render_page(fake_cells(), run_info={}, figures={}, plot_cache=kept)
+    monkeypatch.setattr(page, "summary_png", must_not_draw)
+    endless = fake_cells()
+    endless.loc[2, "rin_mohm"] = math.inf
+    with pytest.raises(AssertionError, match="drawn again"):
+        render_page(endless, run_info={}, figures={}, plot_cache=kept)
 
 
 def test_only_the_current_summary_plot_is_kept(tmp_path):

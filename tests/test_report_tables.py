@@ -123,8 +123,8 @@ def _leftovers(folder) -> list[str]:
 
 
 def test_failing_writer_keeps_old_file(tmp_path, monkeypatch):
-    cells = cells_frame(_cell_rows())
-    sweeps = sweeps_frame([])
+    cells = cells_table(_cell_rows())
+    sweeps = sweeps_table([])
     write_tables(tmp_path, cells, sweeps)
     old_csv = (tmp_path / "cells.csv").read_bytes()
     old_parquet = (tmp_path / "cells.parquet").read_bytes()
@@ -135,7 +135,7 @@ def test_failing_writer_keeps_old_file(tmp_path, monkeypatch):
         raise OSError("disk full")
 
     monkeypatch.setattr(pyarrow.parquet, "write_table", broken_write_table)
-    changed = cells.assign(rin_mohm=1.0)
+    changed = cells_table([{**row, "rin_mohm": 1.0} for row in _cell_rows()])
     with pytest.raises(OSError, match="disk full"):
         write_tables(tmp_path, changed, sweeps)
     assert (tmp_path / "cells.parquet").read_bytes() == old_parquet
@@ -227,11 +227,17 @@ def test_tables_are_written_as_pandas_writes_them(tmp_path, n):
     pd.testing.assert_frame_equal(pd.read_parquet(tmp_path / "ours" / "cells.parquet"), frame)
 
 
-def test_a_dataframe_is_written_as_its_table():
+def test_a_dataframe_is_written_by_pandas_as_its_table_is_by_ours(tmp_path):
+    # a run's tables go through our writers; a DataFrame a user hands in goes through pandas'
+    # (its own dtypes: Int64, float32, dates...); for a run's table the two agree
     frame = cells_frame(_mixed_rows(seed=3, n=9))
-    assert frame_to_csv(frame) == table_to_csv(cells_table(_mixed_rows(seed=3, n=9)))
-    back = Table.from_frame(frame)
-    assert back.kinds == cells_table(_mixed_rows(seed=3, n=9)).kinds
+    table = cells_table(_mixed_rows(seed=3, n=9))
+    assert table_to_csv(frame) == frame_to_csv(frame) == table_to_csv(table)
+    assert Table.from_frame(frame).kinds == table.kinds
+    odd = pd.DataFrame({"n": pd.array([1, None], dtype="Int64"), "x": np.float32([0.1, 2])})
+    assert table_to_csv(odd) == "n,x\n1,0.1\n,2.0\n"
+    write_tables(tmp_path, odd, sweeps_frame([]))
+    assert pd.read_parquet(tmp_path / "cells.parquet").dtypes.tolist() == odd.dtypes.tolist()
 
 
 def test_frame_to_csv_dialect():
@@ -259,3 +265,11 @@ def test_sha256_and_run_json(tmp_path):
     assert record["config"]["qc"] == {"max_noise_v": 5e-4, "bad": None}
     assert record["inputs"][0]["path"] == str(data) and record["counts"]["cells"] == 3
     assert record["errors"][0]["message"] == "no sweeps"
+
+
+def test_numbers_of_a_text_column_are_what_pandas_makes_of_it():
+    # the summary plot's values: pandas' to_numeric(errors="coerce") is the reference
+    values = ["1.5", " -2e3 ", "1_000", "\u0663", "\uff11\uff12", "inf", "x", None, ""]
+    table = Table(("a",), {"a": "text"}, {"a": values})
+    want = pd.to_numeric(pd.Series(values, dtype=object), errors="coerce").to_numpy(float)
+    np.testing.assert_array_equal(table.numbers("a"), want)

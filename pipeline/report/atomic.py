@@ -29,7 +29,7 @@ def _default_mode() -> int:
 def atomic_path(path: str | os.PathLike[str]) -> Iterator[Path]:
     """Yield a temporary path next to ``path``; move it onto ``path`` when the block succeeds.
 
-    For writers that want a file name (``Figure.savefig``, ``DataFrame.to_parquet``). The
+    For writers that want a file name (``Figure.savefig``, ``pyarrow.parquet.write_table``). The
     temporary name keeps the destination's suffix so writers that infer the format from it
     still work. On any exception the temporary file is removed, ``path`` is left untouched and
     the exception propagates.

@@ -227,7 +227,8 @@ def _cached_summary(
         return summary_png(cells, summary_columns, group_column)
     from pipeline import __version__
 
-    table = {c: (cells.kinds[c], to_jsonable(cells.data[c])) for c in cells.columns}
+    # repr: NaN and inf apart (JSON would make both null), numbers exact
+    table = {c: (cells.kinds[c], [repr(v) for v in cells.data[c]]) for c in cells.columns}
     key = json.dumps([__version__, list(summary_columns), group_column, list(cells.columns), table])
     path = Path(folder) / f"summary-{hashlib.sha256(key.encode('utf-8')).hexdigest()}.png"
     if path.is_file():

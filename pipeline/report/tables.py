@@ -52,7 +52,8 @@ class Table:
         table with no rows, whose type nothing tells).
     data : dict
         Column -> list of values, one per row: ``bool``; ``int``; ``float`` (NaN when
-        missing); ``str`` or None (missing).
+        missing); ``str`` or None (missing) (from a DataFrame, any object, written as its
+        ``str``).
     """
 
     columns: tuple[str, ...]
@@ -123,17 +124,17 @@ class Table:
                 kind = None
             if kind == "float":
                 values = [math.nan if _missing(v) else float(v) for v in values]
-            elif kind is None:
+            elif kind is None:  # text, or objects shown and written as text (str(value))
                 kind = "text"
-                values = [None if _missing(v) else str(v) for v in values]
+                values = [None if _missing(v) else v for v in values]
             kinds[name] = kind
             data[name] = values
         return cls(columns, kinds, data)
 
 
 def _number(value: Any) -> float:
-    """``pd.to_numeric(value, errors="coerce")`` for one value."""
-    if value is None:
+    """``pd.to_numeric(value, errors="coerce")`` for one value: text only in ASCII digits."""
+    if value is None or (isinstance(value, str) and (not value.isascii() or "_" in value)):
         return math.nan
     try:
         return float(value)
@@ -310,14 +311,15 @@ def table_to_csv(table: Table | pd.DataFrame) -> str:
     Parameters
     ----------
     table : Table or pandas.DataFrame
-        Table to render.
+        Table to render; a DataFrame is written by pandas (its own dtypes decide how).
 
     Returns
     -------
     str
         CSV text, header row first.
     """
-    table = as_table(table)
+    if not isinstance(table, Table):
+        return frame_to_csv(table)
     buf = io.StringIO()
     writer = csv.writer(buf, lineterminator="\n")  # quotes only fields that need it
     writer.writerow(table.columns)
@@ -328,7 +330,26 @@ def table_to_csv(table: Table | pd.DataFrame) -> str:
     return buf.getvalue()
 
 
-frame_to_csv = table_to_csv  # the name under which earlier versions offered it
+def frame_to_csv(frame: pd.DataFrame) -> str:
+    """Render a DataFrame in the project's CSV dialect with pandas' own writer.
+
+    Parameters
+    ----------
+    frame : pandas.DataFrame
+        Table to render (bool columns as ``true``/``false``).
+
+    Returns
+    -------
+    str
+        CSV text, header row first.
+    """
+    out = frame.copy()
+    for col in out.columns:
+        if out[col].dtype == bool:
+            out[col] = out[col].map({True: "true", False: "false"})
+    buf = io.StringIO()
+    out.to_csv(buf, index=False, sep=",", decimal=".", na_rep="", lineterminator="\n")
+    return buf.getvalue()
 
 
 def read_table_csv(path: str | os.PathLike[str]) -> pd.DataFrame:
@@ -354,14 +375,17 @@ def write_parquet(table: Table | pd.DataFrame, path: str | os.PathLike[str]) -> 
     Parameters
     ----------
     table : Table or pandas.DataFrame
-        Table to write.
+        Table to write; a DataFrame is written by pandas (``to_parquet``, its dtypes as they
+        are).
     path : str or os.PathLike
         File to write (not atomically: :func:`write_tables` gives it a temporary path).
     """
+    if not isinstance(table, Table):
+        table.to_parquet(path, index=False, engine="pyarrow")
+        return
     import pyarrow as pa
     import pyarrow.parquet as pq
 
-    table = as_table(table)
     arrays = [_arrow_column(table.kinds[c], table.data[c]) for c in table.columns]
     pq.write_table(pa.table(arrays, names=list(table.columns)), os.fspath(path))
 
@@ -391,7 +415,7 @@ def _arrow_column(kind: str, values: list[Any]) -> Any:
         )
     else:  # text: offsets into one UTF-8 buffer
         missing = np.array([v is None for v in values], dtype=bool)
-        encoded = [b"" if v is None else v.encode("utf-8") for v in values]
+        encoded = [b"" if v is None else str(v).encode("utf-8") for v in values]
         offsets = np.zeros(n + 1, dtype=np.int64)
         np.cumsum([len(b) for b in encoded], out=offsets[1:])
         buffers = [_validity(missing), pa.py_buffer(offsets), pa.py_buffer(b"".join(encoded))]
@@ -433,7 +457,6 @@ def write_tables(
     """
     out = Path(outdir)
     out.mkdir(parents=True, exist_ok=True)
-    cells = as_table(cells)
     written = {
         "cells.csv": atomic_write_text(out / "cells.csv", table_to_csv(cells)),
         "sweeps.csv": atomic_write_text(out / "sweeps.csv", table_to_csv(sweeps)),
