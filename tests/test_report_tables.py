@@ -232,7 +232,7 @@ def test_a_dataframe_is_written_by_pandas_as_its_table_is_by_ours(tmp_path):
     # (its own dtypes: Int64, float32, dates...); for a run's table the two agree
     frame = cells_frame(_mixed_rows(seed=3, n=9))
     table = cells_table(_mixed_rows(seed=3, n=9))
-    assert table_to_csv(frame) == frame_to_csv(frame) == table_to_csv(table)
+    assert table_to_csv(table) == frame_to_csv(frame)  # ours against pandas' writer
     assert Table.from_frame(frame).kinds == table.kinds
     odd = pd.DataFrame({"n": pd.array([1, None], dtype="Int64"), "x": np.float32([0.1, 2])})
     assert table_to_csv(odd) == "n,x\n1,0.1\n,2.0\n"

@@ -12,7 +12,6 @@ import base64
 import hashlib
 import io
 import json
-import math
 import os
 from collections.abc import Mapping, Sequence
 from pathlib import Path
@@ -24,6 +23,7 @@ import numpy as np
 
 from pipeline.report.atomic import atomic_write_bytes, atomic_write_text
 from pipeline.report.tables import Table, as_table, to_jsonable
+from pipeline.report.tables import is_missing as _missing
 
 if TYPE_CHECKING:
     import pandas as pd
@@ -54,10 +54,6 @@ def _environment() -> jinja2.Environment:
         trim_blocks=True,
         lstrip_blocks=True,
     )
-
-
-def _missing(value: Any) -> bool:
-    return value is None or (isinstance(value, float | np.floating) and math.isnan(value))
 
 
 def _display(value: Any) -> str:

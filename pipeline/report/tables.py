@@ -7,8 +7,8 @@ NaN written as an empty field, booleans as ``true``/``false``.
 
 The tables are :class:`Table` objects: plain typed columns, written with the csv module and
 pyarrow. pandas is imported only when a DataFrame is asked for (:meth:`Table.to_frame`, the
-``*_frame`` functions, a run's ``BatchResult``): its import, 0.2-0.4 s, was a sixth of a
-tables-only run (DEVELOPERS.md, "Where the time goes").
+``*_frame`` functions, a run's ``BatchResult``): its import, 0.2-0.4 s, was up to a sixth of
+a tables-only run (DEVELOPERS.md, "Where the time goes").
 """
 
 from __future__ import annotations
@@ -118,15 +118,15 @@ class Table:
             if len(frame) == 0 and kind is None:
                 kind = "none"
             values = series.tolist()
-            if kind == "int" and any(_missing(v) for v in values):  # pandas' nullable Int64
+            if kind == "int" and any(is_missing(v) for v in values):  # pandas' nullable Int64
                 kind = "float"
-            if kind == "bool" and any(_missing(v) for v in values):  # pandas' nullable boolean
+            if kind == "bool" and any(is_missing(v) for v in values):  # pandas' nullable boolean
                 kind = None
             if kind == "float":
-                values = [math.nan if _missing(v) else float(v) for v in values]
+                values = [math.nan if is_missing(v) else float(v) for v in values]
             elif kind is None:  # text, or objects shown and written as text (str(value))
                 kind = "text"
-                values = [None if _missing(v) else v for v in values]
+                values = [None if is_missing(v) else v for v in values]
             kinds[name] = kind
             data[name] = values
         return cls(columns, kinds, data)
@@ -168,10 +168,11 @@ def _as_bool(value: Any) -> bool:
     return bool(value)
 
 
-def _missing(value: Any) -> bool:
-    if value is None or (isinstance(value, float) and math.isnan(value)):
+def is_missing(value: Any) -> bool:
+    """None, NaN (Python or numpy), or pandas' NA and NaT (told by name: no pandas import)."""
+    if value is None or (isinstance(value, float | np.floating) and math.isnan(value)):
         return True
-    return type(value).__name__ in ("NAType", "NaTType")  # pandas' missing values
+    return type(value).__name__ in ("NAType", "NaTType")
 
 
 def _typed(name: str, values: list[Any]) -> tuple[str, list[Any]]:
@@ -185,7 +186,7 @@ def _typed(name: str, values: list[Any]) -> tuple[str, list[Any]]:
     """
     if name in _BOOL_COLUMNS:
         return "bool", [_as_bool(v) for v in values]
-    present = [v for v in values if not _missing(v)]
+    present = [v for v in values if not is_missing(v)]
     types = {type(v) for v in present}
     complete = len(present) == len(values)
     if types == {bool} and complete:
@@ -193,8 +194,8 @@ def _typed(name: str, values: list[Any]) -> tuple[str, list[Any]]:
     if types == {int} and complete and all(_INT64[0] <= v <= _INT64[1] for v in values):
         return "int", values
     if types <= {int, float}:  # some missing, or none present at all
-        return "float", [math.nan if _missing(v) else float(v) for v in values]
-    text = [None if _missing(v) or v == "" else str(v) for v in values]
+        return "float", [math.nan if is_missing(v) else float(v) for v in values]
+    text = [None if is_missing(v) or v == "" else str(v) for v in values]
     if all(t is None for t in text):
         return "float", [math.nan] * len(values)
     return "text", text
